@@ -1,0 +1,167 @@
+"""Pareto front arithmetic over the trials table: which candidates are worth keeping.
+
+Accuracy is maximised and every cost is minimised. A point is on the front when no
+other point is at least as accurate and at most as costly with one of those strictly
+better. Pure numpy and pandas, so the report and the search can both use it cheaply.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Mapping, Sequence
+
+import numpy as np
+import pandas as pd
+
+from searcher.errors import SearcherError, one_of
+
+# The analytic cost columns of the trials table, in the order the report shows them.
+COST_COLUMNS: tuple[str, ...] = ("params", "macs", "peak_activation_bytes", "weight_bytes")
+# States whose rows carry a validation accuracy that can be compared.
+SCORED_STATES: tuple[str, ...] = ("trained", "stopped_early")
+
+
+def pareto_mask(accuracy: Sequence[float] | np.ndarray, cost: Sequence[float] | np.ndarray) -> np.ndarray:
+    """True for the points no other point dominates (maximise accuracy, minimise cost).
+
+    ``cost`` is one value per point, or an (n, k) array of k costs per point. Equal
+    points are both kept. A point with NaN accuracy or a NaN cost is never on the front
+    and dominates nothing, so unfinished trials cannot hide finished ones.
+    """
+    acc = np.asarray(accuracy, dtype=float)
+    costs = np.asarray(cost, dtype=float)
+    if acc.ndim != 1:
+        raise ValueError(f"accuracy must be one-dimensional, got shape {acc.shape}")
+    if costs.ndim == 1:
+        costs = costs[:, None]
+    if costs.ndim != 2 or costs.shape[0] != acc.shape[0]:
+        raise ValueError(f"cost must have {acc.shape[0]} rows, got shape {costs.shape}")
+    valid = ~np.isnan(acc) & ~np.isnan(costs).any(axis=1)
+    mask = np.zeros(acc.shape[0], dtype=bool)
+    index = np.flatnonzero(valid)
+    if index.size == 0:
+        return mask
+    if costs.shape[1] == 1:
+        mask[index] = _front_one_cost(acc[index], costs[index, 0])
+    else:
+        mask[index] = _front_many_costs(np.column_stack([-acc[index], costs[index]]))
+    return mask
+
+
+def _front_one_cost(acc: np.ndarray, cost: np.ndarray) -> np.ndarray:
+    """Sweep in order of cost: O(n log n) for the common single-cost case."""
+    order = np.lexsort((-acc, cost))  # cheapest first, most accurate first within a cost
+    a, c = acc[order], cost[order]
+    positions = np.arange(a.size)
+    starts = np.maximum.accumulate(np.where(np.r_[True, c[1:] != c[:-1]], positions, 0))
+    best_so_far = np.maximum.accumulate(a)
+    best_cheaper = np.where(starts > 0, best_so_far[np.maximum(starts - 1, 0)], -np.inf)
+    on_front = (a == a[starts]) & (a > best_cheaper)
+    result = np.empty_like(on_front)
+    result[order] = on_front
+    return result
+
+
+def _front_many_costs(losses: np.ndarray, block: int = 256) -> np.ndarray:
+    """Pairwise dominance in blocks, for fronts over several costs at once (all minimised)."""
+    dominated = np.zeros(losses.shape[0], dtype=bool)
+    for start in range(0, losses.shape[0], block):
+        rows = losses[start : start + block, None, :]
+        no_worse = (losses[None, :, :] <= rows).all(axis=2)
+        better = (losses[None, :, :] < rows).any(axis=2)
+        dominated[start : start + block] = (no_worse & better).any(axis=1)
+    return ~dominated
+
+
+def check_caps(caps: Mapping[str, float | None] | None) -> dict[str, float]:
+    """The set caps as plain floats, after checking each names a cost and is positive."""
+    checked: dict[str, float] = {}
+    for key, limit in (caps or {}).items():
+        if key not in COST_COLUMNS:
+            raise SearcherError(f"cap {key!r} is not a cost; a cap must be {one_of(key, COST_COLUMNS)}", key=key)
+        if limit is None:
+            continue
+        if isinstance(limit, bool) or not isinstance(limit, (int, float, np.number)) or not limit > 0:
+            raise SearcherError(f"cap {key!r} must be a positive number, got {limit!r}", key=key)
+        checked[key] = float(limit)
+    return checked
+
+
+def feasible_mask(trials: pd.DataFrame, caps: Mapping[str, float | None] | None) -> np.ndarray:
+    """True for the rows whose costs meet every set cap (a cost equal to its cap fits)."""
+    ok = np.ones(len(trials), dtype=bool)
+    for key, limit in check_caps(caps).items():
+        ok &= trials[key].to_numpy(dtype=float) <= limit
+    return ok
+
+
+def front(
+    trials: pd.DataFrame,
+    cost_column: str | Sequence[str],
+    *,
+    caps: Mapping[str, float | None] | None = None,
+) -> pd.DataFrame:
+    """The scored, feasible rows on the accuracy-vs-cost front, cheapest first.
+
+    Only trained and stopped-early rows count, and only those meeting every cap:
+    a candidate over budget is no answer however accurate. Several cost columns give
+    the front over all of them at once (sorted by the first).
+    """
+    columns = [cost_column] if isinstance(cost_column, str) else list(cost_column)
+    if not columns:
+        raise SearcherError("a front needs at least one cost column, got none")
+    for column in columns:
+        if column not in COST_COLUMNS:
+            raise SearcherError(f"cost {column!r} is not a cost column; use {one_of(column, COST_COLUMNS)}")
+    scored = trials["state"].isin(SCORED_STATES).to_numpy() & feasible_mask(trials, caps)
+    pool = trials[scored]
+    on_front = pareto_mask(pool["val_accuracy"].to_numpy(dtype=float), pool[columns].to_numpy(dtype=float))
+    chosen = pool[on_front]
+    return chosen.sort_values([columns[0], "val_accuracy"], ascending=[True, False], kind="stable")
+
+
+def hypervolume_2d(
+    accuracy: Sequence[float] | np.ndarray,
+    cost: Sequence[float] | np.ndarray,
+    reference: tuple[float, float],
+) -> float:
+    """Area between the accuracy-vs-cost front and the reference point ``(acc_ref, cost_ref)``.
+
+    One number for "how good is this front": it grows when any point gets more accurate
+    or cheaper. Points no better than the reference (accuracy <= acc_ref or cost >=
+    cost_ref) and points with NaN add nothing. Pass log costs for a scale-free area.
+    """
+    acc = np.asarray(accuracy, dtype=float)
+    costs = np.asarray(cost, dtype=float)
+    acc_ref, cost_ref = (float(v) for v in reference)
+    if acc.shape != costs.shape or acc.ndim != 1:
+        raise ValueError(f"accuracy and cost must be matching 1-D arrays, got {acc.shape} and {costs.shape}")
+    useful = (acc > acc_ref) & (costs < cost_ref)  # False for NaN
+    if not useful.any():
+        return 0.0
+    order = np.argsort(costs[useful], kind="stable")
+    c = costs[useful][order]
+    best = np.maximum.accumulate(acc[useful][order])
+    widths = np.diff(np.r_[c, cost_ref])
+    return float(widths @ (best - acc_ref))
+
+
+def accuracy_per_doubling(accuracy: Sequence[float] | np.ndarray, cost: Sequence[float] | np.ndarray) -> np.ndarray:
+    """Accuracy gained per doubling of cost from each front point to the next.
+
+    Element i compares point i with point i-1 of the front sorted by cost (element 0 is
+    NaN): what each step up in budget buys. NaN where the cost does not grow or is not
+    positive, since no doubling happens there.
+    """
+    acc = np.asarray(accuracy, dtype=float)
+    costs = np.asarray(cost, dtype=float)
+    if acc.shape != costs.shape or acc.ndim != 1:
+        raise ValueError(f"accuracy and cost must be matching 1-D arrays, got {acc.shape} and {costs.shape}")
+    gain = np.full(acc.shape, np.nan)
+    if acc.size < 2:
+        return gain
+    with np.errstate(divide="ignore", invalid="ignore"):
+        doublings = np.log2(costs[1:] / costs[:-1])
+        steps = np.diff(acc) / doublings
+    usable = (costs[:-1] > 0) & (costs[1:] > 0) & (doublings > 0)
+    gain[1:] = np.where(usable, steps, np.nan)
+    return gain
