@@ -1,0 +1,158 @@
+"""The census: how much of a space fits the budget, without training anything.
+
+Candidates are handled as a *batch*: one numpy array per named decision of
+:meth:`Space.assemble`. Small spaces are enumerated exactly; larger ones are sampled uniformly
+over configurations with a seeded generator. Costs come from the same per-layer formulas as
+:func:`searcher.cost.cost`, applied to whole arrays at once; ``tests/test_census.py`` checks the
+two agree candidate by candidate.
+"""
+
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass
+from typing import Any
+
+import numpy as np
+
+from searcher.arch import Arch
+from searcher.budget import Budget
+from searcher.cost import PRECISION_BYTES, conv_macs, conv_output_size, conv_params, dense_params, weight_bytes
+from searcher.space import Space, _span
+
+Batch = dict[str, np.ndarray]
+
+# Decisions that change no cost: the census leaves them out and counts each cost class
+# as many times as they multiply it.
+COST_FREE = ("activation", "dropout")
+
+
+def _dimensions(space: Space) -> dict[str, list]:
+    """Every cost-relevant decision with its options (inactive ones included)."""
+    dims: dict[str, list] = {"resolution": list(range(len(space.resolutions))), "stages": _span(space.stage_count),
+                             "first_width": list(space.first_width)}
+    for i in range(space.stage_count[1]):
+        dims[f"convs_{i + 1}"] = _span(space.stage_convs(i))
+        dims[f"kernel_{i + 1}"] = list(space.kernels)
+        dims[f"pool_{i + 1}"] = list(space.pools)
+    dims["batch_norm"] = list(space.batch_norm)
+    dims["features"] = list(space.features)
+    dims["hidden"] = _span(space.hidden_count)
+    for k in range(space.hidden_count[1]):
+        dims[f"hidden_width_{k + 1}"] = list(space.hidden_widths)
+    return dims
+
+
+def multiplicity(space: Space) -> int:
+    """How many configurations share each cost class."""
+    return len(space.activations) * len(space.dropouts)
+
+
+def sample(space: Space, n: int, seed: int) -> Batch:
+    """``n`` draws uniform over configurations (depth and hidden count weighted by their share)."""
+    rng = np.random.default_rng(seed)
+    batch: Batch = {}
+    for name, options in _dimensions(space).items():
+        values = np.asarray(options, dtype=object if name.startswith("pool") or name == "features" else None)
+        if name == "stages":
+            p = np.asarray(space.configs_by_depth, dtype=float)
+            batch[name] = values[rng.choice(len(values), size=n, p=p / p.sum())]
+        elif name == "hidden":
+            p = np.asarray([len(space.hidden_widths) ** h for h in options], dtype=float)
+            batch[name] = values[rng.choice(len(values), size=n, p=p / p.sum())]
+        else:
+            batch[name] = values[rng.integers(len(values), size=n)]
+    return batch
+
+
+def enumerate_all(space: Space) -> Batch:
+    """Every cost class once: the product of the active decisions, for each depth and head size."""
+    dims = _dimensions(space)
+    blocks: list[Batch] = []
+    for depth in _span(space.stage_count):
+        for hidden in _span(space.hidden_count):
+            active = {"resolution", "first_width", "batch_norm", "features"}
+            active |= {f"{d}_{i + 1}" for i in range(depth) for d in ("convs", "kernel", "pool")}
+            active |= {f"hidden_width_{k + 1}" for k in range(hidden)}
+            names = [name for name in dims if name in active]
+            grid = np.indices([len(dims[name]) for name in names]).reshape(len(names), -1)
+            size = grid.shape[1]
+            block = {name: np.asarray(dims[name], dtype=object)[grid[j]] for j, name in enumerate(names)}
+            block["stages"] = np.full(size, depth)
+            block["hidden"] = np.full(size, hidden)
+            for name in dims:
+                block.setdefault(name, np.full(size, dims[name][0], dtype=object))
+            blocks.append(block)
+    return {name: np.concatenate([b[name] for b in blocks]) for name in dims}
+
+
+def batch_costs(space: Space, batch: Batch, budget: Budget, classes: int | None = None) -> dict[str, np.ndarray]:
+    """Cost totals for every candidate of a batch, as arrays keyed like ``Cost.totals``."""
+    n = len(batch["stages"])
+    res = np.asarray(space.resolutions)[batch["resolution"].astype(int)]
+    h, w = res[:, 0].astype(np.int64), res[:, 1].astype(np.int64)
+    c = np.full(n, space.channels, dtype=np.int64)
+    depth = batch["stages"].astype(np.int64)
+    first = batch["first_width"].astype(np.int64)
+    bn = batch["batch_norm"].astype(bool)
+    weights = np.zeros(n, np.int64)
+    biases = np.zeros(n, np.int64)
+    macs = np.zeros(n, np.int64)
+    peak = c * h * w
+    # lookup[i][f] = width of stage i for first width f
+    lookup = np.zeros((space.stage_count[1], max(space.first_width) + 1), np.int64)
+    for f in space.first_width:
+        lookup[:, f] = [space.stage_width(i, f) for i in range(space.stage_count[1])]
+    last_width = first.copy()
+    for i in range(space.stage_count[1]):
+        in_stage = depth > i
+        width = lookup[i][first]
+        kernel = batch[f"kernel_{i + 1}"].astype(np.int64)
+        pad = kernel // 2 if space.padding == "same" else 0
+        for j in range(space.stage_convs(i)[1]):
+            on = in_stage & (batch[f"convs_{i + 1}"].astype(np.int64) > j)
+            h2, w2 = conv_output_size(h, kernel, space.stride, pad), conv_output_size(w, kernel, space.stride, pad)
+            wt, bias = conv_params(c, width, kernel, ~bn)
+            weights += np.where(on, wt, 0)
+            biases += np.where(on, bias + 2 * width * bn, 0)
+            macs += np.where(on, conv_macs(c, width, kernel, h2, w2), 0)
+            peak = np.maximum(peak, np.where(on, c * h * w + width * h2 * w2, 0))
+            c, h, w = np.where(on, width, c), np.where(on, h2, h), np.where(on, w2, w)
+        pooled = in_stage & (batch[f"pool_{i + 1}"] != "none")
+        h2 = conv_output_size(h, space.pool_window, space.pool_stride, 0)
+        w2 = conv_output_size(w, space.pool_window, space.pool_stride, 0)
+        peak = np.maximum(peak, np.where(pooled, c * h * w + c * h2 * w2, 0))
+        h, w = np.where(pooled, h2, h), np.where(pooled, w2, w)
+        last_width = np.where(in_stage, width, last_width)
+    gap = batch["features"] == "gap"
+    peak = np.maximum(peak, np.where(gap, c * h * w + c, 0))
+    features = np.where(gap, c, c * h * w)
+    hidden = batch["hidden"].astype(np.int64)
+    for k in range(space.hidden_count[1] + 1):
+        is_out = hidden == k
+        on = hidden >= k
+        width = np.full(n, classes or space.classes, np.int64) if k == space.hidden_count[1] else np.where(
+            is_out, classes or space.classes, batch[f"hidden_width_{k + 1}"].astype(np.int64))
+        wt, bias = dense_params(features, width)
+        weights += np.where(on, wt, 0)
+        biases += np.where(on, bias, 0)
+        macs += np.where(on, wt, 0)
+        peak = np.maximum(peak, np.where(on, features + width, 0))
+        features = np.where(on, width, features)
+    return {
+        "params": weights + biases,
+        "macs": macs,
+        "peak_activation_bytes": peak * PRECISION_BYTES[budget.activation_precision],
+        "weight_bytes": weight_bytes(weights, biases, budget.weight_precision),
+        "stages": depth,
+        "first_width": first,
+        "last_width": last_width,
+    }
+
+
+def decode(space: Space, batch: Batch, index: int, classes: int | None = None) -> Arch:
+    """The architecture of one batch row (cost-free decisions take their first option)."""
+    row: dict[str, Any] = {name: values[index].item() if hasattr(values[index], "item") else values[index]
+                           for name, values in batch.items()}
+    row["resolution"] = space.resolutions[int(row["resolution"])]
+    return space.replay(row, classes)

@@ -1,0 +1,168 @@
+"""Summing up a census: share that fits, cost spread, depth x width table; CSV and HTML out."""
+
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass, field
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+
+from searcher.arch import Arch
+from searcher.budget import CAP_COLUMNS, Budget, show_cost
+from searcher.census import batch_costs, decode, enumerate_all, multiplicity, sample
+from searcher.space import Space
+
+
+@dataclass(frozen=True)
+class CensusSettings:
+    samples: int = 200_000  # candidates drawn when the space is too large to enumerate
+    seed: int = 0  # seed of the draw
+    exact_limit: int = 2_000_000  # enumerate when the space has at most this many cost classes
+    classes: int | None = None  # output classes; the space's `input.classes` when None
+
+
+@dataclass
+class Census:
+    """Everything the census found; plain data for printing, CSV and tests."""
+
+    space: Space
+    budget: Budget
+    size: int  # configurations in the space
+    exact: bool  # True: every cost class enumerated; False: a uniform sample
+    evaluated: int  # candidates (cost classes or samples) looked at
+    fits: np.ndarray  # bool per evaluated candidate
+    costs: dict[str, np.ndarray]
+    cheapest: Arch | None  # fitting candidate with the fewest MACs
+    largest: Arch | None  # fitting candidate with the most parameters
+    lowest: dict[str, int] = field(default_factory=dict)  # smallest value of each cost seen
+
+    @property
+    def fraction(self) -> float:
+        return float(self.fits.mean()) if self.evaluated else 0.0
+
+    @property
+    def interval(self) -> tuple[float, float]:
+        """95% Wilson score interval of the fraction (a point when exact)."""
+        if self.exact:
+            return self.fraction, self.fraction
+        n, p, z = self.evaluated, self.fraction, 1.959964
+        centre = (p + z * z / (2 * n)) / (1 + z * z / n)
+        half = z * math.sqrt(p * (1 - p) / n + z * z / (4 * n * n)) / (1 + z * z / n)
+        return max(0.0, centre - half), min(1.0, centre + half)
+
+    def spread(self) -> pd.DataFrame:
+        """Quantiles of every cost over the fitting candidates."""
+        rows = {}
+        for column in CAP_COLUMNS:
+            values = self.costs[column][self.fits]
+            if len(values):
+                q = np.quantile(values, [0, 0.1, 0.5, 0.9, 1.0])
+                rows[column] = dict(zip(["min", "p10", "median", "p90", "max"], q.round().astype(np.int64)))
+        return pd.DataFrame.from_dict(rows, orient="index")
+
+    def depth_width(self) -> pd.DataFrame:
+        """Fitting candidates by depth (rows) and first-stage width (columns)."""
+        frame = pd.DataFrame({"stages": self.costs["stages"], "first_width": self.costs["first_width"], "fits": self.fits})
+        table = frame[frame.fits].pivot_table(index="stages", columns="first_width", values="fits", aggfunc="size",
+                                              fill_value=0)
+        full = frame.pivot_table(index="stages", columns="first_width", values="fits", aggfunc="size", fill_value=0)
+        table = table.reindex(index=full.index, columns=full.columns, fill_value=0)
+        return table * (multiplicity(self.space) if self.exact else 1)
+
+
+def run_census(space: Space, budget: Budget | None = None, settings: CensusSettings = CensusSettings()) -> Census:
+    """Count what fits, exactly for small spaces and by a seeded sample otherwise.
+
+    >>> from searcher.space import load_space, builtin_space
+    >>> census = run_census(load_space(builtin_space("classic")))
+    >>> census.exact, census.size
+    (True, 96)
+    """
+    budget = budget or space.budget
+    classes = settings.classes
+    exact = space.size() // multiplicity(space) <= settings.exact_limit
+    batch = enumerate_all(space) if exact else sample(space, settings.samples, settings.seed)
+    costs = batch_costs(space, batch, budget, classes)
+    fits = np.ones(len(batch["stages"]), dtype=bool)
+    for column, limit in budget.caps().items():
+        fits &= costs[column] <= limit
+    index = np.flatnonzero(fits)
+    cheapest = largest = None
+    if len(index):
+        cheapest = decode(space, batch, int(index[np.argmin(costs["macs"][index])]), classes)
+        largest = decode(space, batch, int(index[np.argmax(costs["params"][index])]), classes)
+    lowest = {column: int(costs[column].min()) for column in CAP_COLUMNS}
+    return Census(space, budget, space.size(), exact, len(fits), fits, costs, cheapest, largest, lowest)
+
+
+def summary_lines(census: Census) -> list[str]:
+    """The census in words, for the terminal."""
+    how = "exact, every configuration counted" if census.exact else (
+        f"estimated from {census.evaluated:,} uniform random draws, 95% interval")
+    low, high = census.interval
+    lines = [
+        f"space {census.space.name}: {census.size:,} configurations",
+        f"budget: {census.budget.describe()}",
+        f"fits: {census.fraction:.3%}" + ("" if census.exact else f" [{low:.3%}, {high:.3%}]") + f" ({how})",
+    ]
+    if not census.fits.any():
+        lines.append("nothing in this space fits the budget. Smallest value each cost reaches"
+                     + (":" if census.exact else f" in {census.evaluated:,} draws:"))
+        for column, limit in census.budget.caps().items():
+            lines.append(f"  {column}: {show_cost(column, census.lowest[column])} (cap {show_cost(column, limit)})")
+        return lines
+    lines.append("cost over the fitting candidates:")
+    lines += ["  " + line for line in census.spread().to_string().splitlines()]
+    lines.append("fitting candidates by depth (rows) and first-stage width (columns):")
+    lines += ["  " + line for line in census.depth_width().to_string().splitlines()]
+    lines.append(f"cheapest fitting (fewest MACs): {census.cheapest}")
+    lines.append(f"largest fitting (most parameters): {census.largest}")
+    return lines
+
+
+def write_census(census: Census, folder: Path) -> list[Path]:
+    """census_summary.csv, census_spread.csv, census_depth_width.csv and census.html in ``folder``."""
+    from searcher.runs import write_atomic
+
+    folder.mkdir(parents=True, exist_ok=True)
+    low, high = census.interval
+    summary = pd.DataFrame([{
+        "space": census.space.name, "configurations": census.size, "exact": census.exact,
+        "evaluated": census.evaluated, "fraction_fits": census.fraction, "fraction_low": low, "fraction_high": high,
+        "cheapest": str(census.cheapest or ""), "largest": str(census.largest or ""),
+        **{f"cap_{c}": v for c, v in census.budget.caps().items()},
+        **{f"lowest_{c}": v for c, v in census.lowest.items()},
+    }])
+    paths = {
+        "census_summary.csv": summary.to_csv(index=False),
+        "census_spread.csv": census.spread().to_csv(index_label="cost"),
+        "census_depth_width.csv": census.depth_width().to_csv(),
+        "census.html": census_html(census),
+    }
+    for name, text in paths.items():
+        write_atomic(folder / name, text)
+    return [folder / name for name in paths]
+
+
+def census_html(census: Census) -> str:
+    """Histograms of each cost over fitting candidates and the depth x width heat map, offline."""
+    import plotly.graph_objects as go
+    from plotly.subplots import make_subplots
+
+    titles = [f"{c} (fitting)" for c in CAP_COLUMNS] + ["fitting by depth x first width"]
+    fig = make_subplots(rows=3, cols=2, subplot_titles=titles, vertical_spacing=0.1)
+    for k, column in enumerate(CAP_COLUMNS):
+        values = census.costs[column][census.fits]
+        fig.add_trace(go.Histogram(x=values[:200_000], name=column, showlegend=False), row=k // 2 + 1, col=k % 2 + 1)
+        fig.update_xaxes(title_text=column, row=k // 2 + 1, col=k % 2 + 1)
+    table = census.depth_width()
+    fig.add_trace(go.Heatmap(z=table.values, x=[str(c) for c in table.columns], y=[str(r) for r in table.index],
+                             colorscale="Blues", showscale=False, texttemplate="%{z}"), row=3, col=1)
+    fig.update_xaxes(title_text="first-stage width", row=3, col=1)
+    fig.update_yaxes(title_text="stages", row=3, col=1)
+    head = "<br>".join(summary_lines(census)[:3])
+    fig.update_layout(height=1100, title_text=f"Census of {census.space.name}<br><sup>{head}</sup>",
+                      template="plotly_white", margin=dict(t=140))
+    return fig.to_html(include_plotlyjs=True, full_html=True)

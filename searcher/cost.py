@@ -1,0 +1,186 @@
+"""Exact analytic cost of an architecture: shapes, parameters, MACs, memory. No torch.
+
+What is counted, and in which unit:
+
+* **parameters** — trainable values: conv and dense weights and biases, batch-norm scale and
+  shift (2 per channel). Batch-norm running mean and variance (2 per channel) are buffers,
+  reported apart as ``buffers``; they are not trained.
+* **MACs** — multiply-accumulates of one inference at batch 1: a conv does
+  ``H_out·W_out·C_out·C_in·k²``, a dense layer ``in·out``. Bias additions, batch norm (folded into
+  the preceding conv for inference, common practice), activations, pooling and global averaging are
+  not multiply-accumulates and count 0. This matches half the FLOPs that
+  ``torch.utils.flop_counter`` reports.
+* **peak activation memory** — at batch 1 for a sequential net: the largest (input + output)
+  pair of one layer, in bytes at the activation precision. Batch norm and activations work in
+  place on the conv output; flattening is a view and costs nothing.
+* **weight storage** — parameters in bytes at a precision. At ``int8`` each weight is 1 byte and
+  each bias or batch-norm value 4 bytes (32-bit accumulators, the usual integer-only scheme);
+  quantisation scales are not counted.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+from searcher.arch import Arch
+from searcher.errors import SearcherError
+
+PRECISION_BYTES = {"fp32": 4, "fp16": 2, "int8": 1}
+_BIAS_BYTES = {"fp32": 4, "fp16": 2, "int8": 4}
+
+
+# The formulas below take plain ints or numpy arrays alike: the census applies them to a
+# million candidates at once.
+
+
+def conv_output_size(size: int, kernel: int, stride: int, padding: int) -> int:
+    """Output length along one axis of a conv or pool window (floor mode)."""
+    return (size + 2 * padding - kernel) // stride + 1
+
+
+def conv_params(c_in: int, c_out: int, kernel: int, bias: bool) -> tuple[int, int]:
+    """(weights, biases) of a square conv: c_out·c_in·k² weights, c_out biases if any."""
+    return c_out * c_in * kernel * kernel, c_out * bias
+
+
+def dense_params(n_in: int, n_out: int) -> tuple[int, int]:
+    """(weights, biases) of a dense layer."""
+    return n_in * n_out, n_out
+
+
+def weight_bytes(weights: int, biases: int, precision: str) -> int:
+    """Bytes to store weights and additive values (biases, batch-norm) at ``precision``."""
+    return weights * PRECISION_BYTES[precision] + biases * _BIAS_BYTES[precision]
+
+
+def conv_macs(c_in: int, c_out: int, kernel: int, h_out: int, w_out: int) -> int:
+    """Multiply-accumulates of a conv: one c_in·k² dot product per output value."""
+    return h_out * w_out * c_out * c_in * kernel * kernel
+
+
+@dataclass(frozen=True)
+class LayerCost:
+    """One row of the per-layer table."""
+
+    name: str  # module name in the built network, e.g. "s1_conv2"
+    kind: str  # conv, batchnorm, maxpool, avgpool, gap, flatten, dense, dropout
+    output_shape: tuple[int, ...]  # (C, H, W) or (features,)
+    weights: int  # trainable weights (multiplicative)
+    biases: int  # trainable additive values: biases, batch-norm scale and shift
+    buffers: int  # untrained state: batch-norm running mean and variance
+    macs: int
+    activation_elements: int  # input + output values alive while this layer runs (0 if in place)
+
+    @property
+    def params(self) -> int:
+        return self.weights + self.biases
+
+
+@dataclass(frozen=True)
+class Cost:
+    """Totals and the per-layer table for one architecture."""
+
+    layers: tuple[LayerCost, ...]
+    activation_precision: str = "fp32"  # precision used for peak_activation_bytes
+
+    @property
+    def params(self) -> int:
+        return sum(layer.params for layer in self.layers)
+
+    @property
+    def buffers(self) -> int:
+        return sum(layer.buffers for layer in self.layers)
+
+    @property
+    def macs(self) -> int:
+        return sum(layer.macs for layer in self.layers)
+
+    @property
+    def peak_activation_elements(self) -> int:
+        return max(layer.activation_elements for layer in self.layers)
+
+    @property
+    def peak_activation_bytes(self) -> int:
+        return self.peak_activation_elements * PRECISION_BYTES[self.activation_precision]
+
+    def weight_bytes(self, precision: str = "fp32") -> int:
+        """Bytes to store every trainable parameter at ``precision`` (see module notes for int8)."""
+        check_precision(precision)
+        return weight_bytes(sum(x.weights for x in self.layers), sum(x.biases for x in self.layers), precision)
+
+    def totals(self, weight_precision: str = "fp32") -> dict[str, int]:
+        """The headline numbers, keyed as in trials tables and budgets."""
+        return {
+            "params": self.params,
+            "macs": self.macs,
+            "peak_activation_bytes": self.peak_activation_bytes,
+            "weight_bytes": self.weight_bytes(weight_precision),
+        }
+
+    def table(self) -> list[dict]:
+        """Per-layer rows as plain dicts, ready for pandas or printing."""
+        return [
+            {
+                "layer": layer.name,
+                "kind": layer.kind,
+                "output": "x".join(str(v) for v in layer.output_shape),
+                "params": layer.params,
+                "buffers": layer.buffers,
+                "macs": layer.macs,
+                "activation_bytes": layer.activation_elements * PRECISION_BYTES[self.activation_precision],
+            }
+            for layer in self.layers
+        ]
+
+
+def check_precision(precision: str, key: str = "precision") -> str:
+    if precision not in PRECISION_BYTES:
+        from searcher.errors import one_of
+
+        raise SearcherError(f"`{key}` must be {one_of(precision, tuple(PRECISION_BYTES))}, got {precision!r}", key=key)
+    return precision
+
+
+def cost(arch: Arch, activation_precision: str = "fp32") -> Cost:
+    """Walk the architecture layer by layer and count everything exactly.
+
+    >>> from searcher.arch import parse_arch
+    >>> cost(parse_arch("1x32x32_c6k5v-a2_c16k5v-a2_flat-d120-d84-o10_tanh")).params
+    61706
+    """
+    check_precision(activation_precision, "activation_precision")
+    rows: list[LayerCost] = []
+    c, h, w = arch.input_shape
+    for i, stage in enumerate(arch.stages, start=1):
+        for j, conv in enumerate(stage.convs, start=1):
+            pad = conv.kernel // 2 if conv.padding == "same" else 0
+            h2 = conv_output_size(h, conv.kernel, conv.stride, pad)
+            w2 = conv_output_size(w, conv.kernel, conv.stride, pad)
+            if h2 < 1 or w2 < 1:
+                raise SearcherError(f"{arch}: stage {i} conv {j} shrinks a {h}x{w} map below 1x1")
+            weights, biases = conv_params(c, conv.out_channels, conv.kernel, bias=not arch.batch_norm)
+            rows.append(LayerCost(f"s{i}_conv{j}", "conv", (conv.out_channels, h2, w2), weights, biases, 0,
+                                  conv_macs(c, conv.out_channels, conv.kernel, h2, w2),
+                                  c * h * w + conv.out_channels * h2 * w2))
+            c, h, w = conv.out_channels, h2, w2
+            if arch.batch_norm:
+                rows.append(LayerCost(f"s{i}_bn{j}", "batchnorm", (c, h, w), 0, 2 * c, 2 * c, 0, 0))
+        if stage.pool:
+            p = stage.pool
+            h2, w2 = conv_output_size(h, p.window, p.stride, 0), conv_output_size(w, p.window, p.stride, 0)
+            if h2 < 1 or w2 < 1:
+                raise SearcherError(f"{arch}: stage {i} pool shrinks a {h}x{w} map below 1x1")
+            rows.append(LayerCost(f"s{i}_pool", f"{p.kind}pool", (c, h2, w2), 0, 0, 0, 0, c * h * w + c * h2 * w2))
+            h, w = h2, w2
+    if arch.head.features == "gap":
+        rows.append(LayerCost("gap", "gap", (c,), 0, 0, 0, 0, c * h * w + c))
+        features = c
+    else:
+        features = c * h * w
+        rows.append(LayerCost("flatten", "flatten", (features,), 0, 0, 0, 0, 0))
+    widths = [*arch.head.hidden, arch.head.classes]
+    for k, width in enumerate(widths, start=1):
+        name = "out" if k == len(widths) else f"fc{k}"
+        rows.append(LayerCost(name, "dense", (width,), *dense_params(features, width), 0, features * width, features + width))
+        features = width
+    return Cost(tuple(rows), activation_precision)

@@ -1,0 +1,37 @@
+"""Run folders: every output of a run lives under runs/<name>/, written so nothing is half-written."""
+
+from __future__ import annotations
+
+import os
+import re
+import tempfile
+from pathlib import Path
+
+from searcher.errors import SearcherError
+
+RUNS = Path("runs")
+_NAME = re.compile(r"^[A-Za-z0-9][A-Za-z0-9._-]{0,79}$")
+
+
+def run_folder(name: str, root: Path = RUNS) -> Path:
+    """The folder of run ``name``; names are plain so they are safe as folder names."""
+    if not _NAME.match(name):
+        raise SearcherError(
+            f"run name {name!r} must be 1-80 letters, digits, '.', '_' or '-', starting with a letter or digit",
+            key="--name",
+        )
+    return root / name
+
+
+def write_atomic(path: Path, data: str | bytes) -> Path:
+    """Write a file whole or not at all: a temporary file in the same folder, then a rename."""
+    path.parent.mkdir(parents=True, exist_ok=True)
+    fd, tmp = tempfile.mkstemp(dir=path.parent, prefix=f".{path.name}.", suffix=".tmp")
+    try:
+        with os.fdopen(fd, "wb") as handle:
+            handle.write(data.encode("utf-8") if isinstance(data, str) else data)
+        os.replace(tmp, path)
+    except BaseException:
+        Path(tmp).unlink(missing_ok=True)
+        raise
+    return path

@@ -1,0 +1,72 @@
+"""Human sizes in and out: `250k` parameters, `5M` MACs, `64KiB` of RAM.
+
+Counts take SI suffixes (k = 1,000, M = 1,000,000, G = 10^9). Byte sizes take
+SI (kB, MB, GB) and binary (KiB, MiB, GiB) units; a bare number is bytes.
+"""
+
+from __future__ import annotations
+
+import re
+
+from searcher.errors import SearcherError
+
+_COUNT = {"": 1, "k": 10**3, "K": 10**3, "M": 10**6, "G": 10**9}
+_BYTES = {
+    "": 1, "B": 1,
+    "kB": 10**3, "KB": 10**3, "MB": 10**6, "GB": 10**9,
+    "KiB": 2**10, "MiB": 2**20, "GiB": 2**30,
+}
+_PATTERN = re.compile(r"^\s*([0-9][0-9_]*(?:\.[0-9]+)?)\s*([A-Za-z]*)\s*$")
+
+
+def _parse(text: object, table: dict[str, int], what: str, example: str, key: str | None) -> int:
+    if isinstance(text, bool):
+        raise SearcherError(f"`{key or what}` must be {what} such as {example}, got {text!r}", key=key)
+    if isinstance(text, int):
+        value = text
+    else:
+        match = _PATTERN.match(str(text))
+        if not match or match.group(2) not in table:
+            units = ", ".join(u for u in table if u)
+            raise SearcherError(
+                f"`{key or what}` must be {what} such as {example} (units: {units}), got {text!r}", key=key
+            )
+        number, unit = match.groups()
+        value = round(float(number.replace("_", "")) * table[unit])
+    if value <= 0:
+        raise SearcherError(f"`{key or what}` must be positive, got {text!r}", key=key)
+    return value
+
+
+def parse_count(text: object, key: str | None = None) -> int:
+    """Parse a count such as `250k`, `5M` or `20000`.
+
+    >>> parse_count("2.5k")
+    2500
+    """
+    return _parse(text, _COUNT, "a count", "250k or 5M", key)
+
+
+def parse_bytes(text: object, key: str | None = None) -> int:
+    """Parse a byte size such as `64KiB`, `1MB` or `2048`.
+
+    >>> parse_bytes("64KiB")
+    65536
+    """
+    return _parse(text, _BYTES, "a byte size", "64KiB or 1MB", key)
+
+
+def format_count(n: float) -> str:
+    """Short human form of a count: 61706 -> '61.7k'."""
+    for size, suffix in ((10**9, "G"), (10**6, "M"), (10**3, "k")):
+        if abs(n) >= size:
+            return f"{n / size:.3g}{suffix}"
+    return f"{n:g}"
+
+
+def format_bytes(n: float) -> str:
+    """Short human form of a byte size in binary units: 65536 -> '64 KiB'."""
+    for size, suffix in ((2**30, "GiB"), (2**20, "MiB"), (2**10, "KiB")):
+        if abs(n) >= size:
+            return f"{n / size:.3g} {suffix}"
+    return f"{n:g} B"
