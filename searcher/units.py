@@ -56,11 +56,17 @@ def parse_bytes(text: object, key: str | None = None) -> int:
     return _parse(text, _BYTES, "a byte size", "64KiB or 1MB", key)
 
 
+def _mantissa(v: float) -> str:
+    """Three significant digits, never in exponent form (which the parsers do not read)."""
+    text = f"{v:.3g}"
+    return f"{v:.0f}" if "e" in text else text
+
+
 def format_count(n: float) -> str:
     """Short human form of a count: 61706 -> '61.7k'."""
     for size, suffix in ((10**9, "G"), (10**6, "M"), (10**3, "k")):
         if abs(n) >= size:
-            return f"{n / size:.3g}{suffix}"
+            return f"{_mantissa(n / size)}{suffix}"
     return f"{n:g}"
 
 
@@ -68,5 +74,5 @@ def format_bytes(n: float) -> str:
     """Short human form of a byte size in binary units: 65536 -> '64 KiB'."""
     for size, suffix in ((2**30, "GiB"), (2**20, "MiB"), (2**10, "KiB")):
         if abs(n) >= size:
-            return f"{n / size:.3g} {suffix}"
+            return f"{_mantissa(n / size)} {suffix}"
     return f"{n:g} B"
