@@ -114,7 +114,7 @@ class Arch:
         head = [self.head.features[:4] if self.head.features == "flatten" else "gap"]
         head += [f"d{n}" for n in self.head.hidden]
         if self.head.dropout:
-            head.append(f"r{self.head.dropout:g}")
+            head.append(f"r{_plain_float(self.head.dropout)}")
         head.append(f"o{self.head.classes}")
         parts.append("-".join(head))
         parts.append(self.activation)
@@ -160,6 +160,13 @@ class Arch:
             return cls.from_dict(json.loads(text))
         except json.JSONDecodeError as exc:
             raise SearcherError(f"architecture JSON does not parse: {exc}") from None
+
+
+def _plain_float(value: float) -> str:
+    """Shortest exact decimal without an exponent: fields are split on '-', so 1e-05 would break."""
+    from decimal import Decimal
+
+    return format(Decimal(repr(float(value))), "f")
 
 
 def _conv_text(conv: Conv) -> str:
