@@ -2,6 +2,8 @@
 
 from __future__ import annotations
 
+import sys
+import types
 from collections import OrderedDict
 
 import torch
@@ -67,3 +69,14 @@ def _feature_map(arch: Arch) -> tuple[int, ...]:
 
     last_spatial = [layer for layer in cost(arch).layers if len(layer.output_shape) == 3]
     return last_spatial[-1].output_shape if last_spatial else arch.input_shape
+
+
+class _CallableModule(types.ModuleType):
+    """Importing this module rebinds the package attribute ``searcher.build`` from the
+    function to the module, so the module itself answers ``searcher.build(arch)``."""
+
+    def __call__(self, arch: Arch) -> nn.Sequential:
+        return build(arch)
+
+
+sys.modules[__name__].__class__ = _CallableModule
