@@ -71,6 +71,8 @@ class Arch:
         if self.head.features not in FEATURES:
             raise SearcherError(f"head features {self.head.features!r} is not known; use {one_of(self.head.features, FEATURES)}")
         for stage in self.stages:
+            if not stage.convs:
+                raise SearcherError(f"every stage needs at least one conv, got {stage}")
             for conv in stage.convs:
                 if conv.padding not in PADDINGS:
                     raise SearcherError(f"padding {conv.padding!r} is not known; use {one_of(conv.padding, PADDINGS)}")
