@@ -165,3 +165,23 @@ def accuracy_per_doubling(accuracy: Sequence[float] | np.ndarray, cost: Sequence
     usable = (costs[:-1] > 0) & (costs[1:] > 0) & (doublings > 0)
     gain[1:] = np.where(usable, steps, np.nan)
     return gain
+
+
+def front_steps(front_rows: pd.DataFrame, cost_column: str) -> pd.DataFrame:
+    """For each front row after the first: accuracy gained, cost multiplied, gain per doubling.
+
+    ``front_rows`` is a front sorted by ``cost_column`` (what :func:`front` returns); the
+    first row has NaN in every column, having no cheaper neighbour to compare with.
+    """
+    acc = front_rows["val_accuracy"].to_numpy(dtype=float)
+    costs = front_rows[cost_column].to_numpy(dtype=float)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        ratio = costs / np.r_[np.nan, costs[:-1]]
+    return pd.DataFrame(
+        {
+            "accuracy_step": np.diff(acc, prepend=np.nan),
+            "cost_ratio": ratio,
+            "accuracy_per_doubling": accuracy_per_doubling(acc, costs),
+        },
+        index=front_rows.index,
+    )

@@ -1,8 +1,7 @@
 """One self-contained HTML page that shows what a search found and what each budget buys.
 
-The page embeds plotly.js once and references nothing on the network, so it opens on
-an air-gapped machine and can be mailed as a single file. It must also read well while
-a search is still starting (no trained rows), so every part copes with an empty table.
+plotly.js is embedded once and nothing is fetched, so the page opens offline and travels as
+one file. It must read well while a search is starting, so every part copes with no rows.
 """
 
 from __future__ import annotations
@@ -22,7 +21,7 @@ import plotly.io as pio
 from plotly.offline import get_plotlyjs
 
 from searcher.errors import SearcherError
-from searcher.pareto import COST_COLUMNS, SCORED_STATES, accuracy_per_doubling, check_caps, feasible_mask, front
+from searcher.pareto import COST_COLUMNS, SCORED_STATES, check_caps, feasible_mask, front, front_steps
 from searcher.units import format_bytes, format_count
 
 log = logging.getLogger(__name__)
@@ -32,29 +31,21 @@ STATE_LABELS: dict[str, str] = {"trained": "trained", "stopped_early": "stopped 
                                 "failed": "failed", "interrupted": "interrupted", "running": "running"}
 # Each cost column: the words for it and how its numbers are written.
 COST_LABELS: dict[str, tuple[str, Callable[[float], str]]] = {
-    "params": ("parameters", format_count),
-    "macs": ("MACs", format_count),
-    "peak_activation_bytes": ("peak activation RAM", format_bytes),
-    "weight_bytes": ("weight size", format_bytes),
+    "params": ("parameters", format_count), "macs": ("MACs", format_count),
+    "peak_activation_bytes": ("peak activation RAM", format_bytes), "weight_bytes": ("weight size", format_bytes),
 }
 _TEXT_COLUMNS = ("arch", "state", "reason", "rejected_by")
 _NUMBER_COLUMNS = ("trial", "val_accuracy", *COST_COLUMNS, "stages", "first_width")
 _COLOURS = {"trained": "#3b6ea8", "stopped_early": "#d08b2c", "front": "#222222", "cap": "#b03a3a", "bar": "#7a7f87"}
 _CONFIG = {"displaylogo": False, "responsive": True}
-_TEMPLATE = go.layout.Template(
-    layout=go.Layout(
-        font={"family": "system-ui, -apple-system, 'Segoe UI', sans-serif", "size": 13, "color": "#222"},
-        paper_bgcolor="white",
-        plot_bgcolor="#fbfbfb",
-        xaxis={"gridcolor": "#e6e6e6", "linecolor": "#999", "zeroline": False},
-        yaxis={"gridcolor": "#e6e6e6", "linecolor": "#999", "zeroline": False},
-        hoverlabel={"bgcolor": "white", "font": {"size": 12}},
-        margin={"l": 60, "r": 20, "t": 70, "b": 50},
-        height=420,
-        title={"x": 0.01, "xanchor": "left"},
-        legend={"orientation": "h", "x": 1, "xanchor": "right", "y": 1.02, "yanchor": "bottom"},
-    )
-)
+_AXIS = {"gridcolor": "#e6e6e6", "linecolor": "#999", "zeroline": False}
+_TEMPLATE = go.layout.Template(layout=go.Layout(
+    font={"family": "system-ui, -apple-system, 'Segoe UI', sans-serif", "size": 13, "color": "#222"},
+    paper_bgcolor="white", plot_bgcolor="#fbfbfb", height=420, xaxis=_AXIS, yaxis=_AXIS,
+    hoverlabel={"bgcolor": "white", "font": {"size": 12}}, title={"x": 0.01, "xanchor": "left"},
+    margin={"l": 60, "r": 20, "t": 70, "b": 50},
+    legend={"orientation": "h", "x": 1, "xanchor": "right", "y": 1.02, "yanchor": "bottom"},
+))
 
 
 def prepare(trials: pd.DataFrame) -> pd.DataFrame:
@@ -68,8 +59,7 @@ def prepare(trials: pd.DataFrame) -> pd.DataFrame:
         table[column] = text.where(text.notna(), "").astype(str)
     for column in _NUMBER_COLUMNS:
         table[column] = pd.to_numeric(table[column], errors="coerce") if column in table else np.nan
-    unknown = sorted(set(table["state"]) - set(STATE_LABELS))
-    if unknown:
+    if unknown := sorted(set(table["state"]) - set(STATE_LABELS)):
         log.warning("trials table has unknown states %s; the report counts them as tried only", unknown)
     return table
 
@@ -87,12 +77,9 @@ def _hover(rows: pd.DataFrame) -> list[str]:
     lines = []
     for row in rows.itertuples(index=False):
         costs = " · ".join(f"{COST_LABELS[c][0]} {_cost_text(c, getattr(row, c))}" for c in COST_COLUMNS)
-        trial = "?" if math.isnan(row.trial) else int(row.trial)
-        state = STATE_LABELS.get(row.state, row.state)
-        lines.append(
-            f"<b>{html.escape(row.arch, quote=False)}</b><br>trial {trial} · {state} · "
-            f"accuracy {_percent(row.val_accuracy)}<br>{costs}"
-        )
+        trial, state = "?" if math.isnan(row.trial) else int(row.trial), STATE_LABELS.get(row.state, row.state)
+        lines.append(f"<b>{html.escape(row.arch, quote=False)}</b><br>trial {trial} · {state} · "
+                     f"accuracy {_percent(row.val_accuracy)}<br>{costs}")
     return lines
 
 
@@ -100,8 +87,9 @@ def _scored(table: pd.DataFrame) -> pd.DataFrame:
     return table[table["state"].isin(SCORED_STATES) & table["val_accuracy"].notna()]
 
 
-def _empty_note(fig: go.Figure, text: str) -> go.Figure:
-    fig.add_annotation(text=text, showarrow=False, xref="paper", yref="paper", x=0.5, y=0.5, font={"size": 15})
+def _empty_note(fig: go.Figure, text: str, empty: bool) -> go.Figure:
+    if empty:
+        fig.add_annotation(text=text, showarrow=False, xref="paper", yref="paper", x=0.5, y=0.5, font={"size": 15})
     return fig
 
 
@@ -113,10 +101,8 @@ def _log_axis(fig: go.Figure, cost: str, values: list[float]) -> None:
     if not positive:
         return
     low, high = math.log10(min(positive)) - 0.15, math.log10(max(positive)) + 0.15
-    if write is format_bytes:
-        candidates = [2.0**k for k in range(64)]
-    else:
-        candidates = [m * 10.0**k for k in range(19) for m in (1, 2, 5)]
+    binary = write is format_bytes  # bytes tick at powers of two, counts at 1-2-5 steps
+    candidates = [2.0**k for k in range(64)] if binary else [m * 10.0**k for k in range(19) for m in (1, 2, 5)]
     ticks = [t for t in candidates if low <= math.log10(t) <= high]
     ticks = ticks[:: max(1, math.ceil(len(ticks) / 9))]
     fig.update_xaxes(range=[low, high], tickvals=ticks, ticktext=[write(t) for t in ticks])
@@ -142,8 +128,7 @@ def _cost_figure(table: pd.DataFrame, cost: str, caps: dict[str, float]) -> go.F
         marker={"color": _COLOURS["front"], "size": 11, "symbol": "diamond"},
         text=_hover(best), hovertemplate="%{text}<extra></extra>",
     )
-    if cost in caps:
-        limit = caps[cost]
+    for limit in [caps[cost]] if cost in caps else []:
         fig.add_shape(type="line", x0=limit, x1=limit, y0=0, y1=1, xref="x", yref="paper",
                       line={"color": _COLOURS["cap"], "dash": "dash", "width": 2})
         fig.add_annotation(x=math.log10(limit), y=1, xref="x", yref="paper", yanchor="top", xanchor="left",
@@ -151,39 +136,42 @@ def _cost_figure(table: pd.DataFrame, cost: str, caps: dict[str, float]) -> go.F
                            text=f"cap {_cost_text(cost, limit)}", font={"color": _COLOURS["cap"]})
     _log_axis(fig, cost, [*scored[cost].tolist(), *([caps[cost]] if cost in caps else [])])
     fig.update_yaxes(title="validation accuracy", tickformat=".0%", range=[0, 1] if scored.empty else None)
-    return _empty_note(fig, "no trained candidates yet") if scored.empty else fig
+    return _empty_note(fig, "no trained candidates yet", scored.empty)
 
 
 def _group_figure(table: pd.DataFrame, column: str, label: str) -> go.Figure:
     """Accuracy spread for each value of one shape setting, every point shown."""
     scored = _scored(table)
-    def name(value: float) -> str:
-        return "?" if math.isnan(value) else f"{value:g}"
-
-    names = [name(g) for g in sorted(scored[column].dropna().unique())]
+    groups = ["?" if math.isnan(v) else f"{v:g}" for v in scored[column]]  # '?' where the table has no value
+    names = sorted(set(groups) - {"?"}, key=float) + (["?"] if "?" in groups else [])
     fig = go.Figure(layout={"template": _TEMPLATE, "title": f"Accuracy by {label}", "showlegend": False})
     fig.add_box(
-        x=[name(v) for v in scored[column]], y=scored["val_accuracy"],
-        boxpoints="all", jitter=0.4, pointpos=0, marker={"color": _COLOURS["trained"], "size": 6},
+        x=groups, y=scored["val_accuracy"],
+        boxpoints="all", jitter=0.4, pointpos=0, hoveron="points", marker={"color": _COLOURS["trained"], "size": 6},
         line={"color": "#555"}, fillcolor="rgba(59,110,168,0.12)",
         text=_hover(scored), hovertemplate="%{text}<extra></extra>",
     )
     fig.update_xaxes(title=label, type="category", categoryorder="array", categoryarray=names)
     fig.update_yaxes(title="validation accuracy", tickformat=".0%", range=[0, 1] if scored.empty else None)
-    return _empty_note(fig, "no trained candidates yet") if scored.empty else fig
+    return _empty_note(fig, "no trained candidates yet", scored.empty)
+
+
+def broken_caps_label(rejected_by: str) -> str:
+    """'params+macs' as people read it: 'parameters + MACs'."""
+    parts = [COST_LABELS[p][0] if p in COST_LABELS else p for p in rejected_by.split("+") if p]
+    return " + ".join(parts) or "(no reason given)"
 
 
 def _rejected_figure(table: pd.DataFrame) -> go.Figure:
     """How many candidates each combination of broken caps turned away before training."""
-    rejected = table.loc[table["state"] == "rejected", "rejected_by"].replace("", "(no reason given)")
-    counts = rejected.value_counts().sort_values()
+    counts = table.loc[table["state"] == "rejected", "rejected_by"].map(broken_caps_label).value_counts().sort_values()
     fig = go.Figure(layout={"template": _TEMPLATE, "title": "Rejected before training, by broken cap",
                             "showlegend": False, "height": max(260, 120 + 28 * len(counts))})
     fig.add_bar(x=counts.to_numpy(), y=counts.index.tolist(), orientation="h", marker={"color": _COLOURS["bar"]},
                 text=counts.to_numpy(), textposition="auto", hovertemplate="%{y}: %{x}<extra></extra>")
     fig.update_xaxes(title="candidates", rangemode="tozero")
     fig.update_yaxes(type="category", automargin=True)
-    return _empty_note(fig, "no candidates rejected") if counts.empty else fig
+    return _empty_note(fig, "no candidates rejected", counts.empty)
 
 
 def build_figures(trials: pd.DataFrame, caps: Mapping[str, float | None] | None = None) -> dict[str, go.Figure]:
@@ -201,20 +189,35 @@ def front_table_html(trials: pd.DataFrame, cost: str, caps: Mapping[str, float |
     best = front(prepare(trials), cost, caps=caps)
     if best.empty:
         return '<p class="quiet">No trained candidate within the caps yet, so no front.</p>'
-    gains = accuracy_per_doubling(best["val_accuracy"].to_numpy(), best[cost].to_numpy(dtype=float))
-    steps = np.diff(best["val_accuracy"].to_numpy(), prepend=np.nan)
-    ratios = best[cost].to_numpy(dtype=float) / np.r_[np.nan, best[cost].to_numpy(dtype=float)[:-1]]
+    steps = front_steps(best, cost)
     heads = ["trial", "architecture", "accuracy", *(COST_LABELS[c][0] for c in COST_COLUMNS),
              "step from the row above", f"accuracy per 2× {COST_LABELS[cost][0]}"]
-    rows = []
-    for step, ratio, gain, row in zip(steps, ratios, gains, best.itertuples(index=False)):
-        step_text = "—" if math.isnan(step) else f"{step * 100:+.1f} pts for ×{ratio:.2f} cost"
-        gain_text = "—" if math.isnan(gain) else f"{gain * 100:+.1f} pts"
-        cells = [str(int(row.trial)), f"<code>{html.escape(row.arch)}</code>", _percent(row.val_accuracy),
-                 *(_cost_text(c, getattr(row, c)) for c in COST_COLUMNS), step_text, gain_text]
-        rows.append("<tr>" + "".join(f"<td>{cell}</td>" for cell in cells) + "</tr>")
+    rows = [
+        [str(int(row.trial)), f"<code>{html.escape(row.arch)}</code>", _percent(row.val_accuracy),
+         *(_cost_text(c, getattr(row, c)) for c in COST_COLUMNS),
+         "—" if math.isnan(step) else f"{step * 100:+.1f} pts for ×{ratio:.2f} cost",
+         "—" if math.isnan(gain) else f"{gain * 100:+.1f} pts"]
+        for (step, ratio, gain), row in zip(steps.itertuples(index=False), best.itertuples(index=False))
+    ]
+    return _table(heads, rows, "numbers")
+
+
+def _table(heads: list[str], rows: list[list[str]], css: str) -> str:
+    """An HTML table; heads are plain text, cells are HTML already escaped by the caller."""
     head = "".join(f"<th>{html.escape(h)}</th>" for h in heads)
-    return f'<table class="front"><thead><tr>{head}</tr></thead><tbody>{"".join(rows)}</tbody></table>'
+    body = "".join("<tr>" + "".join(f"<td>{cell}</td>" for cell in row) + "</tr>" for row in rows)
+    return f'<table class="{css}"><thead><tr>{head}</tr></thead><tbody>{body}</tbody></table>'
+
+
+def _failures_html(table: pd.DataFrame, most: int = 30) -> str:
+    """Failed and interrupted trials with their reasons, newest first, so problems show."""
+    bad = table[table["state"].isin(["failed", "interrupted"])].sort_values("trial", ascending=False)
+    if bad.empty:
+        return ""
+    rows = [[str(int(r.trial)), STATE_LABELS[r.state], f"<code>{html.escape(r.arch)}</code>",
+             html.escape(r.reason) or "—"] for r in bad.head(most).itertuples(index=False)]
+    more = f"<p class='quiet'>and {len(bad) - most} more.</p>" if len(bad) > most else ""
+    return f"<h2>Failed or interrupted</h2>{_table(['trial', 'state', 'architecture', 'reason'], rows, 'text')}{more}"
 
 
 def _header_html(table: pd.DataFrame, caps: dict[str, float], title: str, notes: list[str]) -> str:
@@ -222,13 +225,11 @@ def _header_html(table: pd.DataFrame, caps: dict[str, float], title: str, notes:
     tiles = [("tried", len(table))] + [(label, int(counts.get(state, 0))) for state, label in STATE_LABELS.items()]
     tile_html = "".join(f'<div class="tile"><b>{n}</b><span>{html.escape(w)}</span></div>' for w, n in tiles)
     scored = _scored(table)
-    feasible = scored[feasible_mask(scored, caps)]
-    if feasible.empty:
-        best = "No candidate within the caps has been trained yet."
-    else:
-        top = feasible.loc[feasible["val_accuracy"].idxmax()]
-        best = (f"Best within the caps: <b>{_percent(top['val_accuracy'])}</b> by "
-                f"<code>{html.escape(top['arch'])}</code> (trial {int(top['trial'])}).")
+    feasible = scored[feasible_mask(scored, caps)].sort_values("val_accuracy", ascending=False, kind="stable")
+    best = "No candidate within the caps has been trained yet."
+    for top in feasible.head(1).itertuples(index=False):
+        best = (f"Best within the caps: <b>{_percent(top.val_accuracy)}</b> by "
+                f"<code>{html.escape(top.arch)}</code> (trial {int(top.trial)}).")
     cap_words = ", ".join(f"{COST_LABELS[c][0]} ≤ {_cost_text(c, v)}" for c, v in caps.items()) or "none set"
     note_html = "".join(f"<li>{html.escape(line)}</li>" for line in notes)
     return (f"<header><h1>{html.escape(title)}</h1><div class='tiles'>{tile_html}</div><p>{best}</p>"
@@ -236,28 +237,23 @@ def _header_html(table: pd.DataFrame, caps: dict[str, float], title: str, notes:
             + (f"<ul class='notes'>{note_html}</ul>" if notes else "") + "</header>")
 
 
-_STYLE = """
-body { font-family: system-ui, -apple-system, 'Segoe UI', sans-serif; color: #222; margin: 0; background: #f4f4f2; }
-main { max-width: 1150px; margin: 0 auto; padding: 24px; }
-header, section { background: white; border: 1px solid #ddd; border-radius: 6px; padding: 16px 20px; margin-bottom: 18px; }
+_STYLE = """body { font-family: system-ui, -apple-system, 'Segoe UI', sans-serif; color: #222; margin: 0; background: #f4f4f2; }
+main { max-width: 1150px; margin: 0 auto; padding: 24px; } header, section { background: white;
+  border: 1px solid #ddd; border-radius: 6px; padding: 16px 20px; margin-bottom: 18px; }
 h1 { font-size: 24px; margin: 0 0 12px; } h2 { font-size: 18px; margin: 4px 0 8px; } .quiet { color: #666; }
-.tiles { display: flex; flex-wrap: wrap; gap: 8px; margin-bottom: 8px; }
+.tiles { display: flex; flex-wrap: wrap; gap: 8px; margin-bottom: 8px; } .pair { display: grid; gap: 12px; }
 .tile { border: 1px solid #ddd; border-radius: 4px; padding: 6px 12px; min-width: 84px; text-align: center; }
 .tile b { display: block; font-size: 20px; } .tile span { font-size: 12px; color: #666; }
-.notes { margin: 6px 0 0; padding-left: 20px; }
-table.front { border-collapse: collapse; width: 100%; font-size: 13px; margin-top: 8px; }
-table.front th, table.front td { border-bottom: 1px solid #e4e4e4; padding: 4px 8px; text-align: right; }
-table.front th:nth-child(2), table.front td:nth-child(2) { text-align: left; }
-table.front tbody tr:nth-child(odd) { background: #fafafa; }
-code { font-size: 12px; word-break: break-all; }
-.pair { display: grid; grid-template-columns: 1fr 1fr; gap: 12px; }
-@media (max-width: 900px) { .pair { grid-template-columns: 1fr; } }
-"""
+.notes { margin: 6px 0 0; padding-left: 20px; } code { font-size: 12px; word-break: break-all; } table {
+  border-collapse: collapse; width: 100%; font-size: 13px; margin-top: 8px; }
+th, td { border-bottom: 1px solid #e4e4e4; padding: 4px 8px; text-align: left; }
+tbody tr:nth-child(odd) { background: #fafafa; } .numbers td, .numbers th { text-align: right; }
+.numbers td:nth-child(2), .numbers th:nth-child(2) { text-align: left; }
+@media (min-width: 900px) { .pair { grid-template-columns: 1fr 1fr; } }"""
 
 
-def render_html(
-    trials: pd.DataFrame, *, caps: Mapping[str, float | None] | None, title: str, notes: list[str] | None = None
-) -> str:
+def render_html(trials: pd.DataFrame, *, caps: Mapping[str, float | None] | None, title: str,
+                notes: list[str] | None = None) -> str:
     """The whole page as text: header, one section per cost with its front, then the rest."""
     table, set_caps = prepare(trials), check_caps(caps)
     figures = build_figures(table, set_caps)
@@ -266,11 +262,14 @@ def render_html(
         return pio.to_html(figures[key], config=_CONFIG, include_plotlyjs=False, full_html=False, div_id=f"fig-{key}")
 
     sections = [
-        f"<section>{div(c)}<h2>Pareto front by {html.escape(COST_LABELS[c][0])}</h2>{front_table_html(table, c, set_caps)}</section>"
+        f"<section>{div(c)}<h2>Pareto front by {html.escape(COST_LABELS[c][0])}</h2>"
+        f"{front_table_html(table, c, set_caps)}</section>"
         for c in COST_COLUMNS
     ]
     sections.append(f"<section><h2>Shape</h2><div class='pair'>{div('stages')}{div('first_width')}</div></section>")
-    sections.append(f"<section><h2>Rejected candidates</h2>{div('rejected_by')}</section>")
+    sections.append(
+        f"<section><h2>Rejected, failed or interrupted</h2>{div('rejected_by')}{_failures_html(table)}</section>"
+    )
     return (
         f"<!doctype html>\n<html lang='en'><head><meta charset='utf-8'><title>{html.escape(title)}</title>"
         f"<style>{_STYLE}</style><script>window.PlotlyConfig = {{MathJaxConfig: 'local'}};</script>"
@@ -279,9 +278,8 @@ def render_html(
     )
 
 
-def write_report(
-    trials: pd.DataFrame, path: Path, *, caps: dict[str, float], title: str, notes: list[str] | None = None
-) -> Path:
+def write_report(trials: pd.DataFrame, path: Path, *, caps: dict[str, float], title: str,
+                 notes: list[str] | None = None) -> Path:
     """Write the report to ``path`` atomically, so a reader never sees half a page."""
     path = Path(path)
     text = render_html(trials, caps=caps, title=title, notes=notes)

@@ -16,6 +16,7 @@ from searcher.pareto import (
     check_caps,
     feasible_mask,
     front,
+    front_steps,
     hypervolume_2d,
     pareto_mask,
 )
@@ -139,6 +140,15 @@ def test_accuracy_per_doubling() -> None:
     assert math.isnan(gain[0]) and gain[1] == pytest.approx(0.05) and math.isnan(gain[2])
     assert accuracy_per_doubling([0.5], [10]).shape == (1,)
     assert math.isnan(accuracy_per_doubling([0.5, 0.6], [0, 10])[1])
+
+
+def test_front_steps_compare_each_row_with_the_one_before() -> None:
+    rows = pd.DataFrame({"val_accuracy": [0.5, 0.6, 0.9], "params": [100, 200, 800]}, index=[7, 3, 9])
+    steps = front_steps(rows, "params")
+    assert steps.index.tolist() == [7, 3, 9] and steps.iloc[0].isna().all()
+    assert steps["accuracy_step"].iloc[1:].tolist() == pytest.approx([0.1, 0.3])
+    assert steps["cost_ratio"].iloc[1:].tolist() == pytest.approx([2.0, 4.0])
+    assert steps["accuracy_per_doubling"].iloc[1:].tolist() == pytest.approx([0.1, 0.15])  # 0.3 over 2 doublings
 
 
 def make_table() -> pd.DataFrame:

@@ -2,6 +2,8 @@
 
 from __future__ import annotations
 
+import base64
+import json
 import math
 import os
 import re
@@ -17,7 +19,7 @@ from plotly.offline import get_plotlyjs
 
 from searcher.errors import SearcherError
 from searcher.pareto import COST_COLUMNS, feasible_mask, pareto_mask
-from searcher.report import build_figures, front_table_html, render_html, write_report
+from searcher.report import broken_caps_label, build_figures, front_table_html, render_html, write_report
 
 CAPS = {"params": 20_000, "macs": 2_000_000, "peak_activation_bytes": 65_536}
 STATES = ["trained", "stopped_early", "rejected", "failed", "interrupted", "running"]
@@ -72,7 +74,7 @@ def page(trials: pd.DataFrame, tmp_path_factory: pytest.TempPathFactory) -> tupl
     return path, path.read_text(encoding="utf-8")
 
 
-def test_page_is_self_contained(page: tuple[Path, str]) -> None:
+def test_page_is_self_contained(trials: pd.DataFrame, page: tuple[Path, str]) -> None:
     path, text = page
     bundle = get_plotlyjs()
     assert text.count(bundle) == 1
@@ -81,7 +83,7 @@ def test_page_is_self_contained(page: tuple[Path, str]) -> None:
     # bundle itself holds default URLs for map and geo traces, which this page never uses.)
     assert 'src="http' not in outside and "https://cdn" not in outside
     assert not re.search(r"""(src|href)\s*=\s*['"]?(https?:)?//""", outside)
-    assert outside.count("Plotly.newPlot") == len(build_figures(make_trials(), CAPS))
+    assert outside.count("Plotly.newPlot") == len(build_figures(trials, CAPS))
     assert not list(path.parent.glob(".*.tmp"))  # the temp file was renamed, not left behind
 
 
@@ -113,6 +115,34 @@ def test_front_trace_equals_pareto_mask(trials: pd.DataFrame, cost: str) -> None
     assert all(a in h for a, h in zip(trials.loc[trials["state"] == "trained", "arch"], points.text))
 
 
+def decode(value: object) -> list:
+    """A JSON array from plotly's page: plain, or typed as {"dtype", "bdata"} (base64 of the raw
+    little-endian values; plotly.py 6+ writes numpy arrays this way for plotly.js typed arrays)."""
+    if isinstance(value, dict):
+        return np.frombuffer(base64.b64decode(value["bdata"]), dtype=value["dtype"]).tolist()
+    return list(value)
+
+
+def test_embedded_figure_json_matches_built_figure(trials: pd.DataFrame, page: tuple[Path, str]) -> None:
+    text = page[1]
+    start = text.index('"fig-params",') + len('"fig-params",')
+    data, _ = json.JSONDecoder().raw_decode(text[start:].lstrip())
+    embedded = next(t for t in data if t["name"].startswith("Pareto front"))
+    built = trace(build_figures(trials, CAPS)["params"], "Pareto front")
+    assert decode(embedded["x"]) == list(built.x) and decode(embedded["text"]) == list(built.text)
+    assert np.allclose(decode(embedded["y"]), built.y) and len(built.x) > 2
+
+
+def test_points_over_a_cap_are_drawn_hollow(trials: pd.DataFrame) -> None:
+    points = trace(build_figures(trials, {"params": 5000})["params"], "trained")
+    hollow = [s == "circle-open" for s in points.marker.symbol]
+    assert hollow == [x > 5000 for x in points.x] and any(hollow) and not all(hollow)
+
+
+def test_failures_listed_with_reason(page: tuple[Path, str]) -> None:
+    assert "diverged: loss nan at epoch 2" in page[1]
+
+
 @pytest.mark.parametrize("cost", COST_COLUMNS)
 def test_cap_lines_at_the_cap(trials: pd.DataFrame, cost: str) -> None:
     fig = build_figures(trials, CAPS)[cost]
@@ -135,7 +165,8 @@ def test_shape_and_rejection_figures(trials: pd.DataFrame) -> None:
     assert sorted(set(box.x)) == sorted({str(s) for s in scored["stages"]})
     bars = figures["rejected_by"].data[0]
     counts = trials.loc[trials["state"] == "rejected", "rejected_by"].value_counts()
-    assert dict(zip(bars.y, bars.x)) == counts.to_dict()
+    assert dict(zip(bars.y, bars.x)) == {broken_caps_label(k): v for k, v in counts.items()}
+    assert broken_caps_label("params+macs") == "parameters + MACs" and broken_caps_label("") == "(no reason given)"
 
 
 def test_front_table_lists_front_with_gain_per_doubling(trials: pd.DataFrame) -> None:
