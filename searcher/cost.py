@@ -20,6 +20,7 @@ What is counted, and in which unit:
 
 from __future__ import annotations
 
+import math
 from dataclasses import dataclass
 
 from searcher.arch import Arch
@@ -184,3 +185,17 @@ def cost(arch: Arch, activation_precision: str = "fp32") -> Cost:
         rows.append(LayerCost(name, "dense", (width,), *dense_params(features, width), 0, features * width, features + width))
         features = width
     return Cost(tuple(rows), activation_precision)
+
+
+def training_bytes(cost: Cost, batch_size: int, optimizer_slots: int = 2) -> int:
+    """Estimated fp32 memory to train at ``batch_size``: a guard, not an exact figure.
+
+    Counts, per image, every layer output saved for the backward pass three times over (the
+    layer's output, its batch-norm and activation copies, and its gradient), plus the input;
+    then weights, their gradients and ``optimizer_slots`` optimiser tensors each (2 for Adam).
+    This errs high for plain layers, which is what a guard should do.
+    """
+    per_image = sum(math.prod(layer.output_shape) for layer in cost.layers) * 3
+    first = cost.layers[0]
+    per_image += first.activation_elements - math.prod(first.output_shape)  # the input batch itself
+    return 4 * (batch_size * per_image + (cost.params + cost.buffers) * (2 + optimizer_slots))

@@ -1,0 +1,75 @@
+"""Telling live trials from dead ones, so a killed worker costs one candidate and no more.
+
+Optuna 5 heartbeats run only inside ``study.optimize()`` on RDB storages, and a killed trial
+otherwise stays RUNNING for ever. So each trial is claimed right after it is asked: the
+worker's host and process id go on the trial (``worker``), and a training worker stamps
+``heartbeat`` every few seconds. A RUNNING trial is dead when its process is gone (same
+host), its stamps stopped (another host), or it was never claimed and is older than a grace
+period. Dead trials are failed, marked ``interrupted``, and their parameters queued once more.
+"""
+
+from __future__ import annotations
+
+import logging
+import os
+import socket
+import time
+
+import optuna
+from optuna.trial import TrialState
+
+from searcher.records import HEARTBEAT, INTERRUPTED, RECORD, record_of, worker_id
+
+log = logging.getLogger(__name__)
+
+WORKER = "worker"
+STALE_SECONDS = 120.0  # no heartbeat for this long: the worker on another host is gone
+UNCLAIMED_SECONDS = 60.0  # asked but never claimed for this long: the worker died at once
+
+
+def claim(trial: optuna.Trial) -> None:
+    """Mark the trial as this process's, before anything else happens to it."""
+    trial.set_user_attr(WORKER, worker_id())
+
+
+def pid_alive(pid: int) -> bool:
+    try:
+        os.kill(pid, 0)
+    except ProcessLookupError:
+        return False
+    except PermissionError:
+        return True
+    return True
+
+
+def is_dead(trial: optuna.trial.FrozenTrial, now: float, host: str) -> bool:
+    worker = trial.user_attrs.get(WORKER)
+    if worker is None:
+        started = trial.datetime_start.timestamp() if trial.datetime_start else now
+        return now - started > UNCLAIMED_SECONDS
+    if worker["pid"] == os.getpid() and worker["host"] == host:
+        return False
+    if worker["host"] == host:
+        return not pid_alive(worker["pid"])
+    last = trial.user_attrs.get(HEARTBEAT) or worker["started"]
+    return now - last > STALE_SECONDS
+
+
+def recover_stale(study: optuna.Study) -> list[int]:
+    """Fail every dead RUNNING trial as interrupted and queue its parameters again (once)."""
+    now, host = time.time(), socket.gethostname()
+    recovered = []
+    for trial in study.get_trials(deepcopy=False, states=(TrialState.RUNNING,)):
+        if not is_dead(trial, now, host):
+            continue
+        record = record_of(trial) | {"state": INTERRUPTED, "reason": "its worker died; queued again"}
+        try:
+            study._storage.set_trial_user_attr(trial._trial_id, RECORD, record)
+            study.tell(trial.number, state=TrialState.FAIL)
+        except (RuntimeError, ValueError, optuna.exceptions.UpdateFinishedTrialError):
+            continue  # another worker recovered it first
+        if trial.user_attrs.get("retry_of") is None and trial.params:
+            study.enqueue_trial(dict(trial.params), user_attrs={"retry_of": trial.number})
+        recovered.append(trial.number)
+        log.info("trial %d was left running by a worker that died: marked interrupted, queued again", trial.number)
+    return recovered

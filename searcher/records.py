@@ -1,0 +1,92 @@
+"""What each trial records, and the trials table read back from a study.
+
+Every trial carries one user attribute, ``searcher``: a dict with the architecture, its costs and
+its outcome. The table below is built from those alone, so ``report`` and ``status`` can read a
+study that another process (or machine) is still writing.
+"""
+
+from __future__ import annotations
+
+import math
+import os
+import socket
+import time
+from typing import Any
+
+import optuna
+import pandas as pd
+from optuna.trial import TrialState
+
+from searcher.arch import Arch
+
+RECORD = "searcher"
+HEARTBEAT = "heartbeat"
+COLUMNS = (
+    "trial", "arch", "state", "reason", "rejected_by", "val_accuracy", "train_seconds", "epochs",
+    "params", "macs", "peak_activation_bytes", "weight_bytes", "training_bytes",
+    "stages", "convs", "first_width", "last_width", "worker", "retry_of", "repeat_of",
+)
+# states a finished trial can have in the table
+TRAINED, STOPPED, REJECTED, FAILED, INTERRUPTED, RUNNING = (
+    "trained", "stopped_early", "rejected", "failed", "interrupted", "running")
+NOT_STARTED = "not_started"  # asked, then left for a later run: not enough time left
+DUPLICATE = "duplicate"  # the same architecture was already being trained by another worker
+
+
+def worker_id() -> dict[str, Any]:
+    """Who is running a trial: host and process, to tell a dead worker from a live one."""
+    return {"host": socket.gethostname(), "pid": os.getpid(), "started": time.time()}
+
+
+def describe(arch: Arch, totals: dict[str, int]) -> dict[str, Any]:
+    """The candidate part of a record: its text form, costs and shape summary."""
+    return {
+        "arch": arch.to_text(), **totals, "stages": arch.depth, "convs": arch.conv_count,
+        "first_width": arch.widths[0] if arch.widths else 0, "last_width": arch.widths[-1] if arch.widths else 0,
+    }
+
+
+def record_of(trial: optuna.trial.FrozenTrial) -> dict[str, Any]:
+    return dict(trial.user_attrs.get(RECORD) or {})
+
+
+def row_of(trial: optuna.trial.FrozenTrial) -> dict[str, Any]:
+    """One table row; trials with no record yet (just asked) show what Optuna knows."""
+    record = record_of(trial)
+    state = record.get("state")
+    if trial.state == TrialState.RUNNING:
+        state = RUNNING
+    elif state in (None, "training"):
+        state = FAILED  # ended by something other than this program (another tool, a crash clean-up)
+    row = {column: record.get(column) for column in COLUMNS}
+    row.update(trial=trial.number, state=state, reason=record.get("reason", ""),
+               rejected_by=record.get("rejected_by", ""), arch=record.get("arch", ""))
+    worker = trial.user_attrs.get("worker") or {}
+    row["worker"] = f"{worker.get('host', '')}:{worker.get('pid', '')}" if worker else ""
+    if row["val_accuracy"] is None:
+        row["val_accuracy"] = math.nan
+    return row
+
+
+def trials_frame(study: optuna.Study) -> pd.DataFrame:
+    """Every trial of the study as one row, in trial order (see COLUMNS)."""
+    rows = [row_of(t) for t in study.get_trials(deepcopy=False)]
+    frame = pd.DataFrame(rows, columns=list(COLUMNS))
+    for column in ("train_seconds",):
+        frame[column] = frame[column].fillna(0.0)
+    return frame
+
+
+def counts(frame: pd.DataFrame) -> dict[str, int]:
+    """Trials by state, plus 'tried' (every candidate the sampler proposed that was judged)."""
+    by_state = frame["state"].value_counts().to_dict()
+    out = {s: int(by_state.get(s, 0)) for s in (TRAINED, STOPPED, REJECTED, FAILED, INTERRUPTED, RUNNING)}
+    out["tried"] = sum(out[s] for s in (TRAINED, STOPPED, REJECTED, FAILED, INTERRUPTED))
+    out["repeats"] = int(frame["repeat_of"].notna().sum()) if len(frame) else 0
+    return out
+
+
+def trained_count(frame: pd.DataFrame) -> int:
+    """Candidates that used training time (repeats of a known result do not count)."""
+    spent = frame["state"].isin([TRAINED, STOPPED, FAILED]) & frame["repeat_of"].isna()
+    return int(spent.sum())

@@ -1,0 +1,383 @@
+"""The search: propose a candidate, gate it on the budget, train the survivors, tell Optuna.
+
+One worker runs :func:`work` on one study; ``--workers N`` starts N of them as processes
+(see :mod:`searcher.workers`). Every trial is told to Optuna as soon as it ends, so a kill
+loses at most the candidate in flight, and :mod:`searcher.liveness` re-queues that one.
+
+How each proposal ends (the ``state`` column of trials.csv):
+
+* ``rejected`` — breaks a cap by exact arithmetic; never built. Told to Optuna as COMPLETE with
+  a plausible accuracy (chance level) and a positive constraint, so TPE and NSGA-II learn to
+  avoid the region (a FAIL would be invisible to TPE).
+* ``trained`` / ``stopped_early`` — trained; stopped early means it fell behind its peers at an
+  epoch checkpoint (successive halving; a dominance rule in two-objective mode).
+* ``failed`` — training diverged, or it ran past the per-candidate time limit.
+* ``interrupted`` — a signal, the run's time limit or a crash ended it; queued again once.
+"""
+
+from __future__ import annotations
+
+import logging
+import math
+import signal
+import threading
+import time
+from dataclasses import dataclass, field, replace
+from pathlib import Path
+from typing import Any
+
+import optuna
+from optuna.trial import TrialState
+
+from searcher.arch import Arch
+from searcher.budget import Budget, Violation
+from searcher.cost import cost, training_bytes
+from searcher.errors import SearcherError
+from searcher.records import (
+    DUPLICATE, FAILED, HEARTBEAT, INTERRUPTED, NOT_STARTED, RECORD, REJECTED, STOPPED, TRAINED,
+    describe, record_of, trained_count, trials_frame,
+)
+from searcher.space import Space
+from searcher.study import OBJECTIVES
+
+log = logging.getLogger(__name__)
+
+HEARTBEAT_SECONDS = 20.0  # how often a training worker says it is alive
+MAX_IDLE_PROPOSALS = 300  # stop after this many proposals in a row that could not be trained
+
+
+class StopRequested(BaseException):
+    """SIGINT or SIGTERM arrived during training."""
+
+    def __init__(self, signum: int) -> None:
+        super().__init__(signal.Signals(signum).name)
+        self.signum = signum
+
+
+class _Signals:
+    """Turns SIGINT/SIGTERM into a flag, raised as StopRequested only while training runs."""
+
+    def __init__(self) -> None:
+        self.received: int | None = None
+        self.raise_now = False
+
+    def __call__(self, signum: int, frame: Any) -> None:
+        self.received = signum
+        if self.raise_now:
+            self.raise_now = False
+            raise StopRequested(signum)
+
+    def install(self) -> None:
+        if threading.current_thread() is threading.main_thread():
+            signal.signal(signal.SIGINT, self)
+            signal.signal(signal.SIGTERM, self)
+
+
+@dataclass(frozen=True)
+class WorkerPlan:
+    """What one worker needs beyond the study: limits and where to write its log."""
+
+    trials: int  # candidates to train over the study's life (repeats of known results are free)
+    deadline: float | None  # time.time() after which nothing new starts and training stops
+    candidate_seconds: float | None  # per-candidate training time limit
+    memory_cap: int  # bytes; candidates whose training-memory estimate exceeds it are rejected
+    threads: int | None  # torch threads for this worker
+    log_path: Path | None  # one line per candidate, appended
+    seed: int = 0
+    parent_pid: int | None = None  # stop when the parent process is gone
+
+
+@dataclass
+class WorkerTally:
+    """What this worker did, for the progress line and the closing summary."""
+
+    proposals: list[str] = field(default_factory=list)  # state of every proposal, in order
+    mac_images: float = 0.0  # sum over trained candidates of MACs x training images seen
+    train_seconds: float = 0.0
+    started: float = field(default_factory=time.time)
+    stopped_by: str = ""  # why the loop ended
+
+    def seconds_per_mac_image(self) -> float | None:
+        return self.train_seconds / self.mac_images if self.mac_images else None
+
+
+def constraint_value(violations: list[Violation], totals: dict[str, int], caps: dict[str, int]) -> float:
+    """One number for Optuna: > 0 is the summed relative overshoot, ≤ 0 the tightest slack."""
+    if violations:
+        return sum(v.excess for v in violations)
+    if not caps:
+        return -1.0
+    return max((totals[c] - limit) / limit for c, limit in caps.items())
+
+
+class Search:
+    """One worker's loop over a study; see the module docstring for the states."""
+
+    def __init__(self, study: optuna.Study, space: Space, budget: Budget, train_settings: Any, data: Any,
+                 objective: str, plan: WorkerPlan) -> None:
+        self.study, self.space, self.budget = study, space, budget
+        self.train_settings, self.data, self.objective, self.plan = train_settings, data, objective, plan
+        self.tally = WorkerTally()
+        self.signals = _Signals()
+        self.classes = data.num_classes
+        self._known: dict[str, tuple[int, Any]] = {}  # arch text -> (trial number, values) of trained ones
+        self.on_proposal: Any = None  # called as on_proposal(state, tally) after each proposal
+
+    # -- the loop --------------------------------------------------------------------------
+    def run(self) -> WorkerTally:
+        from searcher.liveness import recover_stale
+
+        self.signals.install()
+        recover_stale(self.study)
+        idle = 0
+        while True:
+            stop = self._should_stop(idle)
+            if stop:
+                self.tally.stopped_by = stop
+                break
+            state = self._one()
+            self.tally.proposals.append(state)
+            if self.on_proposal is not None:
+                self.on_proposal(state, self.tally)
+            idle = idle + 1 if state in (REJECTED, DUPLICATE, "repeat") else 0
+            if state in (NOT_STARTED, INTERRUPTED):
+                self.tally.stopped_by = self.tally.stopped_by or state
+                break
+        return self.tally
+
+    def _should_stop(self, idle: int) -> str:
+        if self.signals.received:
+            return f"stopped by {signal.Signals(self.signals.received).name}"
+        if self.plan.deadline is not None and time.time() >= self.plan.deadline:
+            return "time limit reached"
+        if self.plan.parent_pid is not None and _parent_gone(self.plan.parent_pid):
+            return "parent process gone"
+        if idle >= MAX_IDLE_PROPOSALS:
+            return f"{idle} proposals in a row were over budget or already known; the space looks exhausted"
+        frame = trials_frame(self.study)
+        if trained_count(frame) >= self.plan.trials:
+            return f"{self.plan.trials} candidates trained"
+        return ""
+
+    def _one(self) -> str:
+        from searcher.liveness import claim
+
+        trial = self.study.ask()
+        claim(trial)
+        arch = self.space.suggest(trial, self.classes)
+        result_cost = cost(arch, self.budget.activation_precision)
+        totals = self.budget.totals(result_cost)
+        totals["training_bytes"] = training_bytes(result_cost, self.train_settings.batch_size)
+        violations = self.budget.check(totals)
+        if totals["training_bytes"] > self.plan.memory_cap:
+            violations.append(Violation("training_bytes", totals["training_bytes"], self.plan.memory_cap))
+        record = describe(arch, totals) | {"retry_of": trial.user_attrs.get("retry_of")}
+        caps = self.budget.caps() | {"training_bytes": self.plan.memory_cap}
+        trial.set_constraint("budget", constraint_value(violations, totals, caps))
+        if violations:
+            return self._finish(trial, record, REJECTED, "; ".join(map(str, violations)),
+                                rejected_by="+".join(v.cap for v in violations))
+        known = self._known_result(record["arch"])
+        if known is not None:
+            number, values = known
+            record["repeat_of"] = number
+            self._finish(trial, record, TRAINED, f"same architecture as trial {number}", values=values)
+            return "repeat"
+        if self._in_training_elsewhere(trial.number, record["arch"]):
+            return self._finish(trial, record, DUPLICATE, "another worker is training the same architecture",
+                                optuna_state=TrialState.FAIL)
+        left = None if self.plan.deadline is None else self.plan.deadline - time.time()
+        predicted = self._predict_seconds(totals["macs"])
+        if left is not None and predicted is not None and predicted > left:
+            self._requeue(trial)
+            return self._finish(trial, record, NOT_STARTED,
+                                f"predicted {predicted:.0f} s of training but {left:.0f} s left; queued for the next run",
+                                optuna_state=TrialState.FAIL)
+        return self._train(trial, arch, totals, record)
+
+    # -- training one candidate ---------------------------------------------------------------
+    def _train(self, trial: optuna.Trial, arch: Arch, totals: dict, record: dict) -> str:
+        from searcher.build import build
+        from searcher.train import Diverged, OutOfTime, TrainProgress, train_candidate
+
+        record = record | {"state": "training"}
+        trial.set_user_attr(RECORD, record)
+        beat = _Heartbeat(self.study, trial._trial_id)
+        progress = TrainProgress()
+        run_deadline = self._monotonic(self.plan.deadline)
+        limit = None if self.plan.candidate_seconds is None else time.monotonic() + self.plan.candidate_seconds
+        deadline = min((d for d in (run_deadline, limit) if d is not None), default=None)
+        split = self.data.at(arch.input_shape)
+        seed = self.plan.seed * 1_000_003 + trial.number
+        on_epoch = self._on_epoch(trial, totals)
+        beat.start()
+        self.signals.raise_now = True
+        try:
+            if self.signals.received:
+                raise StopRequested(self.signals.received)
+            model = build(arch)
+            result = train_candidate(model, split.train.images, split.train.labels, split.val.images,
+                                     split.val.labels, self.train_settings, seed=seed, on_epoch=on_epoch,
+                                     deadline=deadline, threads=self.plan.threads, progress=progress)
+            self.signals.raise_now = False
+            state, reason = TRAINED, ""
+        except optuna.TrialPruned:
+            self.signals.raise_now = False
+            state, reason, result = STOPPED, f"behind its peers after epoch {len(progress.history)}", progress.result()
+        except Diverged as exc:
+            self.signals.raise_now = False
+            state, reason, result = FAILED, f"diverged: {exc.reason}", exc.result
+        except OutOfTime as exc:
+            self.signals.raise_now = False
+            result = exc.result
+            if limit is not None and (run_deadline is None or limit <= run_deadline):
+                state, reason = FAILED, f"over the per-candidate limit of {self.plan.candidate_seconds:.0f} s"
+            else:
+                state, reason = INTERRUPTED, "the run's time limit was reached during training; queued again"
+        except StopRequested as exc:
+            self.signals.raise_now = False
+            state, reason, result = INTERRUPTED, f"stopped by {exc}; queued again", progress.result()
+        finally:
+            self.signals.raise_now = False
+            beat.stop()
+        if state == INTERRUPTED:
+            self._requeue(trial)
+        if state in (TRAINED, STOPPED):
+            self.tally.mac_images += totals["macs"] * max(progress.images_seen, 1)
+            self.tally.train_seconds += result.seconds
+        record.update(val_accuracy=_finite(result.val_accuracy), history=list(result.history),
+                      train_seconds=round(result.seconds, 3), epochs=result.epochs)
+        values = self._values(result.val_accuracy, totals)
+        optuna_state = {TRAINED: TrialState.COMPLETE, STOPPED: TrialState.PRUNED}.get(state, TrialState.FAIL)
+        if state == STOPPED:
+            values = None
+        self._finish(trial, record, state, reason, values=values, optuna_state=optuna_state)
+        if state == TRAINED:
+            self._known[record["arch"]] = (trial.number, values)
+        return state
+
+    def _on_epoch(self, trial: optuna.Trial, totals: dict):
+        """Stop poor candidates between epochs: Optuna's pruner, or dominance for two objectives."""
+        cost_column = OBJECTIVES[self.objective]
+
+        def on_epoch(epoch: int, accuracy: float) -> None:
+            self.signals.raise_now = False
+            try:
+                if cost_column is None:
+                    trial.report(accuracy, epoch + 1)
+                    if trial.should_prune():
+                        raise optuna.TrialPruned()
+                elif self._dominated(epoch, accuracy, totals[cost_column], cost_column):
+                    raise optuna.TrialPruned()
+            finally:
+                self.signals.raise_now = self.signals.received is None
+            if self.signals.received:
+                raise StopRequested(self.signals.received)
+
+        return on_epoch
+
+    def _dominated(self, epoch: int, accuracy: float, own_cost: float, column: str, margin: float = 0.02) -> bool:
+        """Two-objective early stop: some finished candidate no costlier was clearly better at this epoch."""
+        if epoch + 1 >= self.train_settings.epochs:
+            return False
+        for t in self.study.get_trials(deepcopy=False, states=(TrialState.COMPLETE,)):
+            r = record_of(t)
+            history = r.get("history") or []
+            if r.get("state") == TRAINED and len(history) > epoch and r.get(column, math.inf) <= own_cost:
+                if history[epoch] >= accuracy + margin:
+                    return True
+        return False
+
+    # -- bookkeeping ------------------------------------------------------------------------------
+    def _values(self, accuracy: float, totals: dict) -> list[float]:
+        column = OBJECTIVES[self.objective]
+        accuracy = accuracy if math.isfinite(accuracy) else 0.0
+        return [accuracy] if column is None else [accuracy, float(totals[column])]
+
+    def _finish(self, trial: optuna.Trial, record: dict, state: str, reason: str, *, rejected_by: str = "",
+                values: Any = None, optuna_state: TrialState = TrialState.COMPLETE) -> str:
+        record = record | {"state": state, "reason": reason, "rejected_by": rejected_by}
+        if state == REJECTED:
+            values = self._values(1.0 / self.classes, record)  # chance level: plausible for GP, dull for TPE
+            record["train_seconds"] = 0.0
+        trial.set_user_attr(RECORD, record)
+        if optuna_state == TrialState.COMPLETE:
+            self.study.tell(trial, values)
+        else:
+            self.study.tell(trial, state=optuna_state)
+        self._log(trial.number, record)
+        return state
+
+    def _known_result(self, text: str) -> tuple[int, Any] | None:
+        if text in self._known:
+            return self._known[text]
+        for t in self.study.get_trials(deepcopy=False, states=(TrialState.COMPLETE,)):
+            r = record_of(t)
+            if r.get("state") == TRAINED and r.get("arch") == text and r.get("repeat_of") is None:
+                self._known[text] = (t.number, list(t.values))
+                return self._known[text]
+        return None
+
+    def _in_training_elsewhere(self, number: int, text: str) -> bool:
+        running = self.study.get_trials(deepcopy=False, states=(TrialState.RUNNING,))
+        return any(t.number != number and record_of(t).get("arch") == text for t in running)
+
+    def _requeue(self, trial: optuna.Trial) -> None:
+        """Queue the same parameters once more, unless this already was the retry."""
+        if trial.user_attrs.get("retry_of") is None:
+            self.study.enqueue_trial(dict(trial.params), user_attrs={"retry_of": trial.number})
+
+    def _predict_seconds(self, macs: int) -> float | None:
+        rate = self.tally.seconds_per_mac_image()
+        if rate is None:
+            return None
+        images = self.train_settings.epochs * round(self.train_settings.train_fraction * len(self.data.train.labels))
+        return rate * macs * images
+
+    @staticmethod
+    def _monotonic(wall: float | None) -> float | None:
+        return None if wall is None else time.monotonic() + (wall - time.time())
+
+    def _log(self, number: int, record: dict) -> None:
+        acc = record.get("val_accuracy")
+        line = (f"{time.strftime('%Y-%m-%d %H:%M:%S')} trial {number} {record['state']}"
+                f" acc={'-' if acc is None else f'{acc:.4f}'} params={record['params']} macs={record['macs']}"
+                f" seconds={record.get('train_seconds', 0):.1f} arch={record['arch']}"
+                + (f" reason={record['reason']}" if record.get("reason") else ""))
+        log.debug(line)
+        if self.plan.log_path is not None:
+            with open(self.plan.log_path, "a", encoding="utf-8") as handle:
+                handle.write(line + "\n")
+
+
+def _finite(value: float) -> float | None:
+    return value if value is not None and math.isfinite(value) else None
+
+
+def _parent_gone(pid: int) -> bool:
+    import os
+
+    return os.getppid() != pid
+
+
+class _Heartbeat:
+    """A thread that stamps the running trial every few seconds, so others can tell it is alive."""
+
+    def __init__(self, study: optuna.Study, trial_id: int) -> None:
+        self.study, self.trial_id = study, trial_id
+        self._stop = threading.Event()
+        self._thread = threading.Thread(target=self._run, daemon=True, name="searcher-heartbeat")
+
+    def _run(self) -> None:
+        while not self._stop.wait(HEARTBEAT_SECONDS):
+            try:
+                self.study._storage.set_trial_user_attr(self.trial_id, HEARTBEAT, time.time())
+            except Exception as exc:  # a failed stamp must not stop training; the next one retries
+                log.debug("heartbeat failed: %s", exc)
+
+    def start(self) -> None:
+        self.study._storage.set_trial_user_attr(self.trial_id, HEARTBEAT, time.time())
+        self._thread.start()
+
+    def stop(self) -> None:
+        self._stop.set()
