@@ -224,11 +224,11 @@ def _header_html(table: pd.DataFrame, caps: dict[str, float], title: str, notes:
     counts = table["state"].value_counts()
     tiles = [("tried", len(table))] + [(label, int(counts.get(state, 0))) for state, label in STATE_LABELS.items()]
     tile_html = "".join(f'<div class="tile"><b>{n}</b><span>{html.escape(w)}</span></div>' for w, n in tiles)
-    scored = _scored(table)
-    feasible = scored[feasible_mask(scored, caps)].sort_values("val_accuracy", ascending=False, kind="stable")
-    best = "No candidate within the caps has been trained yet."
-    for top in feasible.head(1).itertuples(index=False):
-        best = (f"Best within the caps: <b>{_percent(top.val_accuracy)}</b> by "
+    scored = _scored(table)  # the best is fully trained, as the exported one is; fewest params wins a tie
+    done = scored[feasible_mask(scored, caps) & (scored["state"] == "trained").to_numpy()]
+    best = "No candidate within the caps has been fully trained yet."
+    for top in done.sort_values(["val_accuracy", "params"], ascending=[False, True]).head(1).itertuples(index=False):
+        best = (f"Best fully trained within the caps: <b>{_percent(top.val_accuracy)}</b> by "
                 f"<code>{html.escape(top.arch)}</code> (trial {int(top.trial)}).")
     cap_words = ", ".join(f"{COST_LABELS[c][0]} ≤ {_cost_text(c, v)}" for c, v in caps.items()) or "none set"
     note_html = "".join(f"<li>{html.escape(line)}</li>" for line in notes)
@@ -237,7 +237,7 @@ def _header_html(table: pd.DataFrame, caps: dict[str, float], title: str, notes:
             + (f"<ul class='notes'>{note_html}</ul>" if notes else "") + "</header>")
 
 
-_STYLE = """body { font-family: system-ui, -apple-system, 'Segoe UI', sans-serif; color: #222; margin: 0; background: #f4f4f2; }
+_STYLE = """body { font-family: system-ui, sans-serif; color: #222; margin: 0; background: #f4f4f2; }
 main { max-width: 1150px; margin: 0 auto; padding: 24px; } header, section { background: white;
   border: 1px solid #ddd; border-radius: 6px; padding: 16px 20px; margin-bottom: 18px; }
 h1 { font-size: 24px; margin: 0 0 12px; } h2 { font-size: 18px; margin: 4px 0 8px; } .quiet { color: #666; }

@@ -93,9 +93,10 @@ def test_header_counts_best_and_notes(trials: pd.DataFrame, page: tuple[Path, st
     for state, label in [("trained", "trained"), ("stopped_early", "stopped early"), ("failed", "failed")]:
         assert f"<b>{(trials['state'] == state).sum()}</b><span>{label}</span>" in text
     assert f"<b>{len(trials)}</b><span>tried</span>" in text
-    scored = trials[trials["state"].isin(["trained", "stopped_early"])]
-    best = scored[feasible_mask(scored, CAPS)].sort_values("val_accuracy").iloc[-1]
-    assert best["arch"] in text.split("</header>")[0]
+    trained = trials[(trials["state"] == "trained") & feasible_mask(trials, CAPS)]
+    best = trained.loc[trained["val_accuracy"].idxmax()]
+    header = text.split("</header>")[0]
+    assert best["arch"] in header and f"{best['val_accuracy']:.1%}" in header
     assert "20k" in text and "64 KiB" in text  # caps written for people
 
 
@@ -196,7 +197,7 @@ def test_edge_cases_render(name: str, caps: dict, tmp_path: Path) -> None:
     text = path.read_text(encoding="utf-8")
     assert text.count(get_plotlyjs()) == 1 and text.rstrip().endswith("</html>")
     if name != "nans everywhere":
-        assert "No candidate within the caps has been trained yet." in text
+        assert "No candidate within the caps has been fully trained yet." in text
     if not caps:
         assert "Caps: none set." in text
 
