@@ -82,6 +82,7 @@ def test_page_is_self_contained(trials: pd.DataFrame, page: tuple[Path, str]) ->
     # Our own markup and the figure JSON reference nothing on the network. (The plotly.js
     # bundle itself holds default URLs for map and geo traces, which this page never uses.)
     assert 'src="http' not in outside and "https://cdn" not in outside
+    assert "http://" not in outside and "https://" not in outside
     assert not re.search(r"""(src|href)\s*=\s*['"]?(https?:)?//""", outside)
     assert outside.count("Plotly.newPlot") == len(build_figures(trials, CAPS))
     assert not list(path.parent.glob(".*.tmp"))  # the temp file was renamed, not left behind
