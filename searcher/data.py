@@ -126,7 +126,7 @@ def _check_labels(labels: np.ndarray, count: int, names: tuple[str, ...] | None,
     if labels.dtype.kind == "f":
         bad = np.flatnonzero(~np.isfinite(labels) | (labels != np.round(labels)))
         if len(bad):
-            raise SearcherError(f"label {labels[bad[0]]!r} at position {bad[0]} in `{key}` is not a whole number; labels must be integer class numbers", file=path, key=key)
+            raise SearcherError(f"label {labels[bad[0]].item()!r} at position {bad[0]} in `{key}` is not a whole number; labels must be integer class numbers", file=path, key=key)
     labels = labels.astype(np.int64)
     if (labels < 0).any():
         at = int(np.flatnonzero(labels < 0)[0])
@@ -290,8 +290,11 @@ def _check_split(indices: dict[str, np.ndarray], count: int) -> dict[str, np.nda
     every = np.concatenate(list(checked.values()))
     if every.dtype.kind not in "iu" or any(a.ndim != 1 for a in checked.values()):
         raise SearcherError("stored split must hold one integer index array per part", key="split")
-    if len(every) and (every.min() < 0 or every.max() >= count):
-        raise SearcherError(f"stored split refers to image {int(every.max())}, but the data has {count} images; the data has changed", key="split")
+    outside = every[(every < 0) | (every >= count)]
+    if len(outside):
+        raise SearcherError(
+            f"stored split refers to image {int(outside[0])}, but the data has images 0 to {count - 1}; "
+            "the data has changed since the split was made", key="split")
     if len(np.unique(every)) != len(every):
         raise SearcherError("stored split uses an image twice; parts must not overlap", key="split")
     return {p: a.astype(np.int64) for p, a in checked.items()}

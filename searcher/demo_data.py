@@ -94,9 +94,9 @@ def _draw(rng: np.random.Generator, low: float, high: float, n: int) -> np.ndarr
 
 def _background(rng: np.random.Generator, n: int, py: np.ndarray, px: np.ndarray) -> np.ndarray:
     """Brushed metal under uneven light: level, gradient, a soft highlight and streaks."""
-    level, slope, angle = _draw(rng, 0.3, 0.7, n), _draw(rng, 0.0, 0.3, n), _draw(rng, 0.0, 2 * np.pi, n)
-    spot_y, spot_x, spot = _draw(rng, -1.0, 1.0, n), _draw(rng, -1.0, 1.0, n), _draw(rng, 0.0, 0.2, n)
-    streak = _draw(rng, 0.0, 0.04, n)
+    level, slope, angle = _draw(rng, 0.4, 0.6, n), _draw(rng, 0.0, 0.2, n), _draw(rng, 0.0, 2 * np.pi, n)
+    spot_y, spot_x, spot = _draw(rng, -1.0, 1.0, n), _draw(rng, -1.0, 1.0, n), _draw(rng, 0.0, 0.12, n)
+    streak = _draw(rng, 0.0, 0.03, n)
     vertical = rng.random((n, 1, 1)) < 0.5
     h, w = py.shape[1:]
     # Streaks: noise that changes across the brushing direction and hardly along it.
@@ -126,16 +126,16 @@ def make_demo(n: int = 3000, size: tuple[int, int] = (32, 32), seed: int = 0) ->
     px = np.broadcast_to(((np.arange(w, dtype=np.float32) + 0.5 - w / 2) / half)[None, None, :], (1, h, w))
 
     # Pose and look of each part, drawn up front in a fixed order.
-    scale = _draw(rng, 0.5, 0.8, n)
+    scale = _draw(rng, 0.55, 0.85, n)
     shift_x, shift_y = _draw(rng, -0.2, 0.2, n), _draw(rng, -0.2, 0.2, n)  # the part sits in a fixture
     turn = _draw(rng, -0.6, 0.6, n)  # parts arrive roughly aligned, within ±35°
     thickness = _draw(rng, 0.11, 0.18, n)
     stretch = _draw(rng, 0.85, 1.15, n)  # slight aspect change of the stamp
     light_dir = _draw(rng, 0.4, 1.2, n)  # fixed lamp at the upper left, some jitter (radians)
-    relief = _draw(rng, 0.2, 0.6, n)  # height of the raised stamp times light strength
-    tint = _draw(rng, 0.03, 0.12, n) * rng.choice(np.float32([-1, 1]), (n, 1, 1))  # face brighter or darker
-    blur = rng.uniform(0.0, 1.0, n)  # focus, in pixels
-    noise = _draw(rng, 0.01, 0.04, n)  # sensor noise, as a fraction of full scale
+    relief = _draw(rng, 0.4, 0.9, n)  # height of the raised stamp times light strength
+    tint = _draw(rng, 0.05, 0.15, n) * rng.choice(np.float32([-1, 1]), (n, 1, 1))  # face brighter or darker
+    blur = rng.uniform(0.0, 0.8, n)  # focus, in pixels
+    noise = _draw(rng, 0.01, 0.03, n)  # sensor noise, as a fraction of full scale
     background = _background(rng, n, py, px)
 
     # Each pixel in the symbol's own frame, then the symbol's signed distance there.

@@ -1,0 +1,346 @@
+"""Tests of the data layer: demo generator, loaders, errors, stratified split."""
+
+from __future__ import annotations
+
+import logging
+import re
+from pathlib import Path
+
+import numpy as np
+import pytest
+import torch
+from hypothesis import given, settings
+from hypothesis import strategies as st
+from PIL import Image
+
+from searcher.data import (
+    fingerprint_of,
+    load_arrays,
+    load_dataset,
+    load_split,
+    save_split,
+    split_indices,
+)
+from searcher.demo_data import CLASS_NAMES, make_demo
+from searcher.errors import SearcherError
+
+
+def _named(text: str, path: Path) -> str:
+    """A pattern for a message that says `text` and names `path`."""
+    return f"{text}.*{re.escape(path.name)}"
+
+
+@pytest.fixture(scope="module")
+def demo() -> object:
+    return load_dataset("demo", (1, 32, 32), seed=0)
+
+
+# --- demo generator -------------------------------------------------------------------
+
+
+def test_demo_repeats_for_a_seed_and_changes_with_it():
+    a_images, a_labels, _ = make_demo(120, (20, 20), seed=5)
+    b_images, b_labels, _ = make_demo(120, (20, 20), seed=5)
+    c_images, _, _ = make_demo(120, (20, 20), seed=6)
+    assert np.array_equal(a_images, b_images) and np.array_equal(a_labels, b_labels)
+    assert not np.array_equal(a_images, c_images)
+
+
+def test_demo_is_balanced_and_in_range():
+    images, labels, names = make_demo(1003, (24, 40), seed=1)
+    assert images.shape == (1003, 24, 40) and images.dtype == np.uint8
+    assert labels.dtype == np.int64 and names == CLASS_NAMES and len(set(names)) == 8
+    counts = np.bincount(labels, minlength=8)
+    assert counts.max() - counts.min() <= 1 and counts.sum() == 1003
+    # Every image has some contrast, and the set uses most of the 0–255 range.
+    assert images.reshape(len(images), -1).std(axis=1).min() > 1.0
+    assert images.min() < 40 and images.max() > 215
+
+
+def test_demo_loads_as_unit_floats_and_repeats_gray_for_three_channels():
+    images, labels, names, skipped = load_arrays("demo", (3, 16, 16))
+    assert images.shape == (3000, 3, 16, 16) and images.dtype == torch.float32
+    assert labels.dtype == torch.int64 and skipped == 0 and len(names) == 8
+    assert 0.0 <= images.min() and images.max() <= 1.0
+    assert torch.equal(images[:, 0], images[:, 2])
+
+
+def test_demo_is_not_trivially_easy(demo):
+    # A nearest-centroid classifier on raw pixels (the textbook baseline, common practice)
+    # must beat chance (1/8) clearly but stay far from perfect, or a search would have
+    # nothing to separate.
+    train, test = demo.train.images.flatten(1), demo.test.images.flatten(1)
+    centroids = torch.stack([train[demo.train.labels == c].mean(0) for c in range(demo.num_classes)])
+    accuracy = (torch.cdist(test, centroids).argmin(1) == demo.test.labels).float().mean().item()
+    print(f"nearest-centroid accuracy on the demo test split: {accuracy:.3f}")
+    assert 1 / 8 + 0.1 < accuracy < 0.8
+
+
+# --- .npz files -------------------------------------------------------------------------
+
+
+def _labelled(rng: np.random.Generator, count: int = 24, classes: int = 3) -> np.ndarray:
+    return rng.permutation(np.arange(count) % classes).astype(np.int64)
+
+
+@pytest.mark.parametrize("layout", ["nhw", "nhwc", "nchw"])
+def test_npz_layouts_load_as_n_c_h_w(tmp_path, layout):
+    rng = np.random.default_rng(0)
+    channels = 1 if layout == "nhw" else 3
+    pixels = rng.integers(0, 256, (24, channels, 6, 5), dtype=np.uint8)  # N×C×H×W reference
+    stored = {"nhw": pixels[:, 0], "nhwc": pixels.transpose(0, 2, 3, 1), "nchw": pixels}[layout]
+    labels = _labelled(rng)
+    np.savez(tmp_path / "d.npz", images=stored, labels=labels)
+    images, got_labels, names, _ = load_arrays(str(tmp_path / "d.npz"), (channels, 6, 5))
+    assert torch.allclose(images, torch.from_numpy(pixels).float() / 255)
+    assert torch.equal(got_labels, torch.from_numpy(labels)) and names == ("0", "1", "2")
+
+
+def test_npz_float_data_in_unit_range_and_in_0_255(tmp_path, caplog):
+    rng = np.random.default_rng(1)
+    unit = rng.random((24, 4, 4)).astype(np.float32)
+    np.savez(tmp_path / "unit.npz", x=unit, y=_labelled(rng))
+    np.savez(tmp_path / "wide.npz", x=unit * 255, y=_labelled(rng))
+    a = load_arrays(str(tmp_path / "unit.npz"), (1, 4, 4))[0]
+    with caplog.at_level(logging.INFO, logger="searcher.data"):
+        b = load_arrays(str(tmp_path / "wide.npz"), (1, 4, 4))[0]
+    assert torch.allclose(a[:, 0], torch.from_numpy(unit)) and torch.allclose(a, b, atol=1e-6)
+    assert "0–255" in caplog.text
+
+
+def test_npz_class_names_and_resize(tmp_path):
+    rng = np.random.default_rng(2)
+    pixels = np.full((24, 8, 8), 200, np.uint8)
+    np.savez(tmp_path / "d.npz", images=pixels, labels=_labelled(rng), class_names=np.array(["nut", "bolt", "washer"]))
+    images, _, names, _ = load_arrays(str(tmp_path / "d.npz"), (1, 16, 12))
+    assert names == ("nut", "bolt", "washer") and images.shape == (24, 1, 16, 12)
+    assert torch.allclose(images, torch.full_like(images, 200 / 255), atol=1e-5)  # a flat image stays flat
+
+
+# --- image folders --------------------------------------------------------------------
+
+
+def _write_folder(root: Path, rng: np.random.Generator, per_class: int = 4, size: int = 8) -> dict[str, list[np.ndarray]]:
+    drawn: dict[str, list[np.ndarray]] = {}
+    for name in ("scratch", "dent", "good"):
+        (root / name).mkdir(parents=True)
+        drawn[name] = []
+        for i in range(per_class):
+            pixels = rng.integers(0, 256, (size, size, 3), dtype=np.uint8)
+            drawn[name].append(pixels)
+            suffix = ".jpg" if i == 0 else ".png"  # one JPEG per class, the rest PNG
+            Image.fromarray(pixels).save(root / name / f"{i}{suffix}")
+    return drawn
+
+
+def test_folder_of_png_and_jpeg(tmp_path):
+    drawn = _write_folder(tmp_path, np.random.default_rng(3))
+    (tmp_path / "good" / "notes.txt").write_text("not an image")
+    images, labels, names, skipped = load_arrays(str(tmp_path), (3, 8, 8))
+    assert names == ("dent", "good", "scratch") and skipped == 0  # sorted folder names
+    assert images.shape == (12, 3, 8, 8) and np.bincount(labels.numpy()).tolist() == [4, 4, 4]
+    # Files are read in sorted order: 0.jpg first, then the PNGs, which are lossless.
+    png = torch.from_numpy(drawn["dent"][1]).permute(2, 0, 1).float() / 255
+    assert torch.allclose(images[1], png)
+    gray = load_arrays(str(tmp_path), (1, 4, 4))[0]
+    assert gray.shape == (12, 1, 4, 4) and 0.0 <= gray.min() and gray.max() <= 1.0
+
+
+def test_folder_unreadable_image_is_named_or_skipped(tmp_path):
+    _write_folder(tmp_path, np.random.default_rng(4))
+    broken = tmp_path / "good" / "9.png"
+    broken.write_bytes(b"\x89PNG\r\n\x1a\n not really")
+    with pytest.raises(SearcherError, match=_named("cannot read image", broken)):
+        load_arrays(str(tmp_path), (1, 8, 8))
+    images, _, _, skipped = load_arrays(str(tmp_path), (1, 8, 8), skip_unreadable=True)
+    assert skipped == 1 and len(images) == 12
+    assert load_dataset(str(tmp_path), (1, 8, 8), skip_unreadable=True, fractions=(0.5, 0.25, 0.25)).skipped == 1
+
+
+# --- errors -----------------------------------------------------------------------------
+
+
+def _npz(tmp_path: Path, **arrays) -> Path:
+    path = tmp_path / "bad.npz"
+    np.savez(path, **arrays)
+    return path
+
+
+NINE = np.zeros((9, 4, 4), np.uint8)  # nine blank images for the label checks
+
+
+@pytest.mark.parametrize(
+    ("arrays", "shape", "pattern"),
+    [
+        ({"pixels": NINE, "labels": np.arange(9) % 3}, (1, 4, 4), "no image array.*pixels.*'images', 'x'"),
+        ({"images": NINE, "target": np.arange(9) % 3}, (1, 4, 4), "no label array.*target.*'labels', 'y'"),
+        ({"images": NINE, "labels": np.array([0, 1, 2, 0, 1, 2, 0, 1, -1])}, (1, 4, 4), "label -1 at position 8 in `labels` is negative"),
+        ({"images": NINE, "y": np.arange(9) % 3 + 0.5}, (1, 4, 4), "label 0.5 at position 0 in `y` is not a whole number"),
+        ({"x": NINE, "y": np.arange(9) % 3, "class_names": np.array(["a", "b"])}, (1, 4, 4), "label 2 at position 2 in `y` is out of range; with 2 class names"),
+        ({"images": NINE, "labels": np.arange(8) % 3}, (1, 4, 4), "8 labels for 9 images"),
+        ({"images": np.zeros((9, 4, 4, 3), np.uint8), "labels": np.arange(9) % 3}, (1, 4, 4), "3 channel.*wants 1"),
+        ({"images": NINE, "labels": np.arange(9) % 3}, (3, 4, 4), "1 channel.*wants 3"),
+        ({"images": NINE, "labels": np.zeros(9, int)}, (1, 4, 4), "only class '0'.*at least 2 classes"),
+        ({"images": np.zeros((9, 5, 6, 7)), "labels": np.arange(9) % 3}, (1, 4, 4), r"shape \(9, 5, 6, 7\).*no channel axis"),
+        ({"images": NINE.astype(float) + 300, "labels": np.arange(9) % 3}, (1, 4, 4), "values from 300 to 300"),
+        ({"images": NINE[:0], "labels": np.arange(0)}, (1, 4, 4), "holds no images"),
+    ],
+)
+def test_npz_mistakes_name_the_file_and_key(tmp_path, arrays, shape, pattern):
+    path = _npz(tmp_path, **arrays)
+    with pytest.raises(SearcherError, match=_named(pattern, path)) as caught:
+        load_arrays(str(path), shape)
+    assert caught.value.file == str(path)
+
+
+def test_source_mistakes(tmp_path):
+    with pytest.raises(SearcherError, match="'nowhere.npz' does not exist; give 'demo'"):
+        load_arrays("nowhere.npz", (1, 8, 8))
+    (tmp_path / "d.csv").write_text("1,2")
+    with pytest.raises(SearcherError, match=_named("'.csv' is not supported", tmp_path / "d.csv")):
+        load_arrays(str(tmp_path / "d.csv"), (1, 8, 8))
+    (tmp_path / "junk.npz").write_bytes(b"not a zip")
+    with pytest.raises(SearcherError, match=_named("cannot read the file as .npz", tmp_path / "junk.npz")):
+        load_arrays(str(tmp_path / "junk.npz"), (1, 8, 8))
+    with pytest.raises(SearcherError, match="has 2 channels; channels must be 1, 3 or 4"):
+        load_arrays("demo", (2, 8, 8))
+    with pytest.raises(SearcherError, match="must be three positive whole numbers"):
+        load_arrays("demo", (1, 0, 8))
+
+
+def test_folder_mistakes(tmp_path):
+    with pytest.raises(SearcherError, match=_named("no class sub-folders", tmp_path)):
+        load_arrays(str(tmp_path), (1, 8, 8))
+    (tmp_path / "only").mkdir()
+    Image.new("L", (8, 8)).save(tmp_path / "only" / "a.png")
+    with pytest.raises(SearcherError, match=_named("only the class 'only'", tmp_path)):
+        load_arrays(str(tmp_path), (1, 8, 8))
+    (tmp_path / "empty").mkdir()
+    with pytest.raises(SearcherError, match=_named("'empty' has no readable PNG or JPEG", tmp_path / "empty")):
+        load_arrays(str(tmp_path), (1, 8, 8))
+
+
+def test_class_with_too_few_examples_to_split(tmp_path):
+    labels = np.array([0] * 10 + [1] * 2)
+    path = _npz(tmp_path, images=np.zeros((12, 4, 4), np.uint8), labels=labels, class_names=np.array(["ok", "rare"]))
+    with pytest.raises(SearcherError, match="class 'rare' has 2 image.*needs at least 3 per class"):
+        load_dataset(str(path), (1, 4, 4))
+    assert load_dataset(str(path), (1, 4, 4), fractions=(0.8, 0.2, 0.0)).test.labels.numel() == 0
+
+
+@pytest.mark.parametrize("fractions", [(0.7, 0.3), (0.5, 0.5, 0.5), (0.0, 0.5, 0.5), (1.2, -0.1, -0.1)])
+def test_bad_fractions(fractions):
+    with pytest.raises(SearcherError, match=re.escape(repr(fractions)) + " must be three shares"):
+        split_indices(np.arange(30) % 3, seed=0, fractions=fractions)
+
+
+# --- split -------------------------------------------------------------------------------
+
+
+def test_split_is_stratified():
+    labels = np.repeat(np.arange(4), [200, 80, 40, 20])
+    parts = split_indices(labels, seed=0)
+    overall = np.bincount(labels) / len(labels)
+    for name, share in zip(("train", "val", "test"), (0.7, 0.15, 0.15)):
+        counts = np.bincount(labels[parts[name]], minlength=4)
+        assert counts.min() >= 1  # every class in every part
+        assert abs(len(parts[name]) / len(labels) - share) < 0.01
+        # Each class keeps its share of the part, up to one image of rounding per class.
+        assert np.all(np.abs(counts / len(parts[name]) - overall) <= 1.5 / len(parts[name]))
+
+
+@settings(max_examples=40, deadline=None)
+@given(st.lists(st.integers(3, 40), min_size=2, max_size=6), st.integers(0, 2**31))
+def test_split_parts_are_disjoint_cover_everything_and_hold_every_class(sizes, seed):
+    labels = np.random.default_rng(seed).permutation(np.repeat(np.arange(len(sizes)), sizes))
+    parts = split_indices(labels, seed=seed)
+    every = np.concatenate(list(parts.values()))
+    assert np.array_equal(np.sort(every), np.arange(len(labels)))
+    assert all(len(np.unique(labels[p])) == len(sizes) for p in parts.values())
+
+
+def test_split_repeats_by_seed_and_round_trips(tmp_path):
+    labels = np.arange(300) % 5
+    first, again, other = (split_indices(labels, seed=s) for s in (7, 7, 8))
+    assert all(np.array_equal(first[p], again[p]) for p in first)
+    assert not np.array_equal(first["train"], other["train"])
+    save_split(tmp_path / "split.npz", first, "abc123")
+    loaded, stored = load_split(tmp_path / "split.npz")
+    assert stored == "abc123" and all(np.array_equal(first[p], loaded[p]) for p in first)
+
+
+def test_stored_split_is_reused_and_checked(demo, tmp_path):
+    again = load_dataset("demo", (1, 32, 32), split=demo.indices, fingerprint=demo.fingerprint)
+    assert torch.equal(again.val.images, demo.val.images) and again.fingerprint == demo.fingerprint
+    with pytest.raises(SearcherError, match="refers to image 3000, but the data has images 0 to 2999"):
+        load_dataset("demo", (1, 32, 32), split={**demo.indices, "test": np.array([3000])})
+    with pytest.raises(SearcherError, match="uses an image twice"):
+        load_dataset("demo", (1, 32, 32), split={**demo.indices, "test": demo.indices["train"][:3]})
+    with pytest.raises(SearcherError, match="fingerprint .* differs from the stored 0000"):
+        load_dataset("demo", (1, 32, 32), fingerprint="0000")
+    (tmp_path / "s.npz").write_bytes(b"")
+    with pytest.raises(SearcherError, match=_named("cannot read the stored split", tmp_path / "s.npz")):
+        load_split(tmp_path / "s.npz")
+
+
+def test_fingerprint_follows_the_data(tmp_path):
+    rng = np.random.default_rng(5)
+    pixels, labels = rng.integers(0, 256, (24, 4, 4), dtype=np.uint8), _labelled(rng)
+    path = tmp_path / "d.npz"
+    np.savez(path, images=pixels, labels=labels)
+    first = load_dataset(str(path), (1, 4, 4))
+    pixels[0, 0, 0] ^= 1
+    np.savez(path, images=pixels, labels=labels, class_names=np.array(["a", "b", "c"]))  # new size: no stale cache
+    second = load_dataset(str(path), (1, 4, 4))
+    images = torch.from_numpy(pixels[:, None] / 255).float()
+    assert first.fingerprint != second.fingerprint
+    assert second.fingerprint == fingerprint_of(images, torch.from_numpy(labels))
+
+
+def test_demo_dataset_parts(demo):
+    sizes = [len(getattr(demo, p).labels) for p in ("train", "val", "test")]
+    assert sum(sizes) == 3000 and demo.num_classes == 8 and demo.source == "demo"
+    assert all(np.bincount(getattr(demo, p).labels.numpy()).min() > 0 for p in ("train", "val", "test"))
+    assert demo.train.images.shape[1:] == (1, 32, 32)
+
+
+# --- an outside data set: scikit-learn's digits -------------------------------------------
+
+
+@pytest.mark.slow
+def test_sklearn_digits_via_npz_and_png_folder(tmp_path):
+    from sklearn.datasets import load_digits
+
+    # UCI optical handwritten digits as shipped with scikit-learn: 1797 images of 8×8 with
+    # values 0–16 in 10 classes (source: scikit-learn documentation of load_digits).
+    digits = load_digits()
+    pixels = np.round(digits.images * 255 / 16).astype(np.uint8)
+    np.savez(tmp_path / "digits.npz", images=pixels, labels=digits.target)
+    for i, (image, label) in enumerate(zip(pixels, digits.target)):
+        folder = tmp_path / "png" / f"digit{label}"
+        folder.mkdir(parents=True, exist_ok=True)
+        Image.fromarray(image).save(folder / f"{i:04d}.png")
+    expected = np.bincount(digits.target)
+    from_npz = load_dataset(str(tmp_path / "digits.npz"), (1, 8, 8))
+    from_png = load_dataset(str(tmp_path / "png"), (1, 8, 8))
+    for data in (from_npz, from_png):
+        total = sum(np.bincount(getattr(data, p).labels.numpy(), minlength=10) for p in ("train", "val", "test"))
+        assert data.num_classes == 10 and total.sum() == len(digits.images) == 1797
+        assert np.array_equal(total, expected)
+    # PNG is lossless: both routes decode to the same pixels. The folder lists files by
+    # class, then by name, so image i of the folder is image order[i] of the array.
+    npz_images, npz_labels = _reassemble(from_npz)
+    png_images, png_labels = _reassemble(from_png)
+    order = np.argsort(digits.target, kind="stable")
+    assert torch.equal(png_labels, npz_labels[order]) and torch.allclose(png_images, npz_images[order])
+    assert torch.allclose(npz_images[:, 0], torch.from_numpy(pixels).float() / 255)
+
+
+def _reassemble(data) -> tuple[torch.Tensor, torch.Tensor]:
+    """All images and labels of a Dataset in their original order, from its parts and indices."""
+    count = sum(len(i) for i in data.indices.values())
+    images = torch.empty((count, *data.train.images.shape[1:]))
+    labels = torch.empty(count, dtype=torch.int64)
+    for name, where in data.indices.items():
+        images[where], labels[where] = getattr(data, name).images, getattr(data, name).labels
+    return images, labels
