@@ -68,12 +68,20 @@ class _Reader:
 
 
 def read_space(path: Path) -> Space:
-    file = str(path)
     if not path.exists():
-        raise SearcherError(f"space file not found: {file}", file=None)
+        raise SearcherError(f"space file not found: {path}", file=None)
     try:
-        data = tomllib.loads(path.read_text(encoding="utf-8"))
-    except (tomllib.TOMLDecodeError, UnicodeDecodeError) as exc:
+        text = path.read_text(encoding="utf-8")
+    except (OSError, UnicodeDecodeError) as exc:
+        raise SearcherError(f"space file cannot be read as UTF-8 text: {exc}", file=str(path)) from None
+    return read_space_text(text, str(path), default_name=path.stem)
+
+
+def read_space_text(text: str, file: str, default_name: str = "space") -> Space:
+    """Parse and check a space from its TOML text; ``file`` names it in messages."""
+    try:
+        data = tomllib.loads(text)
+    except tomllib.TOMLDecodeError as exc:
         raise SearcherError(f"space file is not valid TOML: {exc}", file=file) from None
     r = _Reader(data, file)
     _check_keys(r)
@@ -129,7 +137,7 @@ def read_space(path: Path) -> Space:
     TrainSettings.from_dict(train, file=file)  # checked now, used later
 
     space = Space(
-        name=str(r.get("name", path.stem)),
+        name=str(r.get("name", default_name)),
         resolutions=tuple(dict.fromkeys(resolutions)),
         channels=r.positive_int("input.channels", 1),
         classes=r.positive_int("input.classes", 10),

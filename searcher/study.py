@@ -137,7 +137,8 @@ def open_study(name: str, url: str, config: RunConfig | None, sampler: str = "tp
                 f"continue it with the same settings, or start a new run with another --name",
                 key="--name",
             )
-    pruner = optuna.pruners.SuccessiveHalvingPruner(min_resource=1, reduction_factor=3)
+    # first check after epoch 2: at epoch 1 of a warm-up schedule every candidate is near chance
+    pruner = optuna.pruners.SuccessiveHalvingPruner(min_resource=2, reduction_factor=3)
     study = optuna.create_study(study_name=name, storage=storage, directions=directions, load_if_exists=True,
                                 sampler=make_sampler(sampler, config.objective, config.seed + worker), pruner=pruner)
     if name not in existing:

@@ -1,0 +1,317 @@
+"""Short CPU training of one candidate network: the proxy score a search trial reports.
+
+Speed matters more than the last point of accuracy here: a search trains hundreds of
+candidates, so batches come straight from in-memory tensors by index permutation, the
+model and inputs run channels-last, and the loss is read back once per few steps.
+"""
+
+from __future__ import annotations
+
+import contextlib
+import dataclasses
+import logging
+import math
+import time
+from collections.abc import Callable, Iterator, Mapping
+from dataclasses import dataclass, field
+
+import torch
+import torch.nn.functional as F
+from torch import nn
+
+from searcher.errors import SearcherError, one_of
+
+log = logging.getLogger(__name__)
+
+OPTIMIZERS = ("adamw", "sgd")
+SCHEDULES = ("onecycle", "cosine", "constant")
+CHECK_EVERY = 16  # steps between reads of the loss, to spot divergence without a sync each step
+
+
+@dataclass(frozen=True)
+class TrainSettings:
+    """How one candidate is trained; the `[train]` table of a search file."""
+
+    epochs: int = 6  # passes over the (sub-sampled) training split
+    train_fraction: float = 1.0  # share of the training split used, a seeded random subset
+    batch_size: int = 128  # training images per optimiser step
+    optimizer: str = "adamw"  # "adamw", or "sgd" (momentum 0.9, Nesterov)
+    learning_rate: float = 3e-3  # peak learning rate of the schedule
+    schedule: str = "onecycle"  # "onecycle" (warm-up then anneal), "cosine" or "constant", stepped per batch
+    weight_decay: float = 5e-4  # decoupled for adamw, L2 for sgd; never applied to biases or norm scales
+    label_smoothing: float = 0.05  # mass moved from the true class to all classes in the loss
+    channels_last: bool = True  # NHWC memory layout for model and inputs; faster convolutions on CPU
+    eval_batch_size: int = 512  # images per forward pass when measuring validation accuracy
+
+    def __post_init__(self) -> None:
+        self.check()
+        for name in ("train_fraction", "learning_rate", "weight_decay", "label_smoothing"):
+            object.__setattr__(self, name, float(getattr(self, name)))
+
+    def check(self) -> None:
+        """Raise SearcherError naming the first field whose value breaks its rule."""
+        for name, (test, rule) in _RULES.items():
+            value = getattr(self, name)
+            if not test(value):
+                text = one_of(value, rule) if isinstance(rule, tuple) else rule
+                raise SearcherError(f"`train.{name}` must be {text}, got {value!r}", key=f"train.{name}")
+
+    @classmethod
+    def from_dict(cls, values: Mapping[str, object], file: str | None = None) -> TrainSettings:
+        """Settings from a parsed `[train]` table; unset keys keep their defaults."""
+        if not isinstance(values, Mapping):
+            raise SearcherError(f"`train` must be a table of settings, got {values!r}", file=file, key="train")
+        names = tuple(f.name for f in dataclasses.fields(cls))
+        for key in values:
+            if key not in names:
+                raise SearcherError(
+                    f"`train.{key}` is not a training setting: use {one_of(key, names)}", file=file, key=f"train.{key}"
+                )
+        try:
+            return cls(**values)
+        except SearcherError as error:
+            raise SearcherError(error.message, file=file, key=error.key) from None
+
+
+def _is_int(low: int) -> Callable[[object], bool]:
+    return lambda v: isinstance(v, int) and not isinstance(v, bool) and v >= low
+
+
+def _is_number(test: Callable[[float], bool]) -> Callable[[object], bool]:
+    return lambda v: isinstance(v, int | float) and not isinstance(v, bool) and math.isfinite(v) and test(v)
+
+
+_RULES: dict[str, tuple[Callable[[object], bool], str | tuple[str, ...]]] = {  # a rule, or the options
+    "epochs": (_is_int(1), "an int ≥ 1"),
+    "train_fraction": (_is_number(lambda v: 0 < v <= 1), "a number in (0, 1]"),
+    "batch_size": (_is_int(2), "an int ≥ 2 (batch norm needs two images)"),
+    "optimizer": (lambda v: v in OPTIMIZERS, OPTIMIZERS),
+    "learning_rate": (_is_number(lambda v: v > 0), "a number > 0"),
+    "schedule": (lambda v: v in SCHEDULES, SCHEDULES),
+    "weight_decay": (_is_number(lambda v: v >= 0), "a number ≥ 0"),
+    "label_smoothing": (_is_number(lambda v: 0 <= v < 1), "a number in [0, 1)"),
+    "channels_last": (lambda v: isinstance(v, bool), "true or false"),
+    "eval_batch_size": (_is_int(1), "an int ≥ 1"),
+}
+
+
+@dataclass(frozen=True)
+class TrainResult:
+    """What one short training run measured."""
+
+    val_accuracy: float  # accuracy after the last finished epoch; NaN if none finished
+    history: tuple[float, ...]  # validation accuracy after each finished epoch
+    epochs: int  # epochs finished
+    seconds: float  # wall time of the whole run, evaluation included
+    images_per_second: float  # training images processed per second of training (evaluation excluded)
+    train_loss: float  # mean training loss of the last finished epoch; NaN if none finished
+    train_size: int  # training images used per epoch, after train_fraction
+
+
+@dataclass
+class TrainProgress:
+    """Filled in as training runs, so a caller whose `on_epoch` raised (to prune, say) still has the figures."""
+
+    history: list[float] = field(default_factory=list)  # validation accuracy per finished epoch
+    train_loss: float = math.nan  # mean loss of the last finished epoch
+    images_seen: int = 0  # training images processed, partial epochs included
+    train_seconds: float = 0.0  # time spent in training steps
+    seconds: float = 0.0  # wall time so far
+    train_size: int = 0  # training images per epoch
+
+    def result(self) -> TrainResult:
+        """The figures so far as a TrainResult."""
+        return TrainResult(
+            val_accuracy=self.history[-1] if self.history else math.nan,
+            history=tuple(self.history),
+            epochs=len(self.history),
+            seconds=self.seconds,
+            images_per_second=self.images_seen / self.train_seconds if self.train_seconds > 0 else 0.0,
+            train_loss=self.train_loss,
+            train_size=self.train_size,
+        )
+
+
+class TrainingStopped(Exception):
+    """Training ended before its last epoch; `result` holds what was measured until then."""
+
+    def __init__(self, reason: str, result: TrainResult) -> None:
+        super().__init__(reason)
+        self.reason = reason
+        self.result = result
+
+
+class Diverged(TrainingStopped):
+    """The loss became NaN or infinite: the candidate failed, the search goes on."""
+
+
+class OutOfTime(TrainingStopped):
+    """The deadline passed during training."""
+
+
+def reset_weights(model: nn.Module, seed: int) -> None:
+    """Re-draw every layer's initial weights from `seed` without touching torch's global generator."""
+    with torch.random.fork_rng(devices=[]):
+        torch.manual_seed(seed)
+        for module in model.modules():
+            if hasattr(module, "reset_parameters"):
+                module.reset_parameters()
+
+
+def evaluate(model: nn.Module, images: torch.Tensor, labels: torch.Tensor, batch_size: int = 512) -> tuple[float, torch.Tensor]:
+    """Accuracy and predicted class per image; the model's train/eval mode is restored afterwards."""
+    if len(images) != len(labels) or len(labels) == 0:
+        raise ValueError(f"need as many labels as images, at least one: {len(images)} images, {len(labels)} labels")
+    was_training = model.training
+    model.eval()
+    with torch.inference_mode():
+        predictions = torch.cat([model(images[i : i + batch_size]).argmax(1) for i in range(0, len(images), batch_size)])
+    model.train(was_training)
+    predictions = predictions.clone()  # a plain tensor, usable outside inference mode
+    return (predictions == labels).float().mean().item(), predictions
+
+
+def train_candidate(
+    model: nn.Module,
+    train_images: torch.Tensor,
+    train_labels: torch.Tensor,
+    val_images: torch.Tensor,
+    val_labels: torch.Tensor,
+    settings: TrainSettings = TrainSettings(),
+    *,
+    seed: int,
+    on_epoch: Callable[[int, float], None] | None = None,
+    deadline: float | None = None,
+    threads: int | None = None,
+    progress: TrainProgress | None = None,
+    init_weights: bool = True,
+) -> TrainResult:
+    """Train `model` in place for a short schedule and report its validation accuracy.
+
+    Everything random comes from `seed`: the subset, the batch order, the initial weights
+    (re-drawn unless `init_weights` is false) and dropout; torch's global generator is left
+    as it was. Results repeat exactly for one seed on one thread.
+
+    `on_epoch(epoch_index, val_accuracy)` runs after each epoch (index from 0); an exception
+    it raises, such as optuna.TrialPruned, propagates unchanged: pass a `progress` to keep the
+    figures up to that point. Diverged and OutOfTime carry them as `.result`.
+    `deadline` is a time.monotonic() value. `threads` sets torch's intra-op thread count for
+    this call only (it is process-wide state, restored afterwards); None leaves it alone.
+    The model ends in eval mode, in the default (NCHW) memory layout.
+    """
+    started = time.monotonic()
+    _check_data(train_images, train_labels, "training")
+    _check_data(val_images, val_labels, "validation")
+    progress = TrainProgress() if progress is None else progress
+    generator = torch.Generator().manual_seed(seed)
+    layout = torch.channels_last if settings.channels_last else torch.contiguous_format
+    count = max(2, round(settings.train_fraction * len(train_labels)))
+    if count < len(train_labels):
+        chosen = torch.randperm(len(train_labels), generator=generator)[:count]
+        train_images, train_labels = train_images[chosen], train_labels[chosen]
+    train_images = train_images.contiguous(memory_format=layout)
+    val_images = val_images.contiguous(memory_format=layout)
+    batch = min(settings.batch_size, count)
+    steps = count // batch  # the short last batch is dropped; the order changes each epoch
+    progress.train_size = count
+
+    def stop(kind: type[TrainingStopped], reason: str, epoch_start: float) -> TrainingStopped:
+        now = time.monotonic()
+        progress.train_seconds += now - epoch_start
+        progress.seconds = now - started
+        return kind(reason, progress.result())
+
+    with _thread_count(threads), torch.random.fork_rng(devices=[]):
+        torch.manual_seed(seed)
+        if init_weights:
+            reset_weights(model, seed)
+        model.to(memory_format=layout)
+        try:
+            optimizer = _optimizer(model, settings)
+            schedule = _schedule(optimizer, settings, settings.epochs * steps)
+            for epoch in range(settings.epochs):
+                model.train()
+                order = torch.randperm(count, generator=generator)
+                losses: list[torch.Tensor] = []
+                epoch_start = time.monotonic()
+                for step in range(steps):
+                    if deadline is not None and time.monotonic() >= deadline:
+                        raise stop(OutOfTime, f"deadline passed in epoch {epoch + 1}, step {step + 1} of {steps}", epoch_start)
+                    index = order[step * batch : (step + 1) * batch]
+                    loss = F.cross_entropy(
+                        model(train_images[index]), train_labels[index], label_smoothing=settings.label_smoothing
+                    )
+                    optimizer.zero_grad(set_to_none=True)
+                    loss.backward()
+                    optimizer.step()
+                    if schedule is not None:
+                        schedule.step()
+                    losses.append(loss.detach())
+                    progress.images_seen += batch
+                    if (step + 1) % CHECK_EVERY == 0 or step + 1 == steps:
+                        bad = _first_bad(losses, step // CHECK_EVERY * CHECK_EVERY)
+                        if bad is not None:
+                            reason = f"loss became {losses[bad].item()} at epoch {epoch + 1}, step {bad + 1}"
+                            raise stop(Diverged, reason, epoch_start)
+                progress.train_seconds += time.monotonic() - epoch_start
+                progress.train_loss = torch.stack(losses).mean().item()
+                accuracy, _ = evaluate(model, val_images, val_labels, settings.eval_batch_size)
+                progress.history.append(accuracy)
+                progress.seconds = time.monotonic() - started
+                log.debug("epoch %d: loss %.4f, val accuracy %.4f", epoch + 1, progress.train_loss, accuracy)
+                if on_epoch is not None:
+                    on_epoch(epoch, accuracy)
+        finally:
+            model.eval()
+            model.to(memory_format=torch.contiguous_format)
+    return progress.result()
+
+
+def _first_bad(losses: list[torch.Tensor], since: int) -> int | None:
+    """Index of the first non-finite loss from `since` on, with one read of the values."""
+    finite = torch.isfinite(torch.stack(losses[since:]))
+    return None if bool(finite.all()) else since + int((~finite).nonzero()[0])
+
+
+def _check_data(images: torch.Tensor, labels: torch.Tensor, split: str) -> None:
+    if images.dim() != 4 or images.dtype != torch.float32 or labels.dim() != 1 or labels.dtype != torch.int64:
+        raise ValueError(f"{split} data must be float32 N×C×H×W images and int64 labels")
+    if len(images) != len(labels) or len(labels) < 2:
+        raise ValueError(f"{split} split: {len(images)} images, {len(labels)} labels; need matching counts ≥ 2")
+
+
+def _optimizer(model: nn.Module, settings: TrainSettings) -> torch.optim.Optimizer:
+    """Weight decay on weight matrices and kernels only: decaying biases and norm scales only hurts (common practice)."""
+    params = [p for p in model.parameters() if p.requires_grad]
+    groups = [
+        {"params": [p for p in params if p.dim() > 1], "weight_decay": settings.weight_decay},
+        {"params": [p for p in params if p.dim() <= 1], "weight_decay": 0.0},
+    ]
+    if settings.optimizer == "sgd":
+        return torch.optim.SGD(groups, lr=settings.learning_rate, momentum=0.9, nesterov=True, foreach=True)
+    return torch.optim.AdamW(groups, lr=settings.learning_rate, foreach=True)
+
+
+def _schedule(
+    optimizer: torch.optim.Optimizer, settings: TrainSettings, total_steps: int
+) -> torch.optim.lr_scheduler.LRScheduler | None:
+    if settings.schedule == "onecycle":
+        return torch.optim.lr_scheduler.OneCycleLR(optimizer, max_lr=settings.learning_rate, total_steps=total_steps)
+    if settings.schedule == "cosine":
+        return torch.optim.lr_scheduler.CosineAnnealingLR(optimizer, T_max=total_steps)
+    return None
+
+
+@contextlib.contextmanager
+def _thread_count(threads: int | None) -> Iterator[None]:
+    if threads is None:
+        yield
+        return
+    if threads < 1:
+        raise ValueError(f"threads must be ≥ 1, got {threads}")
+    before = torch.get_num_threads()
+    torch.set_num_threads(threads)
+    try:
+        yield
+    finally:
+        torch.set_num_threads(before)
