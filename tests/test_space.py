@@ -1,0 +1,199 @@
+"""Space files: what the reader refuses (naming file and key), and how spaces are drawn from."""
+
+from __future__ import annotations
+
+import random
+from collections import Counter
+
+import optuna
+import pytest
+
+from searcher.arch import Arch
+from searcher.errors import SearcherError
+from searcher.space import Space, builtin_space, load_space
+
+from conftest import SHIPPED_SPACES, TINY_SPACE
+
+
+def variant(*changes: tuple[str, str]) -> str:
+    """The tiny space with some lines replaced (each old line must be there)."""
+    text = TINY_SPACE
+    for old, new in changes:
+        assert old in text, old
+        text = text.replace(old, new)
+    return text
+
+
+# A much smaller space for uniformity and enumeration checks: 2 + 4 stage configurations, 3 heads.
+SMALL = variant(('sizes = [[12, 12], [16, 16]]', 'sizes = [[12, 12]]'), ('count = [1, 3]', 'count = [1, 2]'),
+                ('first_width = [2, 4]', 'first_width = [2]'), ('activation = ["relu", "tanh"]', 'activation = "relu"'),
+                ('batch_norm = [true, false]', 'batch_norm = false'), ('kind = ["max", "none"]', 'kind = "max"'),
+                ('features = ["gap", "flatten"]', 'features = "gap"'))
+
+
+@pytest.mark.parametrize(
+    ("changes", "key", "says"),
+    [
+        ([("kernel = 3", "kernal = 3")], "conv.kernal", "is not a known key.*did you mean 'kernel'"),
+        ([("[head]", "[haed]")], "haed", "not a known section.*did you mean 'head'"),
+        ([("count = [1, 3]", 'count = "three"')], "stages.count", "must be an integer or a range"),
+        ([("growth = 2.0", 'growth = "double"')], "stages.growth", "must be a number > 0"),
+        ([("first_width = [2, 4]", "first_width = []")], "stages.first_width", "at least one choice"),
+        ([('kind = ["max", "none"]', "kind = []")], "pool.kind", "at least one choice"),
+        ([("count = [1, 3]", "count = [3, 1]")], "stages.count", r"min ≤ max, got \[3, 1\]"),
+        ([("convs = [1, 2]", "convs = [2, 1]")], "stages.convs", "min ≤ max"),
+        ([("channels = 1", "channels = 0")], "input.channels", "positive integer, got 0"),
+        ([("sizes = [[12, 12], [16, 16]]", "sizes = [[12, 0]]")], "input.sizes", "positive integers"),
+        ([("first_width = [2, 4]", "first_width = [2, -4]")], "stages.first_width", "integers ≥ 1, got -4"),
+        ([("count = [1, 3]", "count = [0, 3]")], "stages.count", "must not go below 1"),
+        ([("kernel = 3", "kernel = [3, 4]")], "conv.kernel", "'same' needs odd kernels"),
+        ([('max_params = "300"', 'max_params = "300 apples"')], "budget.max_params", "a count such as"),
+        ([('max_macs = "20k"', 'max_macs = "20KiB"')], "budget.max_macs", "a count such as"),
+        ([('activation = ["relu", "tanh"]', 'activation = ["relu", "tanhh"]')], "conv.activation",
+         "'tanhh'.*did you mean 'tanh'"),
+        ([('padding = "same"', 'padding = "vaild"')], "conv.padding", "did you mean 'valid'"),
+        ([("hidden = [0, 1]", "hidden = [0, 3]")], "head.hidden", "at most 2"),
+        ([("dropout = 0.0", "dropout = [0.5, 1.0]")], "head.dropout", r"in \[0, 1\)"),
+        ([("batch_norm = [true, false]", 'batch_norm = "yes"')], "conv.batch_norm", "true, false"),
+    ],
+)
+def test_bad_space_files_name_file_and_key(write_space, changes, key, says):
+    path = write_space(variant(*changes))
+    with pytest.raises(SearcherError, match=says) as info:
+        load_space(path)
+    assert info.value.key == key
+    assert info.value.file == str(path) and str(path) in str(info.value)
+    assert f"`{key}`" in str(info.value)
+
+
+def test_choices_that_shrink_the_map_below_one_pixel_name_the_stage(write_space):
+    # 12x12 input, up to two valid 5x5 convs and 2x2 pooling per stage: stage 1 ends at 2x2,
+    # stage 2's first conv cannot fit.
+    path = write_space(variant(('padding = "same"', 'padding = "valid"'), ("kernel = 3", "kernel = [3, 5]")))
+    with pytest.raises(SearcherError, match="stage 2 with 2 valid 5x5 conv.*shrinks a 2x2 map below 1x1") as info:
+        load_space(path)
+    assert info.value.key == "stages.count" and str(path) in str(info.value)
+    assert "at most 1" in str(info.value)  # the advice is actionable
+    fixed = load_space(write_space(variant(('padding = "same"', 'padding = "valid"'), ("count = [1, 3]", "count = 1"),
+                                           ("kernel = 3", "kernel = [3, 5]"))))
+    assert fixed.stage_count == (1, 1)
+
+
+def test_file_level_mistakes(tmp_path):
+    with pytest.raises(SearcherError, match="not found"):
+        load_space(tmp_path / "missing.toml")
+    broken = tmp_path / "broken.toml"
+    broken.write_text("[input\nchannels = 1\n")
+    with pytest.raises(SearcherError, match="not valid TOML") as info:
+        load_space(broken)
+    assert str(broken) in str(info.value)
+    with pytest.raises(SearcherError, match="did you mean 'mcu'"):
+        builtin_space("mcuu")
+
+
+def test_the_tiny_space_reads_as_written(write_space):
+    space = load_space(write_space())
+    assert space.resolutions == ((12, 12), (16, 16)) and space.stage_count == (1, 3)
+    assert [space.stage_width(i, 2) for i in range(3)] == [2, 4, 8]
+    assert [space.stage_width(i, 4) for i in range(3)] == [4, 8, 8]  # capped by max_width
+    assert space.budget.max_params == 300 and space.budget.max_macs == 20_000
+
+
+TINY_VARIANTS = {
+    "tiny": TINY_SPACE,
+    "small": SMALL,
+    "fixed_depth_two_hidden": variant(("count = [1, 3]", "count = 2"), ("hidden = [0, 1]", "hidden = [1, 2]"),
+                                      ('activation = ["relu", "tanh"]', 'activation = "relu"')),
+    "per_stage_convs": variant(("convs = [1, 2]", "convs = [[1, 1], [1, 3], [2, 2]]"),
+                               ('features = ["gap", "flatten"]', 'features = "gap"'),
+                               ("dropout = 0.0", "dropout = [0.0, 0.5]")),
+}
+
+
+@pytest.mark.parametrize("name", TINY_VARIANTS)
+def test_size_equals_enumeration_without_duplicates(write_space, name):
+    space = load_space(write_space(TINY_VARIANTS[name]))
+    texts = [arch.to_text() for arch in space.enumerate()]
+    assert len(texts) == space.size()
+    assert len(set(texts)) == len(texts)
+    # depth shares of the enumeration follow configs_by_depth (the rest multiplies every depth alike)
+    depths = Counter(t.count("_") - 2 - t.endswith("_bn") for t in texts)
+    lo, hi = space.stage_count
+    shares = [depths[d] for d in range(lo, hi + 1)]
+    assert [s * space.configs_by_depth[0] for s in shares] == [c * shares[0] for c in space.configs_by_depth]
+
+
+def test_random_is_deterministic_and_inside_the_space(write_space):
+    space = load_space(write_space())
+    every = {arch.to_text() for arch in space.enumerate()}
+    for seed in range(300):
+        arch = space.random(seed)
+        assert arch == space.random(seed) == space.random(random.Random(seed))
+        assert arch.to_text() in every
+    assert len({space.random(seed) for seed in range(50)}) > 40
+
+
+def inside(space: Space, arch: Arch) -> bool:
+    """Membership by the space's rules, for spaces too big to enumerate."""
+    lo, hi = space.stage_count
+    widths = [tuple(c.out_channels for c in s.convs) for s in arch.stages]
+    return (arch.input_shape[1:] in space.resolutions and lo <= arch.depth <= hi
+            and any(widths == [(space.stage_width(i, f),) * len(w) for i, w in enumerate(widths)]
+                    for f in space.first_width)
+            and all(space.stage_convs(i)[0] <= len(s.convs) <= space.stage_convs(i)[1]
+                    and len({c.kernel for c in s.convs}) == 1 and s.convs[0].kernel in space.kernels
+                    and all(c.padding == space.padding and c.stride == space.stride for c in s.convs)
+                    and (s.pool.kind if s.pool else "none") in space.pools
+                    for i, s in enumerate(arch.stages))
+            and arch.activation in space.activations and arch.batch_norm in space.batch_norm
+            and arch.head.features in space.features and arch.head.dropout in space.dropouts
+            and space.hidden_count[0] <= len(arch.head.hidden) <= space.hidden_count[1]
+            and set(arch.head.hidden) <= set(space.hidden_widths))
+
+
+@pytest.mark.parametrize("name", SHIPPED_SPACES)
+def test_random_draws_of_shipped_spaces_are_inside(shipped, name):
+    space = shipped[name]
+    for seed in range(200):
+        arch = space.random(seed, classes=3)
+        assert inside(space, arch) and arch.head.classes == 3, arch
+    other = shipped["classic" if name != "classic" else "mcu"]
+    assert not any(inside(other, space.random(seed)) for seed in range(50))  # the check can fail
+
+
+def test_random_draws_are_uniform_over_configurations(write_space):
+    space = load_space(write_space(SMALL))
+    configs = [arch.to_text() for arch in space.enumerate()]
+    assert len(configs) == 18
+    rng = random.Random(1)
+    draws = 9_000
+    counts = Counter(space.random(rng).to_text() for _ in range(draws))
+    assert set(counts) == set(configs)
+    expected = draws / len(configs)
+    chi2 = sum((counts[c] - expected) ** 2 / expected for c in configs)
+    assert chi2 < 40.79  # chi-square table: 17 degrees of freedom, upper 0.1% point
+
+
+def test_depth_frequencies_follow_configuration_shares(shipped):
+    space = shipped["mcu"]
+    rng = random.Random(7)
+    draws = 6_000
+    seen = Counter(space.random(rng).depth for _ in range(draws))
+    total = sum(space.configs_by_depth)
+    for depth, configs in zip(range(space.stage_count[0], space.stage_count[1] + 1), space.configs_by_depth):
+        share = configs / total
+        sd = (share * (1 - share) / draws) ** 0.5
+        assert abs(seen[depth] / draws - share) < 4 * sd + 1e-9, (depth, seen[depth] / draws, share)
+
+
+@pytest.mark.parametrize("name", SHIPPED_SPACES)
+def test_optuna_suggestion_is_reproduced_by_replay(shipped, name):
+    space = shipped[name]
+    study = optuna.create_study(sampler=optuna.samplers.RandomSampler(seed=3))
+    for _ in range(25):
+        trial = study.ask()
+        arch = space.suggest(trial)
+        assert space.replay(trial.params) == arch
+        assert inside(space, arch)
+        study.tell(trial, float(arch.depth))
+    assert len({t.params.get("stages") for t in study.trials}) > 1
