@@ -58,18 +58,24 @@ class Dataset:
 def _check_shape(input_shape: tuple[int, int, int]) -> tuple[int, int, int]:
     shape = tuple(input_shape)
     if len(shape) != 3 or not all(isinstance(d, (int, np.integer)) and d > 0 for d in shape):
-        raise SearcherError(f"input shape {input_shape!r} must be three positive whole numbers C, H, W", key="input_shape")
+        raise SearcherError(f"input shape {input_shape!r} must be three positive whole numbers C, H, W",
+                            key="input_shape")
     if shape[0] not in MODES:
-        raise SearcherError(f"input shape {input_shape!r} has {shape[0]} channels; channels must be 1, 3 or 4", key="input_shape")
+        raise SearcherError(f"input shape {input_shape!r} has {shape[0]} channels; channels must be 1, 3 or 4",
+                            key="input_shape")
     return int(shape[0]), int(shape[1]), int(shape[2])
 
 
-def _resize(images: torch.Tensor, h: int, w: int) -> torch.Tensor:
+def resize_images(images: torch.Tensor, h: int, w: int) -> torch.Tensor:
+    """Images N×C×H×W brought to h×w (bilinear, antialiased when shrinking); unchanged if already that size."""
     if images.shape[-2:] == (h, w):
         return images
     log.info("resizing images from %d×%d to %d×%d", images.shape[-2], images.shape[-1], h, w)
     out = torch.nn.functional.interpolate(images, size=(h, w), mode="bilinear", antialias=True, align_corners=False)
     return out.clamp_(0.0, 1.0)
+
+
+_resize = resize_images  # older private name, still imported by the run code
 
 
 def _to_unit(array: np.ndarray, path: Path, key: str) -> np.ndarray:
@@ -83,7 +89,8 @@ def _to_unit(array: np.ndarray, path: Path, key: str) -> np.ndarray:
         raise SearcherError(f"`{key}` contains NaN or infinite values; pixels must be finite", file=path, key=key)
     low, high = float(values.min()), float(values.max())
     if low < 0 or high > 255:
-        raise SearcherError(f"`{key}` has values from {low:g} to {high:g}; pixels must lie in 0–1 or 0–255", file=path, key=key)
+        raise SearcherError(f"`{key}` has values from {low:g} to {high:g}; pixels must lie in 0–1 or 0–255",
+                            file=path, key=key)
     if high > 1.0:
         log.info("%s: `%s` values reach %g, so they are read as 0–255 and divided by 255", path, key, high)
         values /= 255
@@ -92,63 +99,63 @@ def _to_unit(array: np.ndarray, path: Path, key: str) -> np.ndarray:
 
 def _channels_first(images: np.ndarray, channels: int, path: Path, key: str) -> np.ndarray:
     """Bring N×H×W, N×H×W×C or N×C×H×W to N×C×H×W, choosing the axis that matches `channels`."""
+    layouts = "expected N×H×W, N×H×W×C or N×C×H×W"
     if images.ndim == 3:
-        images = images[:, None]
-        axis = 1
+        images, axis = images[:, None], 1
     elif images.ndim == 4:
         axes = [a for a in (3, 1) if images.shape[a] in MODES]
         if not axes:
-            raise SearcherError(
-                f"`{key}` has shape {images.shape}, with no channel axis of size 1, 3 or 4; "
-                "expected N×H×W, N×H×W×C or N×C×H×W", file=path, key=key)
+            raise SearcherError(f"`{key}` has shape {images.shape}, with no channel axis of size 1, 3 or 4; {layouts}",
+                                file=path, key=key)
         axis = next((a for a in axes if images.shape[a] == channels), axes[0])
     else:
-        raise SearcherError(
-            f"`{key}` has shape {images.shape}; expected N×H×W, N×H×W×C or N×C×H×W", file=path, key=key)
+        raise SearcherError(f"`{key}` has shape {images.shape}; {layouts}", file=path, key=key)
     if images.shape[axis] != channels:
-        raise SearcherError(
-            f"`{key}` has {images.shape[axis]} channel(s) but the input shape wants {channels}; "
-            "convert the images or change the input shape's channels", file=path, key=key)
-    return np.moveaxis(images, axis, 1) if axis != 1 else images
+        raise SearcherError(f"`{key}` has {images.shape[axis]} channel(s) but the input shape wants {channels}; "
+                            "convert the images or change the input shape's channels", file=path, key=key)
+    return np.moveaxis(images, axis, 1)
 
 
-def _check_labels(labels: np.ndarray, count: int, names: tuple[str, ...] | None, path: Path, key: str) -> tuple[np.ndarray, tuple[str, ...]]:
+def _check_labels(labels: np.ndarray, count: int, names: tuple[str, ...] | None, path: Path,
+                  key: str) -> tuple[np.ndarray, tuple[str, ...]]:
     """Labels as int64 class numbers, with class names (given, or '0'..'K-1')."""
+
+    def bad(text: str) -> SearcherError:
+        return SearcherError(text, file=path, key=key)
+
     labels = np.asarray(labels)
-    if labels.ndim == 2 and labels.shape[1] == 1:
-        labels = labels[:, 0]
+    labels = labels[:, 0] if labels.ndim == 2 and labels.shape[1] == 1 else labels
     if labels.ndim != 1:
-        raise SearcherError(f"`{key}` has shape {labels.shape}; labels must be one class number per image", file=path, key=key)
+        raise bad(f"`{key}` has shape {labels.shape}; labels must be one class number per image")
     if len(labels) != count:
-        raise SearcherError(f"`{key}` has {len(labels)} labels for {count} images; there must be one label per image", file=path, key=key)
+        raise bad(f"`{key}` has {len(labels)} labels for {count} images; there must be one label per image")
     if labels.dtype.kind not in "iuf":
-        raise SearcherError(f"`{key}` holds {labels.dtype} values; labels must be integer class numbers", file=path, key=key)
-    if labels.dtype.kind == "f":
-        bad = np.flatnonzero(~np.isfinite(labels) | (labels != np.round(labels)))
-        if len(bad):
-            raise SearcherError(f"label {labels[bad[0]].item()!r} at position {bad[0]} in `{key}` is not a whole number; labels must be integer class numbers", file=path, key=key)
+        raise bad(f"`{key}` holds {labels.dtype} values; labels must be integer class numbers")
+    fractional = np.flatnonzero(~np.isfinite(labels) | (labels != np.round(labels))) if labels.dtype.kind == "f" else []
+    if len(fractional):
+        at = fractional[0]
+        raise bad(f"label {labels[at].item()!r} at position {at} in `{key}` is not a whole number; "
+                  "labels must be integer class numbers")
     labels = labels.astype(np.int64)
     if (labels < 0).any():
-        at = int(np.flatnonzero(labels < 0)[0])
-        raise SearcherError(f"label {labels[at]} at position {at} in `{key}` is negative; labels must be class numbers from 0", file=path, key=key)
+        at = int(np.argmax(labels < 0))
+        raise bad(f"label {labels[at]} at position {at} in `{key}` is negative; labels must be class numbers from 0")
     if names is None:
         names = tuple(str(i) for i in range(int(labels.max()) + 1))
     elif labels.max() >= len(names):
         at = int(np.argmax(labels >= len(names)))
-        raise SearcherError(
-            f"label {labels[at]} at position {at} in `{key}` is out of range; with {len(names)} class names, "
-            f"labels must be 0 to {len(names) - 1}", file=path, key=key)
+        raise bad(f"label {labels[at]} at position {at} in `{key}` is out of range; with {len(names)} class names, "
+                  f"labels must be 0 to {len(names) - 1}")
     if len(np.unique(labels)) < 2:
-        raise SearcherError(f"`{key}` holds only class {names[labels[0]]!r}; a classifier needs at least 2 classes", file=path, key=key)
+        raise bad(f"`{key}` holds only class {names[labels[0]]!r}; a classifier needs at least 2 classes")
     return labels, names
 
 
 def _find_key(archive: np.lib.npyio.NpzFile, keys: tuple[str, ...], what: str, path: Path) -> str:
     found = next((k for k in keys if k in archive.files), None)
     if found is None:
-        raise SearcherError(
-            f"no {what} array in the file (it has {', '.join(archive.files) or 'no arrays'}); "
-            f"name it one of {', '.join(repr(k) for k in keys)}", file=path, key=keys[0])
+        raise SearcherError(f"no {what} array in the file (it has {', '.join(archive.files) or 'no arrays'}); "
+                            f"name it one of {', '.join(repr(k) for k in keys)}", file=path, key=keys[0])
     return found
 
 
@@ -160,13 +167,13 @@ def _load_npz(path: Path, channels: int) -> tuple[torch.Tensor, np.ndarray, tupl
     with archive:
         image_key = _find_key(archive, IMAGE_KEYS, "image", path)
         label_key = _find_key(archive, LABEL_KEYS, "label", path)
-        raw = archive[image_key]
-        labels = archive[label_key]
+        raw, labels = archive[image_key], archive[label_key]
         names = tuple(str(n) for n in archive["class_names"].ravel()) if "class_names" in archive.files else None
     if len(raw) == 0:
         raise SearcherError(f"`{image_key}` holds no images", file=path, key=image_key)
     if names is not None and len(set(names)) != len(names):
-        raise SearcherError(f"`class_names` {list(names)} repeats a name; each class needs its own", file=path, key="class_names")
+        raise SearcherError(f"`class_names` {list(names)} repeats a name; each class needs its own",
+                            file=path, key="class_names")
     images = _channels_first(raw, channels, path, image_key)
     labels, names = _check_labels(labels, len(images), names, path, label_key)
     return torch.from_numpy(np.ascontiguousarray(_to_unit(images, path, image_key))), labels, names
@@ -182,54 +189,54 @@ def _read_image(file: Path, channels: int, h: int, w: int) -> np.ndarray:
         return np.asarray(img, dtype=np.uint8).reshape(h, w, channels)
 
 
-def _load_folder(path: Path, channels: int, h: int, w: int, skip_unreadable: bool) -> tuple[torch.Tensor, np.ndarray, tuple[str, ...], int]:
+def _load_folder(path: Path, channels: int, h: int, w: int,
+                 skip_unreadable: bool) -> tuple[torch.Tensor, np.ndarray, tuple[str, ...], int]:
     from PIL import Image
 
     classes = sorted(p for p in path.iterdir() if p.is_dir() and not p.name.startswith("."))
-    if not classes:
-        raise SearcherError("folder has no class sub-folders; put each class's images in a sub-folder named after the class", file=path)
     if len(classes) < 2:
-        raise SearcherError(f"folder has only the class {classes[0].name!r}; a classifier needs at least 2 class sub-folders", file=path)
+        found = f"only the class {classes[0].name!r}" if classes else "no class sub-folders"
+        raise SearcherError(f"folder has {found}; put each class's images (at least 2 classes) in a sub-folder "
+                            "named after the class", file=path)
     pixels, labels, skipped = [], [], 0
     for label, folder in enumerate(classes):
         files = sorted(f for f in folder.iterdir() if f.is_file() and f.suffix.lower() in IMAGE_SUFFIXES)
-        read = 0
         for file in files:
             try:
                 pixels.append(_read_image(file, channels, h, w))
+                labels.append(label)
             except (OSError, SyntaxError, ValueError, Image.DecompressionBombError) as err:
                 if not skip_unreadable:
-                    raise SearcherError(f"cannot read image ({err}); remove or replace it, or skip unreadable files", file=file) from err
+                    raise SearcherError(f"cannot read image ({err}); remove or replace it, or skip unreadable files",
+                                        file=file) from err
                 log.warning("skipping unreadable image %s: %s", file, err)
                 skipped += 1
-                continue
-            labels.append(label)
-            read += 1
-        if read == 0:
+        if not labels or labels[-1] != label:
             raise SearcherError(f"class folder {folder.name!r} has no readable PNG or JPEG images", file=folder)
-    stacked = np.stack(pixels).transpose(0, 3, 1, 2)
-    images = torch.from_numpy(np.ascontiguousarray(stacked)).float().div_(255)
+    images = torch.from_numpy(np.stack(pixels)).permute(0, 3, 1, 2).float().div_(255).contiguous()
     return images, np.asarray(labels, dtype=np.int64), tuple(c.name for c in classes), skipped
 
 
-def load_arrays(source: str, input_shape: tuple[int, int, int], skip_unreadable: bool = False) -> tuple[torch.Tensor, torch.Tensor, tuple[str, ...], int]:
-    """Decode a whole data source: (images float32 N×C×H×W in [0, 1], labels int64, class names, skipped)."""
+def load_arrays(source: str, input_shape: tuple[int, int, int],
+                skip_unreadable: bool = False) -> tuple[torch.Tensor, torch.Tensor, tuple[str, ...], int]:
+    """Decode a whole source: (images float32 N×C×H×W in [0, 1], labels int64, class names, files skipped)."""
     channels, h, w = _check_shape(input_shape)
     skipped = 0
+    path = Path(source)
     if source == "demo":
         gray, labels, names = make_demo(DEMO_COUNT, (h, w), DEMO_SEED)
         images = torch.from_numpy(gray).float().div_(255)[:, None].expand(-1, channels, -1, -1).contiguous()
+    elif not path.exists():
+        raise SearcherError(f"data source {source!r} does not exist; give 'demo', a .npz file or a folder with "
+                            "one sub-folder per class", key="data")
+    elif path.is_dir():
+        images, labels, names, skipped = _load_folder(path, channels, h, w, skip_unreadable)
+    elif path.suffix.lower() == ".npz":
+        images, labels, names = _load_npz(path, channels)
+        images = resize_images(images, h, w)
     else:
-        path = Path(source)
-        if not path.exists():
-            raise SearcherError(f"data source {source!r} does not exist; give 'demo', a .npz file or a folder with one sub-folder per class", key="data")
-        if path.is_dir():
-            images, labels, names, skipped = _load_folder(path, channels, h, w, skip_unreadable)
-        elif path.suffix.lower() == ".npz":
-            images, labels, names = _load_npz(path, channels)
-            images = _resize(images, h, w)
-        else:
-            raise SearcherError(f"data file type {path.suffix or '(none)'!r} is not supported; give a .npz file or a folder of class sub-folders", file=path, key="data")
+        raise SearcherError(f"data file type {path.suffix or '(none)'!r} is not supported; give a .npz file or a "
+                            "folder of class sub-folders", file=path, key="data")
     log.info("loaded %d images in %d classes from %s (%d skipped)", len(images), len(names), source, skipped)
     return images, torch.from_numpy(np.asarray(labels, dtype=np.int64)), tuple(names), skipped
 
@@ -243,11 +250,14 @@ def fingerprint_of(images: torch.Tensor, labels: torch.Tensor) -> str:
 
 
 def _check_fractions(fractions: tuple[float, float, float]) -> np.ndarray:
-    shares = np.asarray(fractions, dtype=float) if np.ndim(fractions) == 1 else np.zeros(0)
-    if shares.shape != (3,) or not np.isfinite(shares).all() or (shares < 0).any() or shares[0] <= 0 or abs(shares.sum() - 1) > 1e-6:
-        raise SearcherError(
-            f"split fractions {fractions!r} must be three shares for train, val and test, each at least 0 "
-            "(train above 0), adding up to 1, such as (0.7, 0.15, 0.15)", key="fractions")
+    try:
+        shares = np.asarray(fractions, dtype=float).reshape(-1) if np.ndim(fractions) == 1 else np.zeros(0)
+    except (TypeError, ValueError):
+        shares = np.zeros(0)
+    if (shares.shape != (3,) or not np.isfinite(shares).all() or (shares < 0).any() or shares[0] <= 0
+            or abs(shares.sum() - 1) > 1e-6):
+        raise SearcherError(f"split fractions {fractions!r} must be three shares for train, val and test, each at "
+                            "least 0 (train above 0), adding up to 1, such as (0.7, 0.15, 0.15)", key="fractions")
     return shares
 
 
@@ -262,8 +272,12 @@ def _share(count: int, shares: np.ndarray) -> np.ndarray:
     return sizes
 
 
-def split_indices(labels: np.ndarray, seed: int, fractions: tuple[float, float, float] = (0.7, 0.15, 0.15), *, class_names: tuple[str, ...] | None = None) -> dict[str, np.ndarray]:
-    """Stratified train/val/test index arrays: each class is split by `fractions` on its own."""
+def split_indices(labels: np.ndarray, seed: int, fractions: tuple[float, float, float] = (0.7, 0.15, 0.15), *,
+                  class_names: tuple[str, ...] | None = None) -> dict[str, np.ndarray]:
+    """Stratified train/val/test index arrays: each class is split by `fractions` on its own.
+
+    Every class reaches every part with a share above 0, so validation accuracy covers all classes.
+    """
     shares = _check_fractions(fractions)
     labels = np.asarray(labels, dtype=np.int64)
     names = class_names or tuple(str(i) for i in range(int(labels.max()) + 1))
@@ -273,11 +287,9 @@ def split_indices(labels: np.ndarray, seed: int, fractions: tuple[float, float, 
     for label, name in enumerate(names):
         members = rng.permutation(np.flatnonzero(labels == label))
         if len(members) < needed:
-            raise SearcherError(
-                f"class {name!r} has {len(members)} image(s); a split into {needed} parts needs at least {needed} per class",
-                key="labels")
-        bounds = np.cumsum(_share(len(members), shares))[:-1]
-        for part, chunk in zip(parts, np.split(members, bounds)):
+            raise SearcherError(f"class {name!r} has {len(members)} image(s); a split into {needed} parts needs at "
+                                f"least {needed} per class", key="labels")
+        for part, chunk in zip(parts, np.split(members, np.cumsum(_share(len(members), shares))[:-1])):
             part.append(chunk)
     return {name: np.sort(np.concatenate(part)) for name, part in zip(PARTS, parts)}
 
@@ -285,16 +297,17 @@ def split_indices(labels: np.ndarray, seed: int, fractions: tuple[float, float, 
 def _check_split(indices: dict[str, np.ndarray], count: int) -> dict[str, np.ndarray]:
     missing = [p for p in PARTS if p not in indices]
     if missing:
-        raise SearcherError(f"stored split lacks the part(s) {', '.join(missing)}; it needs {', '.join(PARTS)}", key="split")
+        raise SearcherError(f"stored split lacks the part(s) {', '.join(missing)}; it needs {', '.join(PARTS)}",
+                            key="split")
     checked = {p: np.asarray(indices[p]) for p in PARTS}
-    every = np.concatenate(list(checked.values()))
-    if every.dtype.kind not in "iu" or any(a.ndim != 1 for a in checked.values()):
+    checked = {p: a.astype(np.int64) if a.size == 0 else a for p, a in checked.items()}
+    if any(a.ndim != 1 or a.dtype.kind not in "iu" for a in checked.values()):
         raise SearcherError("stored split must hold one integer index array per part", key="split")
+    every = np.concatenate(list(checked.values()))
     outside = every[(every < 0) | (every >= count)]
     if len(outside):
-        raise SearcherError(
-            f"stored split refers to image {int(outside[0])}, but the data has images 0 to {count - 1}; "
-            "the data has changed since the split was made", key="split")
+        raise SearcherError(f"stored split refers to image {int(outside[0])}, but the data has images 0 to "
+                            f"{count - 1}; the data has changed since the split was made", key="split")
     if len(np.unique(every)) != len(every):
         raise SearcherError("stored split uses an image twice; parts must not overlap", key="split")
     return {p: a.astype(np.int64) for p, a in checked.items()}
@@ -302,8 +315,9 @@ def _check_split(indices: dict[str, np.ndarray], count: int) -> dict[str, np.nda
 
 def save_split(path: str | Path, indices: dict[str, np.ndarray], fingerprint: str) -> None:
     """Store the split and the data fingerprint in one .npz file (exactly at `path`)."""
+    parts = {p: np.asarray(indices[p], dtype=np.int64) for p in PARTS}
     with open(path, "wb") as out:
-        np.savez(out, fingerprint=np.array(fingerprint), **{p: np.asarray(indices[p], dtype=np.int64) for p in PARTS})
+        np.savez(out, fingerprint=np.array(fingerprint), **parts)
 
 
 def load_split(path: str | Path) -> tuple[dict[str, np.ndarray], str]:
@@ -323,7 +337,7 @@ _CACHE_SIZE = 2  # sources kept; a data set may be large
 
 
 def _stamp(source: str) -> tuple:
-    """What must stay the same for a cached decode to be reused: sizes and times of the files."""
+    """What must stay the same for a cached decode to be reused: names, sizes and times of the files."""
     path = Path(source)
     if source == "demo" or not path.exists():
         return ()
@@ -334,8 +348,12 @@ def _stamp(source: str) -> tuple:
 def load_dataset(source: str, input_shape: tuple[int, int, int], *, seed: int = 0,
                  fractions: tuple[float, float, float] = (0.7, 0.15, 0.15), skip_unreadable: bool = False,
                  split: dict[str, np.ndarray] | None = None, fingerprint: str | None = None) -> Dataset:
-    """Load a source and split it; with `split` (and its `fingerprint`) reuse a stored split instead."""
-    key = (source, tuple(input_shape), skip_unreadable, _stamp(source))
+    """Load a source and split it; with `split` (and its `fingerprint`) reuse a stored split instead.
+
+    A second call with the same source and shape reuses the decoded tensors while the files are
+    unchanged, so only the split is redone; each Dataset still gets its own copies of the parts.
+    """
+    key = (source, _check_shape(input_shape), skip_unreadable, _stamp(source))
     if key not in _CACHE:
         images, labels, names, skipped = load_arrays(source, input_shape, skip_unreadable)
         while len(_CACHE) >= _CACHE_SIZE:
@@ -343,13 +361,11 @@ def load_dataset(source: str, input_shape: tuple[int, int, int], *, seed: int = 
         _CACHE[key] = (images, labels, names, skipped, fingerprint_of(images, labels))
     images, labels, names, skipped, found = _CACHE[key]
     if fingerprint is not None and fingerprint != found:
-        raise SearcherError(
-            f"data fingerprint {found} differs from the stored {fingerprint}; the data has changed since the split was made",
-            file=None if source == "demo" else source, key="fingerprint")
+        raise SearcherError(f"data fingerprint {found} differs from the stored {fingerprint}; the data has changed "
+                            "since the split was made", file=None if source == "demo" else source, key="fingerprint")
     if split is None:
         indices = split_indices(labels.numpy(), seed, fractions, class_names=names)
     else:
         indices = _check_split(split, len(labels))
     parts = {p: Split(images[torch.from_numpy(i)], labels[torch.from_numpy(i)]) for p, i in indices.items()}
     return Dataset(**parts, class_names=names, source=source, fingerprint=found, skipped=skipped, indices=indices)
-

@@ -100,14 +100,15 @@ def _background(rng: np.random.Generator, n: int, py: np.ndarray, px: np.ndarray
     vertical = rng.random((n, 1, 1)) < 0.5
     h, w = py.shape[1:]
     # Streaks: noise that changes across the brushing direction and hardly along it.
-    fine = 0.3 * rng.standard_normal((n, h, w), np.float32)
-    brushed = fine + np.where(vertical, rng.standard_normal((n, 1, w), np.float32), rng.standard_normal((n, h, 1), np.float32))
+    along_x, along_y = rng.standard_normal((n, 1, w), np.float32), rng.standard_normal((n, h, 1), np.float32)
+    brushed = 0.3 * rng.standard_normal((n, h, w), np.float32) + np.where(vertical, along_x, along_y)
     light = slope * (px * np.cos(angle) + py * np.sin(angle)) / 2
     light += spot * np.exp(-((px - spot_x) ** 2 + (py - spot_y) ** 2) / 0.6)
     return level + light + streak * brushed
 
 
-def make_demo(n: int = 3000, size: tuple[int, int] = (32, 32), seed: int = 0) -> tuple[np.ndarray, np.ndarray, tuple[str, ...]]:
+def make_demo(n: int = 3000, size: tuple[int, int] = (32, 32),
+              seed: int = 0) -> tuple[np.ndarray, np.ndarray, tuple[str, ...]]:
     """Draw `n` balanced, labelled grayscale images of embossed symbols.
 
     Returns (images uint8 N×H×W, labels int64 N, class names). The same arguments
@@ -134,6 +135,7 @@ def make_demo(n: int = 3000, size: tuple[int, int] = (32, 32), seed: int = 0) ->
     light_dir = _draw(rng, 0.4, 1.2, n)  # fixed lamp at the upper left, some jitter (radians)
     relief = _draw(rng, 0.4, 0.9, n)  # height of the raised stamp times light strength
     tint = _draw(rng, 0.05, 0.15, n) * rng.choice(np.float32([-1, 1]), (n, 1, 1))  # face brighter or darker
+    worn = np.where(rng.random((n, 1, 1)) < 0.06, np.float32(0.25), np.float32(1.0))  # a worn die leaves a faint stamp
     blur = rng.uniform(0.0, 0.8, n)  # focus, in pixels
     noise = _draw(rng, 0.01, 0.03, n)  # sensor noise, as a fraction of full scale
     background = _background(rng, n, py, px)
@@ -153,7 +155,7 @@ def make_demo(n: int = 3000, size: tuple[int, int] = (32, 32), seed: int = 0) ->
     height = _blur(mask, np.full(n, 0.8))
     grad_y, grad_x = np.gradient(height, axis=(1, 2))
     shade = -(np.cos(light_dir) * grad_x + np.sin(light_dir) * grad_y)
-    image = background + 2.0 * relief * shade + tint * mask
+    image = background + worn * (2.0 * relief * shade + tint * mask)
     image = _blur(image, blur) + noise * rng.standard_normal((n, h, w), np.float32)
     images = np.round(np.clip(image, 0.0, 1.0) * 255).astype(np.uint8)
     return images, labels, CLASS_NAMES
