@@ -155,7 +155,8 @@ class Search:
         if idle >= MAX_IDLE_PROPOSALS:
             return f"{idle} proposals in a row were over budget or already known; the space looks exhausted"
         frame = trials_frame(self.study)
-        if trained_count(frame) >= self.plan.trials:
+        in_flight = int((frame["state"] == "running").sum())  # other workers' candidates will count too
+        if trained_count(frame) + in_flight >= self.plan.trials:
             return f"{self.plan.trials} candidates trained"
         return ""
 
