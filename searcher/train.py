@@ -36,7 +36,7 @@ class TrainSettings:
     train_fraction: float = 1.0  # share of the training split used, a seeded random subset
     batch_size: int = 128  # training images per optimiser step
     optimizer: str = "adamw"  # "adamw", or "sgd" (momentum 0.9, Nesterov)
-    learning_rate: float = 3e-3  # peak learning rate of the schedule
+    learning_rate: float = 1e-2  # peak of the schedule; 3e-3 left digits at ~0.91 after 6 short epochs, 1e-2 reached ~0.97
     schedule: str = "onecycle"  # "onecycle" (warm-up then anneal), "cosine" or "constant", stepped per batch
     weight_decay: float = 5e-4  # decoupled for adamw, L2 for sgd; never applied to biases or norm scales
     label_smoothing: float = 0.05  # mass moved from the true class to all classes in the loss
