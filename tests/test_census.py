@@ -1,0 +1,126 @@
+"""The vectorised census against the scalar cost, candidate by candidate, and against brute force."""
+
+from __future__ import annotations
+
+from collections import Counter
+
+import numpy as np
+import pytest
+
+from searcher.budget import CAP_COLUMNS, Budget
+from searcher.census import batch_costs, decode, enumerate_all, multiplicity, sample
+from searcher.census_report import CensusSettings, run_census, summary_lines
+from searcher.cost import cost
+from searcher.space import Space, load_space
+
+from conftest import SHIPPED_SPACES
+
+
+def assert_batch_equals_scalar(space: Space, batch: dict, budget: Budget, classes: int | None = None) -> None:
+    fast = batch_costs(space, batch, budget, classes)
+    for i in range(len(batch["stages"])):
+        arch = decode(space, batch, i, classes)
+        totals = budget.totals(cost(arch, budget.activation_precision))
+        got = {column: int(fast[column][i]) for column in CAP_COLUMNS}
+        assert got == totals, (i, arch)
+        assert (fast["stages"][i], fast["last_width"][i]) == (arch.depth, arch.widths[-1])
+
+
+@pytest.mark.parametrize("name", SHIPPED_SPACES)
+def test_batch_costs_equal_scalar_cost_on_samples(shipped, name):
+    space = shipped[name]
+    assert_batch_equals_scalar(space, sample(space, 2_000, seed=11), space.budget)
+
+
+@pytest.mark.parametrize("name", ["mcu", "workstation"])
+def test_batch_costs_follow_the_budget_precisions_and_classes(shipped, name):
+    space = shipped[name]
+    budget = Budget(weight_precision="int8", activation_precision="fp16")
+    assert_batch_equals_scalar(space, sample(space, 300, seed=5), budget, classes=3)
+
+
+def test_batch_costs_equal_scalar_cost_on_a_whole_enumeration(write_space):
+    space = load_space(write_space())
+    batch = enumerate_all(space)
+    assert len(batch["stages"]) == space.size() // multiplicity(space)
+    assert_batch_equals_scalar(space, batch, space.budget)
+    # the cost classes are exactly the configurations with the cost-free decisions held fixed
+    decoded = {decode(space, batch, i).to_text() for i in range(len(batch["stages"]))}
+    plain = {a.to_text() for a in space.enumerate()
+             if a.activation == space.activations[0] and a.head.dropout == space.dropouts[0]}
+    assert decoded == plain
+
+
+def brute_force(space: Space, budget: Budget) -> tuple[list, dict[str, int]]:
+    """Every configuration, costed one at a time: the fitting ones, and each cost's minimum."""
+    fitting, lowest = [], {}
+    for arch in space.enumerate():
+        totals = budget.totals(cost(arch, budget.activation_precision))
+        for column, value in totals.items():
+            lowest[column] = min(lowest.get(column, value), value)
+        if not budget.check(totals):
+            fitting.append(arch)
+    return fitting, lowest
+
+
+def test_exact_census_equals_brute_force_counting(write_space):
+    space = load_space(write_space())
+    census = run_census(space)
+    fitting, lowest = brute_force(space, space.budget)
+    assert census.exact and census.size == space.size()
+    assert census.fraction == pytest.approx(len(fitting) / space.size(), abs=1e-12)
+    assert 0 < len(fitting) < space.size()
+    assert census.lowest == lowest
+    table = census.depth_width()
+    by_cell = Counter((a.depth, a.stages[0].convs[0].out_channels) for a in fitting)
+    assert {(d, f): int(table.loc[d, f]) for d in table.index for f in table.columns if table.loc[d, f]} == by_cell
+    assert cost(census.cheapest).macs == min(cost(a).macs for a in fitting)
+    assert cost(census.largest).params == max(cost(a).params for a in fitting)
+
+
+def test_nothing_fits_reports_the_smallest_reachable_values(write_space):
+    space = load_space(write_space())
+    budget = Budget(max_params=5, max_macs=100)
+    census = run_census(space, budget)
+    fitting, lowest = brute_force(space, budget)
+    assert fitting == [] and not census.fits.any() and census.fraction == 0.0
+    assert census.cheapest is None and census.largest is None
+    assert census.lowest == lowest
+    text = "\n".join(summary_lines(census))
+    assert "nothing in this space fits" in text
+    assert f"params: {lowest['params']}" in text  # the smallest parameter count, with its cap beside it
+
+
+def test_sampled_census_is_seeded(shipped):
+    space = shipped["workstation"]
+    settings = CensusSettings(samples=5_000, seed=4)
+    first, again = run_census(space, settings=settings), run_census(space, settings=settings)
+    assert not first.exact and first.evaluated == 5_000
+    assert first.fraction == again.fraction and np.array_equal(first.costs["macs"], again.costs["macs"])
+    assert "95% interval" in "\n".join(summary_lines(first))
+    low, high = first.interval
+    assert low < first.fraction < high
+
+
+@pytest.mark.slow
+def test_monte_carlo_interval_contains_the_exact_fraction(shipped):
+    """mcu has about 1.1M cost classes: small enough to enumerate, so sampling can be checked.
+
+    A 95% interval misses the truth one time in twenty, so ten seeded draws are checked: most
+    intervals must hold the exact fraction and their mean must sit close to it.
+    """
+    space = shipped["mcu"]
+    exact = run_census(space)
+    assert exact.exact and exact.evaluated == space.size() // multiplicity(space)
+    runs = [run_census(space, settings=CensusSettings(exact_limit=0, samples=50_000, seed=seed)) for seed in range(10)]
+    assert not any(run.exact for run in runs)
+    held = sum(run.interval[0] <= exact.fraction <= run.interval[1] for run in runs)
+    assert held >= 8, held  # binomial(10, 0.95): fewer than 8 happens about 1% of the time
+    assert runs[0].interval[0] <= exact.fraction <= runs[0].interval[1]  # the default seed
+    se = (exact.fraction * (1 - exact.fraction) / 50_000 / len(runs)) ** 0.5
+    assert abs(np.mean([run.fraction for run in runs]) - exact.fraction) < 3 * se
+    assert all(run.interval[1] - run.interval[0] < 0.01 for run in runs)
+    # the fitting candidates of a sample spread over depths as the exact census counts them
+    exact_depth = exact.depth_width().sum(axis=1) / exact.depth_width().values.sum()
+    sampled_depth = runs[0].depth_width().sum(axis=1) / runs[0].depth_width().values.sum()
+    assert np.allclose(exact_depth.values, sampled_depth.reindex(exact_depth.index).values, atol=0.02)
