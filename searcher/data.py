@@ -217,11 +217,11 @@ def _load_folder(path: Path, channels: int, h: int, w: int,
     return images, np.asarray(labels, dtype=np.int64), tuple(c.name for c in classes), skipped
 
 
-def load_arrays(source: str, input_shape: tuple[int, int, int],
+def load_arrays(source: str | Path, input_shape: tuple[int, int, int],
                 skip_unreadable: bool = False) -> tuple[torch.Tensor, torch.Tensor, tuple[str, ...], int]:
     """Decode a whole source: (images float32 N×C×H×W in [0, 1], labels int64, class names, files skipped)."""
     channels, h, w = _check_shape(input_shape)
-    skipped = 0
+    source, skipped = str(source), 0
     path = Path(source)
     if source == "demo":
         gray, labels, names = make_demo(DEMO_COUNT, (h, w), DEMO_SEED)
@@ -345,7 +345,7 @@ def _stamp(source: str) -> tuple:
     return tuple((str(f), f.stat().st_size, f.stat().st_mtime_ns) for f in files if f.is_file())
 
 
-def load_dataset(source: str, input_shape: tuple[int, int, int], *, seed: int = 0,
+def load_dataset(source: str | Path, input_shape: tuple[int, int, int], *, seed: int = 0,
                  fractions: tuple[float, float, float] = (0.7, 0.15, 0.15), skip_unreadable: bool = False,
                  split: dict[str, np.ndarray] | None = None, fingerprint: str | None = None) -> Dataset:
     """Load a source and split it; with `split` (and its `fingerprint`) reuse a stored split instead.
@@ -353,6 +353,7 @@ def load_dataset(source: str, input_shape: tuple[int, int, int], *, seed: int = 
     A second call with the same source and shape reuses the decoded tensors while the files are
     unchanged, so only the split is redone; each Dataset still gets its own copies of the parts.
     """
+    source = str(source)
     key = (source, _check_shape(input_shape), skip_unreadable, _stamp(source))
     if key not in _CACHE:
         images, labels, names, skipped = load_arrays(source, input_shape, skip_unreadable)

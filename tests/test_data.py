@@ -321,7 +321,7 @@ def test_sklearn_digits_via_npz_and_png_folder(tmp_path):
         folder.mkdir(parents=True, exist_ok=True)
         Image.fromarray(image).save(folder / f"{i:04d}.png")
     expected = np.bincount(digits.target)
-    from_npz = load_dataset(str(tmp_path / "digits.npz"), (1, 8, 8))
+    from_npz = load_dataset(tmp_path / "digits.npz", (1, 8, 8))  # a Path works as well as a str
     from_png = load_dataset(str(tmp_path / "png"), (1, 8, 8))
     for data in (from_npz, from_png):
         total = sum(np.bincount(getattr(data, p).labels.numpy(), minlength=10) for p in ("train", "val", "test"))
