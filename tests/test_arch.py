@@ -42,6 +42,7 @@ def archs(draw) -> Arch:
     )
 
 
+@settings(deadline=None)
 @given(archs())
 def test_text_round_trip_of_any_arch(arch):
     text = arch.to_text()
@@ -49,6 +50,7 @@ def test_text_round_trip_of_any_arch(arch):
     assert " " not in text and text == str(arch)
 
 
+@settings(deadline=None)
 @given(archs())
 def test_json_round_trip_of_any_arch(arch):
     assert Arch.from_json(arch.to_json()) == arch

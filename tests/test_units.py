@@ -3,7 +3,7 @@
 from __future__ import annotations
 
 import pytest
-from hypothesis import given
+from hypothesis import given, settings
 from hypothesis import strategies as st
 
 from searcher.errors import SearcherError
@@ -54,6 +54,7 @@ def test_count_units_are_not_byte_units():
         parse_count("64KiB", key="max_params")
 
 
+@settings(deadline=None)
 @given(st.integers(min_value=1, max_value=10**13))
 def test_format_count_parses_back_within_rounding(n):
     text = format_count(n)
@@ -63,6 +64,7 @@ def test_format_count_parses_back_within_rounding(n):
     assert abs(back - n) <= max(0.5, 0.005 * n), (n, text, back)
 
 
+@settings(deadline=None)
 @given(st.integers(min_value=1, max_value=2**42))
 def test_format_bytes_parses_back_within_rounding(n):
     text = format_bytes(n)
