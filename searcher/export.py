@@ -11,6 +11,7 @@ import json
 import logging
 import shutil
 import time
+import warnings
 from dataclasses import asdict, dataclass, replace
 from pathlib import Path
 from typing import Any
@@ -45,6 +46,7 @@ class ExportOutcome:
     confusion: list[list[int]]
     costs: dict[str, int]
     fits: bool
+    model: Any = None  # the retrained torch module, in eval mode
 
 
 def choose(frame: Any, budget: Budget, settings: ExportSettings, classes: int) -> tuple[Arch, str]:
@@ -111,8 +113,8 @@ def export(settings: ExportSettings) -> ExportOutcome:
     per_class = {name: float(confusion[i, i] / max(1, confusion[i].sum())) for i, name in enumerate(config.class_names)}
     totals = budget.totals(cost(arch, budget.activation_precision))
     fits = not budget.check(totals)
-    outcome = ExportOutcome(folder / "export", arch, accuracy, per_class, confusion.tolist(), totals, fits)
-    extra = {"how": how, "epochs": epochs, "train_seconds": result.seconds, "train_size": len(labels),
+    outcome = ExportOutcome(folder / "export", arch, accuracy, per_class, confusion.tolist(), totals, fits, model)
+    extra = {"run": settings.name, "how": how, "epochs": epochs, "train_seconds": result.seconds, "train_size": len(labels),
              "sizes": {p: len(getattr(data, p).labels) for p in ("train", "val", "test")},
              "settings": asdict(train_settings), "budget": budget, "config": config}
     _write(outcome, model, extra)
@@ -152,8 +154,9 @@ def _write(outcome: ExportOutcome, model: Any, extra: dict) -> None:
         (temp / "arch.json").write_text(arch.to_json(), encoding="utf-8")
         (temp / "model.py").write_text(standalone_source(model, arch, extra["config"].class_names), encoding="utf-8")
         example = torch.zeros(1, *arch.input_shape)
-        traced = torch.jit.trace(model.eval(), example)
-        traced.save(str(temp / "model.torchscript.pt"))
+        with warnings.catch_warnings():  # torch 2.13 marks TorchScript deprecated; C++ and mobile runtimes still load it
+            warnings.simplefilter("ignore", DeprecationWarning)
+            torch.jit.trace(model.eval(), example).save(str(temp / "model.torchscript.pt"))
         metrics = {"arch": arch.to_text(), "test_accuracy": outcome.test_accuracy, "per_class": outcome.per_class,
                    "confusion": outcome.confusion, "costs": outcome.costs, "fits_budget": outcome.fits,
                    "sizes": extra["sizes"], "epochs": extra["epochs"], "chosen": extra["how"]}

@@ -97,7 +97,7 @@ An image classifier for {arch.head.classes} classes ({', '.join(names)}), input
 {list(arch.head.hidden) or 'none'}.
 
 ## How it was found
-Run `{config.space_name}` searched space `{config.space_name}` with Optuna (objective: {config.objective}),
+Run `{extra['run']}` searched space `{config.space_name}` with Optuna (objective: {config.objective}),
 rejecting every candidate over the budget by exact arithmetic before training and giving the rest a
 short proxy training. This candidate was chosen as: {extra['how']}.
 It was then retrained from scratch for {extra['epochs']} epochs on the training and validation

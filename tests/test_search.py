@@ -1,0 +1,151 @@
+"""The main job end to end: search with the budget gate, results on disk, export.
+
+Outside reference: the UCI optical handwritten digits set shipped with scikit-learn
+(`sklearn.datasets.load_digits`, 1797 8x8 images, 10 classes). Published classical results on it
+are above 0.97 accuracy (recalled from memory), so a capped search reaching 0.95 is a fair bar.
+"""
+
+from __future__ import annotations
+
+import contextlib
+import importlib.util
+import math
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+import pytest
+import torch
+
+import searcher
+from searcher.budget import Budget
+from searcher.export import ExportSettings, export
+from searcher.runner import SearchSettings, search
+
+DIGITS_SPACE = """
+name = "digits"
+[input]
+channels = 1
+size = [8, 8]
+[stages]
+count = [1, 2]
+convs = [1, 2]
+first_width = [8, 16, 24]
+[conv]
+kernel = 3
+activation = ["relu", "hardswish"]
+batch_norm = true
+[pool]
+kind = ["max", "none"]
+[head]
+features = ["flatten", "gap"]
+hidden = [0, 1]
+hidden_width = [32, 64]
+[train]
+epochs = 8
+learning_rate = 0.005
+"""
+
+
+@pytest.fixture(scope="module")
+def digits_run(tmp_path_factory):
+    """One capped search and export on the digits set, shared by the checks below."""
+    sklearn_datasets = pytest.importorskip("sklearn.datasets")
+    folder = tmp_path_factory.mktemp("digits")
+    digits = sklearn_datasets.load_digits()  # pixel values 0..16
+    images = np.round(digits.images * (255 / 16)).astype(np.uint8)
+    np.savez(folder / "digits.npz", images=images, labels=digits.target)
+    (folder / "digits.toml").write_text(DIGITS_SPACE)
+    built: list[str] = []
+    import searcher.build as build_module
+
+    real_build = build_module.build
+
+    def recording_build(arch):
+        built.append(arch.to_text())
+        return real_build(arch)
+
+    build_module.build = recording_build
+    try:
+        settings = SearchSettings(name="digits", space=str(folder / "digits.toml"), data=str(folder / "digits.npz"),
+                                  trials=8, seed=0, root=folder / "runs")
+        outcome = search(settings, Budget(max_params=20_000))
+    finally:
+        build_module.build = real_build
+    exported = export(ExportSettings(name="digits", epochs=30, root=folder / "runs"))
+    return outcome, exported, built, folder / "runs" / "digits"
+
+
+@pytest.mark.slow
+def test_digits_search_reaches_published_accuracy_under_a_20k_cap(digits_run):
+    outcome, exported, _, _ = digits_run
+    assert outcome.counts["trained"] >= 1
+    assert exported.fits and exported.costs["params"] <= 20_000
+    # UCI digits via scikit-learn: classical results exceed 0.97 (recalled from memory); the issue's bar is 0.95.
+    assert exported.test_accuracy >= 0.95
+
+
+@pytest.mark.slow
+def test_rejected_candidates_are_never_built_and_cost_no_training_time(digits_run):
+    _, _, built, folder = digits_run
+    trials = pd.read_csv(folder / "trials.csv", keep_default_na=False)
+    rejected = trials[trials.state == "rejected"]
+    assert len(rejected) > 0, "the 20k cap should reject part of this space"
+    assert (rejected.train_seconds.astype(float) == 0).all()
+    assert not set(rejected.arch) & set(built)
+    assert (rejected.params.astype(int) > 20_000).all()
+    assert rejected.rejected_by.str.contains("params").all()
+
+
+@pytest.mark.slow
+def test_every_point_on_the_front_meets_every_cap(digits_run):
+    _, _, _, folder = digits_run
+    front = pd.read_csv(folder / "front.csv")
+    assert len(front) > 0
+    assert (front.params <= 20_000).all()
+    assert set(front.state) <= {"trained", "stopped_early"}
+
+
+@pytest.mark.slow
+def test_exported_files_reproduce_the_trained_model(digits_run):
+    _, exported, _, folder = digits_run
+    export_dir = folder / "export"
+    model = exported.model
+    # the exported module's parameter count equals the analytic count (reference: torch's numel)
+    assert sum(p.numel() for p in model.parameters()) == searcher.cost(exported.arch).params
+    images = torch.rand(16, *exported.arch.input_shape, generator=torch.Generator().manual_seed(0))
+    with torch.inference_mode():
+        expected = model(images)
+
+    spec = importlib.util.spec_from_file_location("exported_model", export_dir / "model.py")
+    standalone = importlib.util.module_from_spec(spec)
+    spec.loader.exec_module(standalone)
+    source = (export_dir / "model.py").read_text()
+    imports = {line.split()[1] for line in source.splitlines() if line.startswith(("import ", "from "))}
+    assert imports <= {"torch", "collections"}, imports  # only torch (and the standard library's OrderedDict)
+    loaded = standalone.load(str(export_dir / "model_state.pt"))
+    with torch.inference_mode():
+        assert torch.equal(loaded(images), expected)
+
+    state = torch.load(export_dir / "model_state.pt", weights_only=True)
+    rebuilt = searcher.build(searcher.parse_arch((export_dir / "arch.json").read_text()))
+    rebuilt.load_state_dict(state)
+    with pytest.warns(DeprecationWarning) if torch.__version__ >= "2.13" else contextlib.nullcontext():
+        scripted = torch.jit.load(str(export_dir / "model.torchscript.pt"))
+    with torch.inference_mode():
+        assert torch.equal(rebuilt.eval()(images), expected)
+        assert torch.allclose(scripted(images), expected, atol=1e-6)
+
+
+@pytest.mark.slow
+def test_model_card_carries_results_and_cautions(digits_run):
+    _, exported, _, folder = digits_run
+    card = (folder / "export" / "MODEL_CARD.md").read_text()
+    assert f"{exported.test_accuracy:.4f}" in card
+    assert "Confusion matrix" in card and "| params |" in card
+    for caution in ("no guarantee", "Test on data from the deployment", "qualified review"):
+        assert caution in card
+    per_class = pd.Series(exported.per_class)
+    assert len(per_class) == 10 and per_class.between(0, 1).all()
+    confusion = np.asarray(exported.confusion)
+    assert math.isclose(np.trace(confusion) / confusion.sum(), exported.test_accuracy, rel_tol=1e-6)
