@@ -12,6 +12,7 @@ import json
 import logging
 import re
 import sqlite3
+import time
 import warnings
 from dataclasses import dataclass
 from pathlib import Path
@@ -50,11 +51,11 @@ def open_storage(url: str) -> optuna.storages.BaseStorage:
             path.parent.mkdir(parents=True, exist_ok=True)
             with sqlite3.connect(path) as connection:  # WAL lets readers (status, report) not block writers
                 connection.execute("PRAGMA journal_mode=WAL")
-            return optuna.storages.RDBStorage(url, engine_kwargs={"connect_args": {"timeout": 120}})
+            return _rdb_storage(url, {"connect_args": {"timeout": 120}})
         if url.startswith(("postgresql://", "postgres://")):
             url = "postgresql+psycopg://" + url.split("://", 1)[1]
         if url.startswith("postgresql"):
-            return optuna.storages.RDBStorage(url, engine_kwargs={"pool_pre_ping": True, "pool_size": 2})
+            return _rdb_storage(url, {"pool_pre_ping": True, "pool_size": 2})
     except ImportError as exc:
         raise SearcherError(f"storage {redact(url)} needs a driver: {exc}; install with `pip install -e .[postgres]`",
                             key="--storage") from None
@@ -64,6 +65,23 @@ def open_storage(url: str) -> optuna.storages.BaseStorage:
         f"storage {redact(url)!r} must be a sqlite:/// or postgresql:// URL or a path ending in .journal",
         key="--storage",
     )
+
+
+# what creating the tables says when another process is creating them at the same moment
+_CREATION_RACE = re.compile(r"already exists|unique|duplicate", re.IGNORECASE)
+
+
+def _rdb_storage(url: str, engine_kwargs: dict[str, Any], attempts: int = 6) -> optuna.storages.RDBStorage:
+    """An RDB storage, retried while another worker is creating the same fresh database's tables."""
+    for attempt in range(attempts):
+        try:
+            return optuna.storages.RDBStorage(url, engine_kwargs=engine_kwargs)
+        except Exception as exc:
+            if attempt == attempts - 1 or not _CREATION_RACE.search(str(exc)):
+                raise
+            log.debug("storage tables were being created by another process (%s); retrying", _first_line(exc))
+            time.sleep(0.1 * (attempt + 1))
+    raise AssertionError("unreachable")
 
 
 def _first_line(exc: BaseException) -> str:
@@ -119,17 +137,22 @@ def open_study(name: str, url: str, config: RunConfig | None, sampler: str = "tp
     optuna.logging.set_verbosity(optuna.logging.WARNING)
     storage = open_storage(url)
     existing = {s.study_name: s for s in optuna.get_all_study_summaries(storage)}
+    # another worker may have created the study a moment ago and not yet stored its configuration
+    stored_config = existing[name].user_attrs.get("config") if name in existing else None
     if config is None:
+        if stored_config is None and name in existing:
+            raise SearcherError(f"run {name!r} in {redact(url)} is just being created; try again in a moment",
+                                key="--name")
         if name not in existing:
             found = ", ".join(sorted(existing)) or "none"
             raise SearcherError(f"no run {name!r} in {redact(url)} (runs there: {found})", key="--name")
-        stored = RunConfig.from_dict(existing[name].user_attrs["config"])
+        stored = RunConfig.from_dict(stored_config)
         study = optuna.load_study(study_name=name, storage=storage,
                                   sampler=make_sampler(sampler, stored.objective, stored.seed + worker))
         return study, stored
     directions = ["maximize"] + (["minimize"] if OBJECTIVES[config.objective] else [])
-    if name in existing:
-        stored = RunConfig.from_dict(existing[name].user_attrs["config"])
+    if stored_config is not None:
+        stored = RunConfig.from_dict(stored_config)
         if stored.digest() != config.digest():
             changed = [k for k in config.__dict__ if getattr(config, k) != getattr(stored, k)]
             raise SearcherError(
@@ -141,6 +164,6 @@ def open_study(name: str, url: str, config: RunConfig | None, sampler: str = "tp
     pruner = optuna.pruners.SuccessiveHalvingPruner(min_resource=2, reduction_factor=3)
     study = optuna.create_study(study_name=name, storage=storage, directions=directions, load_if_exists=True,
                                 sampler=make_sampler(sampler, config.objective, config.seed + worker), pruner=pruner)
-    if name not in existing:
+    if stored_config is None:
         study.set_user_attr("config", config.to_dict())
     return study, config
