@@ -1,0 +1,115 @@
+"""Several workers on one study: every trial once, every write kept, the --trials count honoured.
+
+Each test runs real `python -m searcher search` processes on the demo data (one epoch on a fifth
+of it, the tiny space) in a temporary folder, then reads the study back and checks it against
+the trials.csv the run wrote.
+"""
+
+from __future__ import annotations
+
+import subprocess
+import sys
+from pathlib import Path
+
+import optuna
+import pandas as pd
+import pytest
+from optuna.trial import TrialState
+
+from searcher.records import (
+    DUPLICATE, FAILED, INTERRUPTED, NOT_STARTED, REJECTED, STOPPED, TRAINED, record_of, trained_count,
+    trials_frame,
+)
+from searcher.study import open_study
+
+TRIALS = 3  # trained candidates asked for: small, yet enough that workers overlap
+# the Optuna state each searcher state must be told with (see searcher.search's module docstring)
+OPTUNA_STATE = {TRAINED: TrialState.COMPLETE, REJECTED: TrialState.COMPLETE, STOPPED: TrialState.PRUNED,
+                FAILED: TrialState.FAIL, DUPLICATE: TrialState.FAIL, NOT_STARTED: TrialState.FAIL,
+                INTERRUPTED: TrialState.FAIL}
+SPENT = (TRAINED, STOPPED, FAILED)  # states that used training time
+
+
+def search_command(space: Path, name: str, *extra: str) -> list[str]:
+    """A tiny, fast search: one epoch on a fifth of the demo training split."""
+    return [sys.executable, "-m", "searcher", "search", "--space", str(space), "--name", name, "--data", "demo",
+            "--epochs", "1", "--train-fraction", "0.2", "--trials", str(TRIALS), *extra]
+
+
+def start(command: list[str], cwd: Path) -> subprocess.Popen:
+    return subprocess.Popen(command, cwd=cwd, stdout=subprocess.PIPE, stderr=subprocess.STDOUT, text=True)
+
+
+def finish(processes: list[subprocess.Popen], timeout: float = 240) -> list[str]:
+    """Wait for every process; their combined output, each one checked to have ended well."""
+    outputs = [p.communicate(timeout=timeout)[0] for p in processes]
+    for process, output in zip(processes, outputs):
+        assert process.returncode == 0, output[-3000:]
+    return outputs
+
+
+def check_study(study: optuna.Study, csv: Path, workers: int) -> pd.DataFrame:
+    """Everything a shared study must satisfy once its workers are done; the study's table."""
+    trials = study.get_trials(deepcopy=False)
+    numbers = [t.number for t in trials]
+    assert sorted(numbers) == list(range(len(trials))), "trial numbers are not 0..n-1 each once"
+    for t in trials:
+        state = record_of(t).get("state")
+        assert state in OPTUNA_STATE, f"trial {t.number} has no finished record (state {state!r})"
+        assert t.state == OPTUNA_STATE[state], f"trial {t.number}: {state} told as {t.state.name}"
+    frame = trials_frame(study)
+    assert not (frame["state"] == INTERRUPTED).any(), "nothing was stopped, yet a trial was interrupted"
+
+    spent = frame[frame["state"].isin(SPENT) & frame["repeat_of"].isna()]
+    twice = spent["arch"][spent["arch"].duplicated()].tolist()
+    assert not twice, f"trained more than once: {twice}"
+    for _, row in frame[frame["repeat_of"].notna()].iterrows():
+        original = frame.loc[frame["trial"] == int(row["repeat_of"])].iloc[0]
+        assert original["arch"] == row["arch"] and original["state"] == TRAINED, f"bad repeat: trial {row['trial']}"
+    for _, row in frame[frame["state"] == DUPLICATE].iterrows():
+        assert row["arch"] in set(spent["arch"]), f"duplicate {row['trial']} of something never trained"
+
+    assert TRIALS <= trained_count(frame) <= TRIALS + workers - 1, trained_count(frame)
+    assert frame["worker"].nunique() == workers, frame["worker"].unique()
+
+    written = pd.read_csv(csv, keep_default_na=False)
+    assert sorted(written["trial"]) == sorted(frame["trial"]), "trials.csv and the study hold different trials"
+    assert (written["state"] == TRAINED).sum() == (frame["state"] == TRAINED).sum()
+    assert (written["state"] == "running").sum() == 0
+    return frame
+
+
+def stored(name: str, url: str) -> optuna.Study:
+    return open_study(name, url, None)[0]
+
+
+@pytest.mark.slow
+def test_two_worker_processes_share_the_default_sqlite_store(tmp_path: Path, write_space) -> None:
+    space = write_space()
+    output, = finish([start(search_command(space, "pair", "--workers", "2"), tmp_path)])
+    assert "[worker 0]" in output and "[worker 1]" in output
+    folder = tmp_path / "runs" / "pair"
+    check_study(stored("pair", f"sqlite:///{folder / 'study.db'}"), folder / "trials.csv", workers=2)
+
+
+@pytest.mark.slow
+def test_two_searches_started_at_once_with_one_name_share_the_run(tmp_path: Path, write_space) -> None:
+    space = write_space()
+    processes = [start(search_command(space, "twin"), tmp_path) for _ in range(2)]
+    finish(processes)
+    folder = tmp_path / "runs" / "twin"
+    frame = check_study(stored("twin", f"sqlite:///{folder / 'study.db'}"), folder / "trials.csv", workers=2)
+    assert set(frame["worker"].str.rsplit(":", n=1).str[1].astype(int)) == {p.pid for p in processes}
+
+
+@pytest.mark.slow
+def test_two_workers_share_a_journal_file_store(tmp_path: Path, write_space) -> None:
+    space = write_space()
+    journal = "runs/jr/study.journal"
+    finish([start(search_command(space, "jr", "--workers", "2", "--storage", journal), tmp_path)])
+    assert not (tmp_path / "runs" / "jr" / "study.db").exists()
+    check_study(stored("jr", str(tmp_path / journal)), tmp_path / "runs" / "jr" / "trials.csv", workers=2)
+    status = subprocess.run([sys.executable, "-m", "searcher", "status", "--name", "jr", "--storage", journal],
+                            cwd=tmp_path, capture_output=True, text=True, timeout=120)
+    assert status.returncode == 0, status.stderr
+    assert "running 0" in status.stdout
