@@ -2,7 +2,7 @@
 
 from __future__ import annotations
 
-from dataclasses import dataclass, fields, replace
+from dataclasses import dataclass, replace
 
 from searcher.cost import PRECISION_BYTES, Cost, check_precision
 from searcher.errors import SearcherError, one_of
@@ -50,31 +50,35 @@ class Budget:
     @classmethod
     def from_table(cls, table: dict, file: str | None = None, prefix: str = "budget.") -> Budget:
         """Read a ``[budget]`` table of a space file (or CLI options with the same keys)."""
+        return cls().updated(table, file, prefix)
+
+    def updated(self, table: dict, file: str | None = None, prefix: str = "budget.") -> Budget:
+        """This budget with every key that ``table`` gives replaced (None values are not given).
+
+        >>> Budget(max_params=20_000).updated({"max_macs": "2M"}).caps()
+        {'params': 20000, 'macs': 2000000}
+        """
         values: dict = {}
         for key, raw in table.items():
             if raw is None:
                 continue
             where = prefix + key
-            if key in CAP_KEYS:
-                parse = parse_bytes if key in ("max_activation", "max_weight") else parse_count
-                try:
+            try:
+                if key in CAP_KEYS:
+                    parse = parse_bytes if key in ("max_activation", "max_weight") else parse_count
                     values[CAP_KEYS[key][0]] = parse(raw, key=where)
-                except SearcherError as exc:
-                    raise SearcherError(exc.message, file=file, key=where) from None
-            elif key in ("weight_precision", "activation_precision"):
-                try:
+                elif key in ("weight_precision", "activation_precision"):
                     values[key] = check_precision(raw, where)
-                except SearcherError as exc:
-                    raise SearcherError(exc.message, file=file, key=where) from None
-            else:
-                raise SearcherError(f"unknown key `{where}`; use {one_of(key, BUDGET_KEYS)}", file=file, key=where)
-        return cls(**values)
+                else:
+                    raise SearcherError(f"unknown key `{where}`; use {one_of(key, BUDGET_KEYS)}")
+            except SearcherError as exc:
+                raise SearcherError(exc.message, file=file, key=where) from None
+        return replace(self, **values)
 
-    def with_overrides(self, other: Budget) -> Budget:
-        """This budget with every value that ``other`` sets away from the defaults."""
-        default = Budget()
-        changes = {f.name: getattr(other, f.name) for f in fields(self) if getattr(other, f.name) != getattr(default, f.name)}
-        return replace(self, **changes)
+    def to_table(self) -> dict:
+        """The budget as a [budget] table, so ``Budget().updated(b.to_table()) == b``."""
+        table = {key: getattr(self, name) for key, (name, _) in CAP_KEYS.items() if getattr(self, name) is not None}
+        return table | {"weight_precision": self.weight_precision, "activation_precision": self.activation_precision}
 
     def caps(self) -> dict[str, int]:
         """Set caps by cost column: {"params": 20000, ...}."""

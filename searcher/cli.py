@@ -7,7 +7,7 @@ import logging
 import sys
 from pathlib import Path
 
-from searcher.budget import CAP_KEYS, Budget, show_cost
+from searcher.budget import BUDGET_KEYS, Budget, show_cost
 from searcher.errors import SearcherError
 
 log = logging.getLogger("searcher")
@@ -31,10 +31,9 @@ def _add_budget(parser: argparse.ArgumentParser) -> None:
     group.add_argument("--activation-precision", choices=["fp32", "fp16", "int8"])
 
 
-def _budget(args: argparse.Namespace, base: Budget) -> Budget:
-    keys = [*CAP_KEYS, "weight_precision", "activation_precision"]
-    table = {key: getattr(args, key) for key in keys if getattr(args, key, None) is not None}
-    return base.with_overrides(Budget.from_table(table, prefix="--"))
+def _budget(args: argparse.Namespace) -> dict:
+    """The budget options given on the command line, keyed like a space file's [budget]."""
+    return {key: getattr(args, key) for key in BUDGET_KEYS if getattr(args, key, None) is not None}
 
 
 def cmd_cost(args: argparse.Namespace) -> int:
@@ -47,7 +46,7 @@ def cmd_cost(args: argparse.Namespace) -> int:
     text = Path(args.arch).read_text() if args.arch.endswith(".json") else args.arch
     arch = parse_arch(text)
     base = load_space(_space_path(args.space)).budget if args.space else Budget()
-    budget = _budget(args, base)
+    budget = base.updated(_budget(args), prefix="--")
     result = cost(arch, budget.activation_precision)
     table = pd.DataFrame(result.table())
     print(arch)
@@ -71,7 +70,7 @@ def cmd_census(args: argparse.Namespace) -> int:
     space = load_space(_space_path(args.space))
     folder = run_folder(args.name or f"census-{space.name}")
     settings = CensusSettings(samples=args.samples, seed=args.seed, classes=args.classes)
-    census = run_census(space, _budget(args, space.budget), settings)
+    census = run_census(space, space.budget.updated(_budget(args), prefix="--"), settings)
     print("\n".join(summary_lines(census)))
     written = write_census(census, folder)
     print("wrote " + ", ".join(str(p) for p in written))
@@ -117,3 +116,6 @@ def main(argv: list[str] | None = None) -> int:
     except KeyboardInterrupt:
         print("searcher: interrupted", file=sys.stderr)
         return 130
+    except BrokenPipeError:  # output piped into `head` and the like
+        sys.stderr.close()
+        return 0

@@ -27,7 +27,6 @@ def _open_run(args: argparse.Namespace):
 
 
 def cmd_search(args: argparse.Namespace, space_path, budget_of) -> int:
-    from searcher.budget import Budget
     from searcher.runner import SearchSettings, search
     from searcher.units import parse_bytes
 
@@ -40,7 +39,7 @@ def cmd_search(args: argparse.Namespace, space_path, budget_of) -> int:
         memory_cap=parse_bytes(args.max_train_memory, key="--max-train-memory") if args.max_train_memory else None,
         skip_unreadable=args.skip_unreadable,
     )
-    outcome = search(settings, budget_of(args, Budget()), train)
+    outcome = search(settings, budget_of(args), train)
     c = outcome.counts
     print(f"run {args.name}: {outcome.stopped_by or 'done'} after {outcome.seconds / 60:.1f} min")
     print(f"tried {c['tried']}: rejected {c['rejected']}, trained {c['trained']} ({c['repeats']} repeats of known "

@@ -83,11 +83,11 @@ class RunData:
     def at(self, input_shape: tuple[int, int, int]) -> Any:
         from dataclasses import replace
 
-        from searcher.data import Split, _resize as resize
+        from searcher.data import Split, resize_images
 
         size = tuple(input_shape[1:])
         if size not in self._sizes:
-            parts = {p: Split(resize(getattr(self.dataset, p).images, *size), getattr(self.dataset, p).labels)
+            parts = {p: Split(resize_images(getattr(self.dataset, p).images, *size), getattr(self.dataset, p).labels)
                      for p in ("train", "val", "test")}
             self._sizes[size] = replace(self.dataset, **parts)
         return self._sizes[size]
@@ -107,21 +107,24 @@ class PreparedRun:
     url: str
 
 
-def prepare(settings: SearchSettings, budget: Budget = Budget(), train: dict | None = None) -> PreparedRun:
-    """Check every input (space, budget, data, storage) and load the data; writes nothing."""
+def prepare(settings: SearchSettings, budget: dict | None = None, train: dict | None = None) -> PreparedRun:
+    """Check every input (space, budget, data, storage) and load the data; writes nothing.
+
+    ``budget`` and ``train`` override keys of the space file's [budget] and [train] tables.
+    """
     from searcher.data import load_dataset, load_split
     from searcher.train import TrainSettings
 
     settings.check()
     space = load_space(settings.space)
-    budget = space.budget.with_overrides(budget)
+    budget = space.budget.updated(budget or {}, prefix="--")
     train_settings = TrainSettings.from_dict({**space.train, **(train or {})}, file=space.file)
     folder = run_folder(settings.name, settings.root)
     largest = max(space.resolutions, key=lambda r: r[0] * r[1])
     split_file = folder / "split.npz"
-    stored = load_split(split_file)[0] if split_file.exists() else None
+    stored, known = load_split(split_file) if split_file.exists() else (None, None)
     dataset = load_dataset(settings.data, (space.channels, *largest), seed=settings.seed,
-                           skip_unreadable=settings.skip_unreadable, split=stored)
+                           skip_unreadable=settings.skip_unreadable, split=stored, fingerprint=known)
     if dataset.skipped:
         log.warning("skipped %d unreadable image file(s) in %s", dataset.skipped, settings.data)
     _check_something_fits(space, budget, dataset.num_classes)
@@ -160,7 +163,7 @@ def default_memory_cap(workers: int) -> int:
     return int(available * 0.5 / workers)
 
 
-def search(settings: SearchSettings, budget: Budget = Budget(), train: dict | None = None) -> SearchOutcome:
+def search(settings: SearchSettings, budget: dict | None = None, train: dict | None = None) -> SearchOutcome:
     """Run (or continue) the search ``settings.name`` and write its results."""
     run = prepare(settings, budget, train)
     study, _ = open_study(settings.name, run.url, run.config, settings.sampler)

@@ -39,7 +39,7 @@ def run_workers(run: Any, deadline: float | None) -> tuple[str, int, list[str]]:
     threads = max(1, (os.cpu_count() or 1) // count)
     context = multiprocessing.get_context("spawn")
     queue = context.Queue()
-    budget, train = run.budget, {k: v for k, v in run.config.train.items()}
+    budget, train = run.budget.to_table(), dict(run.config.train)
     processes = [
         context.Process(target=_worker_main, name=f"searcher-worker-{i}",
                         args=(run.settings, budget, train, i, threads, deadline, os.getpid(), queue))

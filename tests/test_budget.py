@@ -65,11 +65,14 @@ def test_unknown_budget_key_suggests_the_closest():
         Budget.from_table({"max_param": "20k"})
 
 
-def test_with_overrides_replaces_only_what_the_override_sets():
+def test_updated_replaces_only_the_keys_given_and_can_restore_defaults():
     base = Budget(max_params=20_000, max_macs=2_000_000, weight_precision="int8")
-    merged = base.with_overrides(Budget(max_params=5_000, activation_precision="fp16"))
+    merged = base.updated({"max_params": "5k", "activation_precision": "fp16"})
     assert merged == Budget(max_params=5_000, max_macs=2_000_000, weight_precision="int8", activation_precision="fp16")
-    assert base.with_overrides(Budget()) == base
+    assert base.updated({}) == base
+    # a value equal to the default is still applied: int8 back to fp32
+    assert base.updated({"weight_precision": "fp32"}).weight_precision == "fp32"
+    assert Budget().updated(merged.to_table()) == merged
 
 
 def test_budget_totals_use_the_budgets_precisions():

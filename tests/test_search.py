@@ -18,44 +18,29 @@ import pytest
 import torch
 
 import searcher
-from searcher.budget import Budget
 from searcher.export import ExportSettings, export
 from searcher.runner import SearchSettings, search
 
-DIGITS_SPACE = """
-name = "digits"
-[input]
-channels = 1
-size = [8, 8]
-[stages]
-count = [1, 2]
-convs = [1, 2]
-first_width = [8, 16, 24]
-[conv]
-kernel = 3
-activation = ["relu", "hardswish"]
-batch_norm = true
-[pool]
-kind = ["max", "none"]
-[head]
-features = ["flatten", "gap"]
-hidden = [0, 1]
-hidden_width = [32, 64]
-[train]
-epochs = 8
-learning_rate = 0.005
-"""
+DIGITS_SPACE = (Path(__file__).parent.parent / "examples" / "digits.toml").read_text()
+
+
+def write_digits(folder: Path) -> tuple[Path, Path]:
+    """The UCI digits as an .npz (pixels 0..16 scaled to uint8) and the digits space file."""
+    from sklearn.datasets import load_digits
+
+    digits = load_digits()
+    images = np.round(digits.images * (255 / 16)).astype(np.uint8)
+    np.savez(folder / "digits.npz", images=images, labels=digits.target)
+    (folder / "digits.toml").write_text(DIGITS_SPACE)
+    return folder / "digits.npz", folder / "digits.toml"
 
 
 @pytest.fixture(scope="module")
 def digits_run(tmp_path_factory):
     """One capped search and export on the digits set, shared by the checks below."""
-    sklearn_datasets = pytest.importorskip("sklearn.datasets")
+    pytest.importorskip("sklearn.datasets")
     folder = tmp_path_factory.mktemp("digits")
-    digits = sklearn_datasets.load_digits()  # pixel values 0..16
-    images = np.round(digits.images * (255 / 16)).astype(np.uint8)
-    np.savez(folder / "digits.npz", images=images, labels=digits.target)
-    (folder / "digits.toml").write_text(DIGITS_SPACE)
+    npz, space_file = write_digits(folder)
     built: list[str] = []
     import searcher.build as build_module
 
@@ -67,9 +52,9 @@ def digits_run(tmp_path_factory):
 
     build_module.build = recording_build
     try:
-        settings = SearchSettings(name="digits", space=str(folder / "digits.toml"), data=str(folder / "digits.npz"),
+        settings = SearchSettings(name="digits", space=str(space_file), data=str(npz),
                                   trials=8, seed=0, root=folder / "runs")
-        outcome = search(settings, Budget(max_params=20_000))
+        outcome = search(settings, {"max_params": 20_000})
     finally:
         build_module.build = real_build
     exported = export(ExportSettings(name="digits", epochs=30, root=folder / "runs"))
