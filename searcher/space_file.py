@@ -164,7 +164,21 @@ def read_space_text(text: str, file: str, default_name: str = "space") -> Space:
         file=file,
     )
     _check_shrink(space)
+    _check_distinct_widths(space)
     return space
+
+
+def _check_distinct_widths(space: Space) -> None:
+    """Two first widths that round to the same stage widths would count one network twice."""
+    seen: dict[tuple[int, ...], int] = {}
+    for first in space.first_width:
+        widths = tuple(space.stage_width(i, first) for i in range(space.stage_count[1]))
+        if widths in seen:
+            raise SearcherError(
+                f"`stages.first_width` choices {seen[widths]} and {first} give the same stage widths "
+                f"{list(widths)} after rounding to a multiple of {space.round_to}; keep one of them",
+                file=space.file, key="stages.first_width")
+        seen[widths] = first
 
 
 def _check_keys(r: _Reader) -> None:
