@@ -31,6 +31,7 @@ TRAINED, STOPPED, REJECTED, FAILED, INTERRUPTED, RUNNING = (
     "trained", "stopped_early", "rejected", "failed", "interrupted", "running")
 NOT_STARTED = "not_started"  # asked, then left for a later run: not enough time left
 DUPLICATE = "duplicate"  # the same architecture was already being trained by another worker
+QUEUED = "queued"  # queued again (a retry) and not yet asked for: no outcome yet
 
 
 def worker_id() -> dict[str, Any]:
@@ -56,6 +57,8 @@ def row_of(trial: optuna.trial.FrozenTrial) -> dict[str, Any]:
     state = record.get("state")
     if trial.state == TrialState.RUNNING:
         state = RUNNING
+    elif trial.state == TrialState.WAITING:
+        state = QUEUED
     elif state in (None, "training"):
         state = FAILED  # ended by something other than this program (another tool, a crash clean-up)
     row = {column: record.get(column) for column in COLUMNS}
@@ -80,7 +83,8 @@ def trials_frame(study: optuna.Study) -> pd.DataFrame:
 def counts(frame: pd.DataFrame) -> dict[str, int]:
     """Trials by state, plus 'tried' (every candidate the sampler proposed that was judged)."""
     by_state = frame["state"].value_counts().to_dict()
-    out = {s: int(by_state.get(s, 0)) for s in (TRAINED, STOPPED, REJECTED, FAILED, INTERRUPTED, RUNNING)}
+    states = (TRAINED, STOPPED, REJECTED, FAILED, INTERRUPTED, RUNNING, NOT_STARTED, DUPLICATE, QUEUED)
+    out = {s: int(by_state.get(s, 0)) for s in states}
     out["tried"] = sum(out[s] for s in (TRAINED, STOPPED, REJECTED, FAILED, INTERRUPTED))
     out["repeats"] = int(frame["repeat_of"].notna().sum()) if len(frame) else 0
     return out

@@ -140,8 +140,8 @@ class Search:
             if self.on_proposal is not None:
                 self.on_proposal(state, self.tally)
             idle = idle + 1 if state in (REJECTED, DUPLICATE, "repeat") else 0
-            if state in (NOT_STARTED, INTERRUPTED):
-                self.tally.stopped_by = self.tally.stopped_by or state
+            if state in (NOT_STARTED, INTERRUPTED):  # say why (a signal sets the exit status), not just "interrupted"
+                self.tally.stopped_by = self._should_stop(idle) or state
                 break
         return self.tally
 

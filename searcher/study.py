@@ -57,12 +57,12 @@ def open_storage(url: str) -> optuna.storages.BaseStorage:
         if url.startswith("postgresql"):
             return _rdb_storage(url, {"pool_pre_ping": True, "pool_size": 2})
     except ImportError as exc:
-        raise SearcherError(f"storage {redact(url)} needs a driver: {exc}; install with `pip install -e .[postgres]`",
+        raise SearcherError(f"`--storage` {redact(url)} needs a driver: {exc}; install with `pip install -e .[postgres]`",
                             key="--storage") from None
     except Exception as exc:  # connection refused, bad credentials, unreadable file ...
-        raise SearcherError(f"cannot open storage {redact(url)}: {redact(_first_line(exc))}", key="--storage") from None
+        raise SearcherError(f"cannot open `--storage` {redact(url)}: {redact(_first_line(exc))}", key="--storage") from None
     raise SearcherError(
-        f"storage {redact(url)!r} must be a sqlite:/// or postgresql:// URL or a path ending in .journal",
+        f"`--storage` {redact(url)!r} must be a sqlite:/// or postgresql:// URL or a path ending in .journal",
         key="--storage",
     )
 
@@ -114,18 +114,54 @@ class RunConfig:
         return cls(**{**data, "class_names": tuple(data["class_names"])})
 
 
+class _SeededPerTrial:
+    """Mixin: a sampler whose random draws for trial n come from (seed, n).
+
+    With one seed per process, searches that share a study with the same ``--seed`` (separate
+    commands, other machines) drew the same candidates in lockstep: trials 0 and 1 alike, 2 and 3
+    alike, and so on. Seeding from the trial number keeps a lone search reproducible and makes
+    every trial's draw its own. Optuna keeps each sampler's generator in ``_rng`` (a
+    LazyRandomState); TPE and NSGA-II also hold a RandomSampler for their random draws.
+    """
+
+    _trial_seed: int = 0
+
+    def before_trial(self, study: optuna.Study, trial: optuna.trial.FrozenTrial) -> None:
+        value = (self._trial_seed * 1_000_003 + trial.number) % 2**32
+        for owner in (self, getattr(self, "_random_sampler", None)):
+            state = getattr(owner, "_rng", None)
+            if state is not None:
+                state.rng.seed(value)
+        super().before_trial(study, trial)
+
+
+class _TPE(_SeededPerTrial, optuna.samplers.TPESampler):
+    pass
+
+
+class _NSGAII(_SeededPerTrial, optuna.samplers.NSGAIISampler):
+    pass
+
+
+class _Random(_SeededPerTrial, optuna.samplers.RandomSampler):
+    pass
+
+
 def make_sampler(kind: str, objective: str, seed: int) -> optuna.samplers.BaseSampler:
     """TPE by default: it reads constraints, and constant_liar keeps workers apart."""
     if kind == "tpe":
         single = OBJECTIVES[objective] is None
         with warnings.catch_warnings():  # `group` is marked experimental; it suits our conditional space
             warnings.simplefilter("ignore", optuna.exceptions.ExperimentalWarning)
-            return optuna.samplers.TPESampler(seed=seed, multivariate=single, group=single, constant_liar=True)
-    if kind == "nsga2":
-        return optuna.samplers.NSGAIISampler(seed=seed)
-    if kind == "random":
-        return optuna.samplers.RandomSampler(seed=seed)
-    raise SearcherError(f"`--sampler` must be {one_of(kind, SAMPLERS)}, got {kind!r}", key="--sampler")
+            sampler = _TPE(seed=seed, multivariate=single, group=single, constant_liar=True)
+    elif kind == "nsga2":
+        sampler = _NSGAII(seed=seed)
+    elif kind == "random":
+        sampler = _Random(seed=seed)
+    else:
+        raise SearcherError(f"`--sampler` must be {one_of(kind, SAMPLERS)}, got {kind!r}", key="--sampler")
+    sampler._trial_seed = seed
+    return sampler
 
 
 def open_study(name: str, url: str, config: RunConfig | None, sampler: str = "tpe",

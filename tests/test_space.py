@@ -200,9 +200,6 @@ def test_optuna_suggestion_is_reproduced_by_replay(shipped, name):
 
 
 def test_first_widths_that_round_to_the_same_network_are_refused(tmp_path):
-    from searcher.errors import SearcherError
-    from searcher.space import load_space
-
     path = tmp_path / "dupes.toml"
     path.write_text("[stages]\ncount = [1, 2]\nfirst_width = [8, 9]\nround_to = 8\n")
     with pytest.raises(SearcherError, match=r"`stages.first_width` choices 8 and 9 give the same stage widths") as info:
