@@ -141,7 +141,9 @@ class Search:
                 self.on_proposal(state, self.tally)
             idle = idle + 1 if state in (REJECTED, DUPLICATE, "repeat") else 0
             if state in (NOT_STARTED, INTERRUPTED):  # say why (a signal sets the exit status), not just "interrupted"
-                self.tally.stopped_by = self._should_stop(idle) or state
+                self.tally.stopped_by = self._should_stop(idle) or {
+                    NOT_STARTED: "time limit near: the next candidate would not finish in time (queued for the next run)",
+                    INTERRUPTED: "interrupted during training (queued for the next run)"}[state]
                 break
         return self.tally
 
@@ -178,15 +180,19 @@ class Search:
         if violations:
             return self._finish(trial, record, REJECTED, "; ".join(map(str, violations)),
                                 rejected_by="+".join(v.cap for v in violations))
+        # Write the architecture on the trial before looking at the others: of two workers that draw
+        # it at once, at least one then sees the other, so it is never trained twice (both may yield).
+        # Running trials are read before finished ones, so one that ends in between is seen as known.
+        trial.set_user_attr(RECORD, record | {"state": "training"})
+        if self._in_training_elsewhere(trial.number, record["arch"]):
+            return self._finish(trial, record, DUPLICATE, "another worker is training the same architecture",
+                                optuna_state=TrialState.FAIL)
         known = self._known_result(record["arch"])
         if known is not None:
             number, values = known
             record["repeat_of"] = number
             self._finish(trial, record, TRAINED, f"same architecture as trial {number}", values=values)
             return "repeat"
-        if self._in_training_elsewhere(trial.number, record["arch"]):
-            return self._finish(trial, record, DUPLICATE, "another worker is training the same architecture",
-                                optuna_state=TrialState.FAIL)
         left = None if self.plan.deadline is None else self.plan.deadline - time.time()
         predicted = self._predict_seconds(totals["macs"])
         if left is not None and predicted is not None and predicted > left:
