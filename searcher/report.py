@@ -9,8 +9,6 @@ from __future__ import annotations
 import html
 import logging
 import math
-import os
-import tempfile
 from collections.abc import Callable, Mapping
 from pathlib import Path
 
@@ -21,6 +19,7 @@ import plotly.io as pio
 from plotly.offline import get_plotlyjs
 
 from searcher.errors import SearcherError
+from searcher.runs import write_atomic
 from searcher.pareto import COST_COLUMNS, SCORED_STATES, check_caps, feasible_mask, front, front_steps
 from searcher.units import format_bytes, format_count
 
@@ -283,17 +282,6 @@ def write_report(trials: pd.DataFrame, path: Path, *, caps: dict[str, float], ti
     """Write the report to ``path`` atomically, so a reader never sees half a page."""
     path = Path(path)
     text = render_html(trials, caps=caps, title=title, notes=notes)
-    path.parent.mkdir(parents=True, exist_ok=True)
-    handle, temp = tempfile.mkstemp(dir=path.parent, prefix=f".{path.name}.", suffix=".tmp")
-    try:
-        with os.fdopen(handle, "w", encoding="utf-8") as out:
-            out.write(text)
-            out.flush()
-            os.fsync(out.fileno())
-        os.chmod(temp, 0o644)  # mkstemp makes it private; a report is for sharing
-        os.replace(temp, path)
-    except BaseException:
-        Path(temp).unlink(missing_ok=True)
-        raise
+    write_atomic(path, text)
     log.info("wrote report %s (%d trials)", path, len(trials))
     return path

@@ -30,6 +30,9 @@ def write_atomic(path: Path, data: str | bytes) -> Path:
     try:
         with os.fdopen(fd, "wb") as handle:
             handle.write(data.encode("utf-8") if isinstance(data, str) else data)
+            handle.flush()
+            os.fsync(handle.fileno())  # on disk before the rename, so a power cut leaves old or new
+        os.chmod(tmp, 0o644)  # mkstemp makes files private; results are for sharing
         os.replace(tmp, path)
     except BaseException:
         Path(tmp).unlink(missing_ok=True)
