@@ -48,8 +48,12 @@ def finish(processes: list[subprocess.Popen], timeout: float = 240) -> list[str]
     return outputs
 
 
-def check_study(study: optuna.Study, csv: Path, workers: int) -> pd.DataFrame:
-    """Everything a shared study must satisfy once its workers are done; the study's table."""
+def check_study(study: optuna.Study, csv: Path, workers: int, *, last_writer: bool = True) -> pd.DataFrame:
+    """Everything a shared study must satisfy once its workers are done; the study's table.
+
+    ``last_writer`` False: trials.csv was written by one of several separate searches, which may
+    have read the study just before another's last trial ended; then each row it has must agree.
+    """
     trials = study.get_trials(deepcopy=False)
     numbers = [t.number for t in trials]
     assert sorted(numbers) == list(range(len(trials))), "trial numbers are not 0..n-1 each once"
@@ -66,16 +70,22 @@ def check_study(study: optuna.Study, csv: Path, workers: int) -> pd.DataFrame:
     for _, row in frame[frame["repeat_of"].notna()].iterrows():
         original = frame.loc[frame["trial"] == int(row["repeat_of"])].iloc[0]
         assert original["arch"] == row["arch"] and original["state"] == TRAINED, f"bad repeat: trial {row['trial']}"
-    for _, row in frame[frame["state"] == DUPLICATE].iterrows():
-        assert row["arch"] in set(spent["arch"]), f"duplicate {row['trial']} of something never trained"
+    drawn = frame["arch"].value_counts()
+    for _, row in frame[frame["state"] == DUPLICATE].iterrows():  # yielded to a trial drawing the same
+        assert drawn[row["arch"]] >= 2, f"duplicate {row['trial']} of an architecture no other trial drew"
 
     assert TRIALS <= trained_count(frame) <= TRIALS + workers - 1, trained_count(frame)
     assert frame["worker"].nunique() == workers, frame["worker"].unique()
 
     written = pd.read_csv(csv, keep_default_na=False)
-    assert sorted(written["trial"]) == sorted(frame["trial"]), "trials.csv and the study hold different trials"
-    assert (written["state"] == TRAINED).sum() == (frame["state"] == TRAINED).sum()
-    assert (written["state"] == "running").sum() == 0
+    if last_writer:
+        assert sorted(written["trial"]) == sorted(frame["trial"]), "trials.csv and the study hold different trials"
+        assert (written["state"] == TRAINED).sum() == (frame["state"] == TRAINED).sum()
+    finished = written[written["state"] != "running"]
+    assert set(written["trial"]) <= set(frame["trial"])
+    store = frame.set_index("trial").loc[finished["trial"]]
+    assert list(finished["state"]) == list(store["state"]), "trials.csv disagrees with the study"
+    assert list(finished["arch"]) == list(store["arch"])
     return frame
 
 
@@ -98,7 +108,8 @@ def test_two_searches_started_at_once_with_one_name_share_the_run(tmp_path: Path
     processes = [start(search_command(space, "twin"), tmp_path) for _ in range(2)]
     finish(processes)
     folder = tmp_path / "runs" / "twin"
-    frame = check_study(stored("twin", f"sqlite:///{folder / 'study.db'}"), folder / "trials.csv", workers=2)
+    frame = check_study(stored("twin", f"sqlite:///{folder / 'study.db'}"), folder / "trials.csv", workers=2,
+                        last_writer=False)
     assert set(frame["worker"].str.rsplit(":", n=1).str[1].astype(int)) == {p.pid for p in processes}
 
 
