@@ -18,6 +18,7 @@ from dataclasses import dataclass, field
 import torch
 import torch.nn.functional as F
 from torch import nn
+from torch.optim.lr_scheduler import LRScheduler
 
 from searcher.errors import SearcherError, one_of
 
@@ -36,7 +37,7 @@ class TrainSettings:
     train_fraction: float = 1.0  # share of the training split used, a seeded random subset
     batch_size: int = 128  # training images per optimiser step
     optimizer: str = "adamw"  # "adamw", or "sgd" (momentum 0.9, Nesterov)
-    learning_rate: float = 1e-2  # peak of the schedule; 3e-3 left digits at ~0.91 after 6 short epochs, 1e-2 reached ~0.97
+    learning_rate: float = 1e-2  # schedule's peak; on digits 3e-3 reached ~0.91 in 6 short epochs, 1e-2 ~0.97
     schedule: str = "onecycle"  # "onecycle" (warm-up then anneal), "cosine" or "constant", stepped per batch
     weight_decay: float = 5e-4  # decoupled for adamw, L2 for sgd; never applied to biases or norm scales
     label_smoothing: float = 0.05  # mass moved from the true class to all classes in the loss
@@ -62,11 +63,9 @@ class TrainSettings:
         if not isinstance(values, Mapping):
             raise SearcherError(f"`train` must be a table of settings, got {values!r}", file=file, key="train")
         names = tuple(f.name for f in dataclasses.fields(cls))
-        for key in values:
-            if key not in names:
-                raise SearcherError(
-                    f"`train.{key}` is not a training setting: use {one_of(key, names)}", file=file, key=f"train.{key}"
-                )
+        for key in (k for k in values if k not in names):
+            hint = f"`train.{key}` is not a training setting: use {one_of(key, names)}"
+            raise SearcherError(hint, file=file, key=f"train.{key}")
         try:
             return cls(**values)
         except SearcherError as error:
@@ -121,24 +120,19 @@ class TrainProgress:
 
     def result(self) -> TrainResult:
         """The figures so far as a TrainResult."""
-        return TrainResult(
-            val_accuracy=self.history[-1] if self.history else math.nan,
-            history=tuple(self.history),
-            epochs=len(self.history),
-            seconds=self.seconds,
-            images_per_second=self.images_seen / self.train_seconds if self.train_seconds > 0 else 0.0,
-            train_loss=self.train_loss,
-            train_size=self.train_size,
-        )
+        speed = self.images_seen / self.train_seconds if self.train_seconds > 0 else 0.0
+        last = self.history[-1] if self.history else math.nan
+        return TrainResult(last, tuple(self.history), len(self.history), self.seconds, speed, self.train_loss,
+                           self.train_size)
 
 
 class TrainingStopped(Exception):
     """Training ended before its last epoch; `result` holds what was measured until then."""
 
-    def __init__(self, reason: str, result: TrainResult) -> None:
+    def __init__(self, reason: str) -> None:
         super().__init__(reason)
         self.reason = reason
-        self.result = result
+        self.result: TrainResult | None = None  # always set by the time train_candidate lets it out
 
 
 class Diverged(TrainingStopped):
@@ -158,33 +152,26 @@ def reset_weights(model: nn.Module, seed: int) -> None:
                 module.reset_parameters()
 
 
-def evaluate(model: nn.Module, images: torch.Tensor, labels: torch.Tensor, batch_size: int = 512) -> tuple[float, torch.Tensor]:
-    """Accuracy and predicted class per image; the model's train/eval mode is restored afterwards."""
+def evaluate(model: nn.Module, images: torch.Tensor, labels: torch.Tensor,
+             batch_size: int = 512) -> tuple[float, torch.Tensor]:
+    """Accuracy and predicted class per image, for validation and for export's test figures; mode restored."""
     if len(images) != len(labels) or len(labels) == 0:
         raise ValueError(f"need as many labels as images, at least one: {len(images)} images, {len(labels)} labels")
     was_training = model.training
     model.eval()
     with torch.inference_mode():
-        predictions = torch.cat([model(images[i : i + batch_size]).argmax(1) for i in range(0, len(images), batch_size)])
+        batches = [model(images[i : i + batch_size]).argmax(1) for i in range(0, len(images), batch_size)]
+        predictions = torch.cat(batches)
     model.train(was_training)
     predictions = predictions.clone()  # a plain tensor, usable outside inference mode
     return (predictions == labels).float().mean().item(), predictions
 
 
 def train_candidate(
-    model: nn.Module,
-    train_images: torch.Tensor,
-    train_labels: torch.Tensor,
-    val_images: torch.Tensor,
-    val_labels: torch.Tensor,
-    settings: TrainSettings = TrainSettings(),
-    *,
-    seed: int,
-    on_epoch: Callable[[int, float], None] | None = None,
-    deadline: float | None = None,
-    threads: int | None = None,
-    progress: TrainProgress | None = None,
-    init_weights: bool = True,
+    model: nn.Module, train_images: torch.Tensor, train_labels: torch.Tensor,
+    val_images: torch.Tensor, val_labels: torch.Tensor, settings: TrainSettings = TrainSettings(), *,
+    seed: int, on_epoch: Callable[[int, float], None] | None = None, deadline: float | None = None,
+    threads: int | None = None, progress: TrainProgress | None = None, init_weights: bool = True,
 ) -> TrainResult:
     """Train `model` in place for a short schedule and report its validation accuracy.
 
@@ -209,20 +196,13 @@ def train_candidate(
     if count < len(train_labels):
         chosen = torch.randperm(len(train_labels), generator=generator)[:count]
         train_images, train_labels = train_images[chosen], train_labels[chosen]
-    train_images = train_images.contiguous(memory_format=layout)
+    train_images = train_images.contiguous(memory_format=layout)  # indexing rows keeps the layout
     val_images = val_images.contiguous(memory_format=layout)
     batch = min(settings.batch_size, count)
     steps = count // batch  # the short last batch is dropped; the order changes each epoch
     progress.train_size = count
-
-    def stop(kind: type[TrainingStopped], reason: str, epoch_start: float) -> TrainingStopped:
-        now = time.monotonic()
-        progress.train_seconds += now - epoch_start
-        progress.seconds = now - started
-        return kind(reason, progress.result())
-
     with _thread_count(threads), torch.random.fork_rng(devices=[]):
-        torch.manual_seed(seed)
+        torch.manual_seed(seed)  # dropout and the like draw from here
         if init_weights:
             reset_weights(model, seed)
         model.to(memory_format=layout)
@@ -230,35 +210,19 @@ def train_candidate(
             optimizer = _optimizer(model, settings)
             schedule = _schedule(optimizer, settings, settings.epochs * steps)
             for epoch in range(settings.epochs):
-                model.train()
-                order = torch.randperm(count, generator=generator)
-                losses: list[torch.Tensor] = []
-                epoch_start = time.monotonic()
-                for step in range(steps):
-                    if deadline is not None and time.monotonic() >= deadline:
-                        raise stop(OutOfTime, f"deadline passed in epoch {epoch + 1}, step {step + 1} of {steps}", epoch_start)
-                    index = order[step * batch : (step + 1) * batch]
-                    loss = F.cross_entropy(
-                        model(train_images[index]), train_labels[index], label_smoothing=settings.label_smoothing
-                    )
-                    optimizer.zero_grad(set_to_none=True)
-                    loss.backward()
-                    optimizer.step()
-                    if schedule is not None:
-                        schedule.step()
-                    losses.append(loss.detach())
-                    progress.images_seen += batch
-                    if (step + 1) % CHECK_EVERY == 0 or step + 1 == steps:
-                        bad = _first_bad(losses, step // CHECK_EVERY * CHECK_EVERY)
-                        if bad is not None:
-                            reason = f"loss became {losses[bad].item()} at epoch {epoch + 1}, step {bad + 1}"
-                            raise stop(Diverged, reason, epoch_start)
-                progress.train_seconds += time.monotonic() - epoch_start
-                progress.train_loss = torch.stack(losses).mean().item()
+                order = torch.randperm(count, generator=generator)[: steps * batch].view(steps, batch)
+                try:
+                    loss = _train_epoch(model, train_images, train_labels, order, optimizer, schedule, settings,
+                                        deadline, progress, epoch)
+                except TrainingStopped as stopped:
+                    progress.seconds = time.monotonic() - started
+                    stopped.result = progress.result()
+                    raise
+                progress.train_loss = loss
                 accuracy, _ = evaluate(model, val_images, val_labels, settings.eval_batch_size)
                 progress.history.append(accuracy)
                 progress.seconds = time.monotonic() - started
-                log.debug("epoch %d: loss %.4f, val accuracy %.4f", epoch + 1, progress.train_loss, accuracy)
+                log.debug("epoch %d: loss %.4f, val accuracy %.4f", epoch + 1, loss, accuracy)
                 if on_epoch is not None:
                     on_epoch(epoch, accuracy)
         finally:
@@ -267,10 +231,34 @@ def train_candidate(
     return progress.result()
 
 
-def _first_bad(losses: list[torch.Tensor], since: int) -> int | None:
-    """Index of the first non-finite loss from `since` on, with one read of the values."""
-    finite = torch.isfinite(torch.stack(losses[since:]))
-    return None if bool(finite.all()) else since + int((~finite).nonzero()[0])
+def _train_epoch(model: nn.Module, images: torch.Tensor, labels: torch.Tensor, order: torch.Tensor,
+                 optimizer: torch.optim.Optimizer, schedule: LRScheduler | None, settings: TrainSettings,
+                 deadline: float | None, progress: TrainProgress, epoch: int) -> float:
+    """One pass, a batch per row of `order`; returns the mean loss. Counts its time even when it raises."""
+    model.train()
+    losses: list[torch.Tensor] = []
+    start = time.monotonic()
+    try:
+        for step, index in enumerate(order):
+            if deadline is not None and time.monotonic() >= deadline:
+                raise OutOfTime(f"deadline passed in epoch {epoch + 1}, step {step + 1} of {len(order)}")
+            loss = F.cross_entropy(model(images[index]), labels[index], label_smoothing=settings.label_smoothing)
+            optimizer.zero_grad(set_to_none=True)
+            loss.backward()
+            optimizer.step()
+            if schedule is not None:
+                schedule.step()
+            losses.append(loss.detach())  # read back only every CHECK_EVERY steps
+            progress.images_seen += len(index)
+            if (step + 1) % CHECK_EVERY == 0 or step + 1 == len(order):
+                since = step // CHECK_EVERY * CHECK_EVERY
+                finite = torch.isfinite(torch.stack(losses[since:]))
+                if not bool(finite.all()):
+                    bad = since + int((~finite).nonzero()[0])
+                    raise Diverged(f"loss became {losses[bad].item()} at epoch {epoch + 1}, step {bad + 1}")
+        return torch.stack(losses).mean().item()
+    finally:
+        progress.train_seconds += time.monotonic() - start
 
 
 def _check_data(images: torch.Tensor, labels: torch.Tensor, split: str) -> None:
@@ -281,7 +269,7 @@ def _check_data(images: torch.Tensor, labels: torch.Tensor, split: str) -> None:
 
 
 def _optimizer(model: nn.Module, settings: TrainSettings) -> torch.optim.Optimizer:
-    """Weight decay on weight matrices and kernels only: decaying biases and norm scales only hurts (common practice)."""
+    """Weight decay on weight matrices and kernels only, not biases or norm scales (common practice)."""
     params = [p for p in model.parameters() if p.requires_grad]
     groups = [
         {"params": [p for p in params if p.dim() > 1], "weight_decay": settings.weight_decay},
@@ -292,9 +280,7 @@ def _optimizer(model: nn.Module, settings: TrainSettings) -> torch.optim.Optimiz
     return torch.optim.AdamW(groups, lr=settings.learning_rate, foreach=True)
 
 
-def _schedule(
-    optimizer: torch.optim.Optimizer, settings: TrainSettings, total_steps: int
-) -> torch.optim.lr_scheduler.LRScheduler | None:
+def _schedule(optimizer: torch.optim.Optimizer, settings: TrainSettings, total_steps: int) -> LRScheduler | None:
     if settings.schedule == "onecycle":
         return torch.optim.lr_scheduler.OneCycleLR(optimizer, max_lr=settings.learning_rate, total_steps=total_steps)
     if settings.schedule == "cosine":
@@ -304,13 +290,9 @@ def _schedule(
 
 @contextlib.contextmanager
 def _thread_count(threads: int | None) -> Iterator[None]:
-    if threads is None:
-        yield
-        return
-    if threads < 1:
-        raise ValueError(f"threads must be ≥ 1, got {threads}")
     before = torch.get_num_threads()
-    torch.set_num_threads(threads)
+    if threads is not None:
+        torch.set_num_threads(threads)  # raises for threads < 1
     try:
         yield
     finally:
