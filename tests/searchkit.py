@@ -1,0 +1,135 @@
+"""Helpers for tests that run `searcher search` in a subprocess and look at what it left behind.
+
+A run keeps its study in runs/<name>/study.db (SQLite). The tests read it two ways: through
+Optuna once the run has ended, and with plain SQL while it runs (a read in WAL mode never blocks
+the writer, and it needs no Optuna import in the polling loop).
+"""
+
+from __future__ import annotations
+
+import contextlib
+import json
+import os
+import signal
+import sqlite3
+import subprocess
+import sys
+import time
+from pathlib import Path
+from typing import Any, Iterator
+
+import optuna
+from conftest import TINY_SPACE
+
+# The shared tiny space (12x12 or 16x16 input, 2-8 channels) without its caps, so nothing is rejected
+# and every candidate trains in a second or so on the demo data.
+FAST_SPACE = TINY_SPACE.split("[budget]")[0]
+
+SAFETY_SECONDS = 240.0  # a hung process fails the test instead of blocking the suite; never the assertion
+
+
+def write_space(folder: Path, extra: str = "", name: str = "space.toml") -> Path:
+    """FAST_SPACE (plus ``extra`` TOML, e.g. a [train] table) written to ``folder``."""
+    path = folder / name
+    path.write_text(FAST_SPACE + extra, encoding="utf-8")
+    return path
+
+
+def search_args(space: Path, name: str, *extra: str) -> list[str]:
+    """The command line of a small, quick search on the demo data."""
+    return [sys.executable, "-m", "searcher", "search", "--space", str(space), "--data", "demo", "--name", name,
+            "--train-fraction", "0.2", *extra]
+
+
+def child_env() -> dict[str, str]:
+    """One torch thread per child: on a busy 2-core machine extra threads only wait for each other."""
+    return {**os.environ, "OMP_NUM_THREADS": "1", "PYTHONUNBUFFERED": "1"}
+
+
+def start(args: list[str], cwd: Path, tag: str) -> subprocess.Popen:
+    """Start a command with its output in cwd/<tag>.out and .err (files, so a full pipe never blocks it)."""
+    out = open(cwd / f"{tag}.out", "w")
+    err = open(cwd / f"{tag}.err", "w")
+    return subprocess.Popen(args, cwd=cwd, stdout=out, stderr=err, env=child_env())
+
+
+def run(args: list[str], cwd: Path, tag: str = "run") -> tuple[int, str, str]:
+    """Run a command to its end: (exit status, stdout, stderr)."""
+    process = start(args, cwd, tag)
+    code = process.wait(timeout=SAFETY_SECONDS)
+    return code, (cwd / f"{tag}.out").read_text(), (cwd / f"{tag}.err").read_text()
+
+
+def db_path(cwd: Path, name: str) -> Path:
+    return cwd / "runs" / name / "study.db"
+
+
+def training_now(db: Path) -> list[int]:
+    """Numbers of the trials that are RUNNING and whose record says they are training."""
+    if not db.exists():
+        return []
+    try:
+        with sqlite3.connect(f"file:{db}?mode=ro", uri=True, timeout=5) as connection:
+            rows = connection.execute(
+                "SELECT t.number, a.value_json FROM trials t JOIN trial_user_attributes a "
+                "ON a.trial_id = t.trial_id WHERE t.state = 'RUNNING' AND a.key = 'searcher'").fetchall()
+    except sqlite3.OperationalError:  # tables not created yet
+        return []
+    return [number for number, value in rows if json.loads(value).get("state") == "training"]
+
+
+def wait_until_training(process: subprocess.Popen, db: Path, poll: float = 0.1) -> list[int]:
+    """Poll until some candidate trains; fail if the process ends first."""
+    give_up = time.monotonic() + SAFETY_SECONDS
+    while time.monotonic() < give_up:
+        numbers = training_now(db)
+        if numbers:
+            return numbers
+        if process.poll() is not None:
+            raise AssertionError(f"the search ended (status {process.returncode}) before any candidate trained")
+        time.sleep(poll)
+    raise AssertionError("no candidate started training within the safety limit")
+
+
+def stop(process: subprocess.Popen, signum: int = signal.SIGKILL) -> int:
+    """Send a signal and wait for the process to end; its exit status (negative: killed by a signal)."""
+    process.send_signal(signum)
+    return process.wait(timeout=SAFETY_SECONDS)
+
+
+def load(cwd: Path, name: str) -> optuna.Study:
+    optuna.logging.set_verbosity(optuna.logging.WARNING)
+    return optuna.load_study(study_name=name, storage=f"sqlite:///{db_path(cwd, name)}")
+
+
+def finished(study: optuna.Study) -> dict[int, tuple[str, Any, str]]:
+    """Trial number -> (Optuna state, values, our state) of every finished trial."""
+    from searcher.records import record_of
+
+    return {t.number: (t.state.name, t.values, record_of(t).get("state"))
+            for t in study.get_trials(deepcopy=False) if t.state.is_finished()}
+
+
+@contextlib.contextmanager
+def in_process() -> Iterator[None]:
+    """For a search run inside the test process: one torch thread, and signal handlers put back after."""
+    import torch
+
+    handlers = {s: signal.getsignal(s) for s in (signal.SIGINT, signal.SIGTERM)}
+    threads = torch.get_num_threads()
+    torch.set_num_threads(1)
+    try:
+        yield
+    finally:
+        torch.set_num_threads(threads)
+        for s, handler in handlers.items():
+            signal.signal(s, handler)
+
+
+def search_here(folder: Path, space: Path, name: str, train: dict | None = None, **fields: Any):
+    """runner.search in this process on the demo data, runs under folder/runs; returns its outcome."""
+    from searcher.runner import SearchSettings, search
+
+    settings = SearchSettings(name=name, space=str(space), root=folder / "runs", **fields)
+    with in_process():
+        return search(settings, train={"epochs": 1, "train_fraction": 0.2, **(train or {})})

@@ -1,0 +1,137 @@
+"""Time limits: the run's --minutes box, the prediction that keeps a candidate from starting when it
+cannot finish, and the per-candidate limit."""
+
+from __future__ import annotations
+
+import time
+from pathlib import Path
+from types import SimpleNamespace
+
+import optuna
+import pandas as pd
+import pytest
+from optuna.trial import TrialState
+
+from searchkit import load, run, search_args, search_here, write_space
+from searcher.budget import Budget
+from searcher.records import FAILED, INTERRUPTED, NOT_STARTED, QUEUED, STOPPED, TRAINED, record_of
+from searcher.search import Search, WorkerPlan
+from searcher.space import load_space
+from searcher.train import TrainSettings
+
+TRAIN_IMAGES = 1000
+
+
+def _worker(tmp_path: Path, deadline: float | None, data=None, epochs: int = 2) -> Search:
+    """A worker on an in-memory study; unless given real data, only the training-set size is there."""
+    optuna.logging.set_verbosity(optuna.logging.WARNING)
+    study = optuna.create_study(directions=["maximize"], sampler=optuna.samplers.RandomSampler(seed=3))
+    data = data or SimpleNamespace(num_classes=8, train=SimpleNamespace(labels=[0] * TRAIN_IMAGES))
+    plan = WorkerPlan(trials=100, deadline=deadline, candidate_seconds=None, memory_cap=2**40, threads=1, log_path=None)
+    settings = TrainSettings(epochs=epochs, train_fraction=0.5, batch_size=16)
+    return Search(study, load_space(write_space(tmp_path)), Budget(), settings, data, "accuracy", plan)
+
+
+def _pretend_training(worker: Search, started: list[int]):
+    """Stands in for Search._train: records which trials would train, tells them without training."""
+
+    def train(trial, arch, totals, record):
+        started.append(trial.number)
+        return worker._finish(trial, record, TRAINED, "stand-in", values=[0.5])
+
+    return train
+
+
+def test_no_prediction_before_any_candidate_was_measured(tmp_path: Path) -> None:
+    worker = _worker(tmp_path, deadline=time.time() + 1)
+    assert worker._predict_seconds(10**6) is None
+    started: list[int] = []
+    worker._train = _pretend_training(worker, started)
+    assert worker._one() == TRAINED and started == [0]  # with nothing measured, a candidate may start
+
+
+def test_prediction_scales_with_macs_and_epochs(tmp_path: Path) -> None:
+    short, long = _worker(tmp_path, None, epochs=1), _worker(tmp_path, None, epochs=3)
+    for worker in (short, long):
+        worker.tally.train_seconds, worker.tally.mac_images = 2.0, 4e9
+    assert short._predict_seconds(2_000_000) == pytest.approx(2 * short._predict_seconds(1_000_000))
+    assert long._predict_seconds(1_000_000) == pytest.approx(3 * short._predict_seconds(1_000_000))
+
+
+def test_candidate_predicted_to_overrun_is_not_started_and_queued(tmp_path: Path) -> None:
+    left = 60.0
+    worker = _worker(tmp_path, deadline=time.time() + left)
+    space = load_space(write_space(tmp_path))
+    from searcher.cost import cost
+
+    macs = sorted(cost(a).macs for a in space.enumerate(8))
+    threshold = macs[len(macs) // 2]  # candidates above the median are predicted to need more than is left
+    images = 2 * TRAIN_IMAGES * 0.5
+    worker.tally.train_seconds, worker.tally.mac_images = left, threshold * images
+    started: list[int] = []
+    worker._train = _pretend_training(worker, started)
+    states = [worker._one() for _ in range(30)]
+    trials = worker.study.get_trials(deepcopy=False)
+    records = {t.number: record_of(t) for t in trials}
+    assert NOT_STARTED in states and TRAINED in states
+    for number, record in records.items():
+        if not record:
+            continue  # a queued copy not asked for yet
+        if threshold * 0.99 < record["macs"] < threshold:
+            continue  # too close to call: the time left shrinks a little while the loop runs
+        assert (record["state"] == NOT_STARTED) == (record["macs"] >= threshold), record
+        if record["state"] == NOT_STARTED:
+            assert number not in started and "predicted" in record["reason"]
+            assert worker.study.trials[number].state == TrialState.FAIL
+    copies = [t for t in trials if t.user_attrs.get("retry_of") is not None]
+    originals = {records[t.user_attrs["retry_of"]]["arch"] for t in copies}
+    assert originals == {r["arch"] for r in records.values() if r.get("state") == NOT_STARTED}
+    asked = [c for c in copies if c.state != TrialState.WAITING]  # a queued copy has no params until asked
+    assert asked
+    for copy in asked:
+        assert copy.params == worker.study.trials[copy.user_attrs["retry_of"]].params
+
+
+def test_prediction_for_a_measured_candidate_is_not_shorter_than_it_took(tmp_path: Path) -> None:
+    """A candidate like the one just trained is predicted to take at least as long: the guard errs long."""
+    import torch
+
+    from searcher.data import Split
+
+    g = torch.Generator().manual_seed(0)
+    split = Split(torch.rand(TRAIN_IMAGES, 1, 16, 16, generator=g), torch.randint(0, 8, (TRAIN_IMAGES,), generator=g))
+    data = SimpleNamespace(num_classes=8, train=split, val=Split(split.images[:64], split.labels[:64]))
+    data.at = lambda shape: data
+    worker = _worker(tmp_path, deadline=None, data=data)
+    assert worker._one() in (TRAINED, STOPPED)
+    trial = worker.study.trials[0]
+    record = record_of(trial)
+    assert worker._predict_seconds(record["macs"]) >= record["train_seconds"] * 0.999  # seconds are rounded
+
+
+@pytest.mark.slow
+def test_time_box_cuts_the_candidate_and_stops_by_itself(tmp_path: Path) -> None:
+    # 200 epochs cannot finish in 6 s on any CPU we know: the first candidate is cut by the limit.
+    args = search_args(write_space(tmp_path), "box", "--trials", "3", "--epochs", "200", "--minutes", "0.1")
+    code, out, err = run(args, tmp_path)
+    assert code == 0, err
+    assert "time limit reached" in out
+    table = pd.read_csv(tmp_path / "runs" / "box" / "trials.csv", keep_default_na=False)
+    cut = table[table.state == INTERRUPTED]
+    assert len(cut) == 1 and "time limit" in cut.reason.item()
+    assert set(table.state) <= {INTERRUPTED, QUEUED}
+    study = load(tmp_path, "box")
+    assert study.get_trials(states=(TrialState.RUNNING,)) == []
+    queued = study.get_trials(states=(TrialState.WAITING,))
+    assert [t.user_attrs["retry_of"] for t in queued] == [cut.trial.item()]
+
+
+def test_candidate_over_its_limit_fails_and_the_search_goes_on(tmp_path: Path) -> None:
+    # 0.6 s per candidate against 200 epochs: every candidate runs over.
+    outcome = search_here(tmp_path, write_space(tmp_path), "limit", trials=2, candidate_minutes=0.01,
+                          train={"epochs": 200})
+    table = pd.read_csv(outcome.folder / "trials.csv", keep_default_na=False)
+    assert list(table.state) == [FAILED, FAILED]  # the second was started after the first failed
+    assert all("per-candidate limit" in reason for reason in table.reason)
+    assert (table.epochs < 200).all()
+    assert outcome.exit_status == 0 and outcome.counts["interrupted"] == 0
