@@ -238,7 +238,7 @@ class Search:
             self.signals.raise_now = False
             result = exc.result
             if limit is not None and (run_deadline is None or limit <= run_deadline):
-                state, reason = FAILED, f"over the per-candidate limit of {self.plan.candidate_seconds:.0f} s"
+                state, reason = FAILED, f"over the per-candidate limit of {self.plan.candidate_seconds:.3g} s"
             else:
                 state, reason = INTERRUPTED, "the run's time limit was reached during training; queued again"
         except StopRequested as exc:

@@ -132,6 +132,6 @@ def test_candidate_over_its_limit_fails_and_the_search_goes_on(tmp_path: Path) -
                           train={"epochs": 200})
     table = pd.read_csv(outcome.folder / "trials.csv", keep_default_na=False)
     assert list(table.state) == [FAILED, FAILED]  # the second was started after the first failed
-    assert all("per-candidate limit" in reason for reason in table.reason)
+    assert all(reason.startswith("over the per-candidate limit of 0.6 s") for reason in table.reason)
     assert (table.epochs < 200).all()
     assert outcome.exit_status == 0 and outcome.counts["interrupted"] == 0
