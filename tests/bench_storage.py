@@ -1,0 +1,181 @@
+"""Storage overhead per candidate: SQLite, the journal file and PostgreSQL, side by side in one run.
+
+Run: python tests/bench_storage.py [--rejected N] [--trained N] [--rounds R]
+
+Through the real worker path (``Search._should_stop`` then ``Search._one``: ask, claim, suggest,
+budget gate, constraint, record, tell), on the mcu space:
+
+* rejected — a budget nothing fits, so every candidate ends at the gate;
+* trained — caps nothing breaks, and training replaced by a stand-in that reports three epochs at
+  once, so what is timed is the bookkeeping of a trained candidate (the running-architecture and
+  known-result reads, heartbeat, per-epoch reports, pruning, record, tell) and not torch;
+* rejected, two workers at once — two processes on one fresh study, per candidate per worker.
+
+PostgreSQL is $SEARCHER_TEST_POSTGRES when set, else a throw-away cluster like the tests' fixture.
+Every store starts empty for each measurement (TPE's cost grows with the trials it reads).
+"""
+
+from __future__ import annotations
+
+import argparse
+import importlib
+import logging
+import multiprocessing
+import os
+import sys
+import tempfile
+import time
+import uuid
+from dataclasses import replace
+from pathlib import Path
+from types import SimpleNamespace
+
+HERE = Path(__file__).resolve().parent
+sys.path.insert(0, str(HERE.parent))  # run from a checkout without installing
+sys.path.insert(0, str(HERE))
+
+import numpy as np  # noqa: E402
+import optuna  # noqa: E402
+
+from searcher.budget import Budget  # noqa: E402
+from searcher.search import Search, WorkerPlan  # noqa: E402
+from searcher.space import load_space  # noqa: E402
+from searcher.study import RunConfig, open_study  # noqa: E402
+from searcher.train import TrainResult, TrainSettings  # noqa: E402
+
+SPACE = HERE.parent / "spaces" / "mcu.toml"
+CLASSES = 10
+NOTHING_FITS = Budget(max_params=1)
+EVERYTHING_FITS = Budget(max_params=10**12, max_macs=10**15, max_activation_bytes=10**12, max_weight_bytes=10**12)
+
+
+def stand_in_training(model, train_images, train_labels, val_images, val_labels, settings, *, seed, on_epoch=None,
+                      **_) -> TrainResult:
+    """Report made-up accuracies for each epoch at once, as the real trainer reports real ones."""
+    rng = np.random.default_rng(seed)
+    history = []
+    for epoch in range(settings.epochs):
+        history.append(float(rng.uniform(0.1, 0.9)))
+        if on_epoch is not None:
+            on_epoch(epoch, history[-1])
+    return TrainResult(val_accuracy=history[-1], history=tuple(history), epochs=settings.epochs, seconds=0.0,
+                       images_per_second=0.0, train_loss=0.0, train_size=0)
+
+
+def make_search(url: str, name: str, budget: Budget, worker: int = 0) -> Search:
+    space = load_space(SPACE)
+    budget = replace(space.budget, **{k: v for k, v in budget.__dict__.items() if k.startswith("max_")})
+    settings = TrainSettings(epochs=3)
+    config = RunConfig(space_name=space.name, space_text=SPACE.read_text(), budget=budget.__dict__,
+                       train=settings.__dict__, data="bench", data_fingerprint="bench", classes=CLASSES,
+                       class_names=tuple(map(str, range(CLASSES))), objective="accuracy", seed=0)
+    study, _ = open_study(name, url, config, "tpe", worker=worker)
+    split = SimpleNamespace(train=SimpleNamespace(images=None, labels=np.zeros(100)),
+                            val=SimpleNamespace(images=None, labels=None))
+    data = SimpleNamespace(num_classes=CLASSES, train=split.train, at=lambda shape: split)
+    plan = WorkerPlan(trials=10**9, deadline=None, candidate_seconds=None, memory_cap=10**15, threads=None,
+                      log_path=None, seed=worker)
+    return Search(study, space, budget, settings, data, "accuracy", plan)
+
+
+def timed_loop(search: Search, count: int) -> tuple[float, dict[str, int]]:
+    """Seconds per candidate over ``count`` turns of the worker loop, and how the candidates ended."""
+    states: dict[str, int] = {}
+    started = time.perf_counter()
+    for _ in range(count):
+        search._should_stop(0)
+        state = search._one()
+        states[state] = states.get(state, 0) + 1
+    return (time.perf_counter() - started) / count, states
+
+
+def _parallel_worker(url: str, name: str, count: int, worker: int, gate, results) -> None:
+    optuna.logging.set_verbosity(optuna.logging.WARNING)
+    search = make_search(url, name, NOTHING_FITS, worker)
+    gate.wait()
+    results.put(timed_loop(search, count)[0])
+
+
+def parallel_rejected(url: str, name: str, count: int) -> float:
+    """Per candidate per worker with two processes on one study at once."""
+    make_search(url, name, NOTHING_FITS)  # create the study before the workers race to open it
+    context = multiprocessing.get_context("spawn")
+    gate, results = context.Barrier(2), context.Queue()
+    processes = [context.Process(target=_parallel_worker, args=(url, name, count, i, gate, results)) for i in (0, 1)]
+    for p in processes:
+        p.start()
+    seconds = [results.get(timeout=600) for _ in processes]
+    for p in processes:
+        p.join()
+    return sum(seconds) / len(seconds)
+
+
+def stores(folder: Path, postgres: str) -> dict:
+    """Store label -> a function giving a fresh, empty store URL for one measurement."""
+    from conftest import create_database
+
+    def sqlite() -> str:
+        return f"sqlite:///{folder / uuid.uuid4().hex / 'study.db'}"
+
+    def journal() -> str:
+        return str(folder / uuid.uuid4().hex / "study.journal")
+
+    def pg() -> str:
+        return create_database(postgres, "bench_" + uuid.uuid4().hex[:10])
+
+    return {"sqlite": sqlite, "journal": journal, "postgresql": pg}
+
+
+def main() -> None:
+    parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    parser.add_argument("--rejected", type=int, default=60, help="rejected candidates per measurement")
+    parser.add_argument("--trained", type=int, default=30, help="trained candidates per measurement")
+    parser.add_argument("--rounds", type=int, default=1)
+    args = parser.parse_args()
+    logging.basicConfig(level=logging.WARNING)
+    optuna.logging.set_verbosity(optuna.logging.WARNING)
+    import searcher.train
+
+    searcher.train.train_candidate = stand_in_training
+    importlib.import_module("searcher.build").build = lambda arch: None
+    print(f"{os.cpu_count()} cores; load average before: {' '.join(f'{x:.2f}' for x in os.getloadavg())}")
+
+    from conftest import POSTGRES_ENV, ThrowawayPostgres
+
+    cluster = None
+    postgres = os.environ.get(POSTGRES_ENV)
+    if not postgres:
+        cluster = ThrowawayPostgres()
+        postgres = cluster.start()
+    rows: dict[str, dict[str, list[float]]] = {}
+    try:
+        with tempfile.TemporaryDirectory(prefix="bench-storage-") as folder:
+            fresh = stores(Path(folder), postgres)
+            for round_ in range(args.rounds):
+                for label, new_url in fresh.items():
+                    row = rows.setdefault(label, {"rejected": [], "trained": [], "parallel": []})
+                    seconds, _ = timed_loop(make_search(new_url(), "bench", NOTHING_FITS), args.rejected)
+                    row["rejected"].append(seconds)
+                    seconds, states = timed_loop(make_search(new_url(), "bench", EVERYTHING_FITS), args.trained)
+                    row["trained"].append(seconds)
+                    row["parallel"].append(parallel_rejected(new_url(), "bench", args.rejected))
+                    print(f"  round {round_ + 1} {label}: done ({states})", flush=True)
+    finally:
+        if cluster is not None:
+            cluster.stop()
+    print(f"load average after: {' '.join(f'{x:.2f}' for x in os.getloadavg())}")
+    print(f"ms per candidate (best of {args.rounds} round(s); {args.rejected} rejected, {args.trained} trained "
+          f"per measurement, each on an empty store)")
+    print(f"{'store':12s} {'rejected':>10s} {'trained':>10s} {'rejected, 2 workers at once':>28s}")
+    for label, row in rows.items():
+        print(f"{label:12s} {min(row['rejected']) * 1e3:10.1f} {min(row['trained']) * 1e3:10.1f} "
+              f"{min(row['parallel']) * 1e3:28.1f}")
+    base = rows["sqlite"]
+    for label, row in rows.items():
+        print(f"{label:12s} vs sqlite: rejected {min(row['rejected']) / min(base['rejected']):.2f}x, "
+              f"trained {min(row['trained']) / min(base['trained']):.2f}x, "
+              f"2 at once {min(row['parallel']) / min(base['parallel']):.2f}x")
+
+
+if __name__ == "__main__":
+    main()
