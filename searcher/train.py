@@ -1,13 +1,13 @@
 """Short CPU training of one candidate network: the proxy score a search trial reports.
 
-Speed matters more than the last point of accuracy here: a search trains hundreds of
-candidates, so batches come straight from in-memory tensors by index permutation, the
-model and inputs run channels-last, and the loss is read back once per few steps.
+A search trains hundreds of candidates, so speed comes first: batches are cut from in-memory tensors
+by index permutation, model and inputs run channels-last, and the loss is read back once per few steps.
 """
 
 from __future__ import annotations
 
 import contextlib
+import ctypes
 import dataclasses
 import logging
 import math
@@ -27,6 +27,7 @@ log = logging.getLogger(__name__)
 OPTIMIZERS = ("adamw", "sgd")
 SCHEDULES = ("onecycle", "cosine", "constant")
 CHECK_EVERY = 16  # steps between reads of the loss, to spot divergence without a sync each step
+_M_TRIM_THRESHOLD, _M_MMAP_THRESHOLD = -1, -3  # glibc's mallopt parameter numbers (malloc.h)
 
 
 @dataclass(frozen=True)
@@ -136,7 +137,7 @@ class TrainingStopped(Exception):
 
 
 class Diverged(TrainingStopped):
-    """The loss became NaN or infinite: the candidate failed, the search goes on."""
+    """The loss became NaN or infinite: the candidate failed, the search goes on. Not a user mistake."""
 
 
 class OutOfTime(TrainingStopped):
@@ -175,15 +176,12 @@ def train_candidate(
 ) -> TrainResult:
     """Train `model` in place for a short schedule and report its validation accuracy.
 
-    Everything random comes from `seed`: the subset, the batch order, the initial weights
-    (re-drawn unless `init_weights` is false) and dropout; torch's global generator is left
-    as it was. Results repeat exactly for one seed on one thread.
-
-    `on_epoch(epoch_index, val_accuracy)` runs after each epoch (index from 0); an exception
-    it raises, such as optuna.TrialPruned, propagates unchanged: pass a `progress` to keep the
-    figures up to that point. Diverged and OutOfTime carry them as `.result`.
-    `deadline` is a time.monotonic() value. `threads` sets torch's intra-op thread count for
-    this call only (it is process-wide state, restored afterwards); None leaves it alone.
+    Everything random comes from `seed`: subset, batch order, initial weights (re-drawn unless `init_weights`
+    is false) and dropout; torch's global generator is left as it was. One seed on one thread repeats exactly.
+    `on_epoch(epoch_index, val_accuracy)` runs after each epoch (index from 0); what it raises, such as
+    optuna.TrialPruned, propagates unchanged: pass a `progress` to keep the figures so far. Diverged and
+    OutOfTime carry them as `.result`. `deadline` is a time.monotonic() value. `threads` sets torch's
+    process-wide intra-op thread count for this call only, restoring it after; None leaves it alone.
     The model ends in eval mode, in the default (NCHW) memory layout.
     """
     started = time.monotonic()
@@ -262,19 +260,17 @@ def _train_epoch(model: nn.Module, images: torch.Tensor, labels: torch.Tensor, o
 
 
 def _check_data(images: torch.Tensor, labels: torch.Tensor, split: str) -> None:
-    if images.dim() != 4 or images.dtype != torch.float32 or labels.dim() != 1 or labels.dtype != torch.int64:
-        raise ValueError(f"{split} data must be float32 N×C×H×W images and int64 labels")
-    if len(images) != len(labels) or len(labels) < 2:
-        raise ValueError(f"{split} split: {len(images)} images, {len(labels)} labels; need matching counts ≥ 2")
+    if images.dim() != 4 or images.dtype != torch.float32 or labels.dtype != torch.int64 or len(labels) < 2 \
+            or labels.shape != images.shape[:1]:
+        raise ValueError(f"{split} data must be ≥ 2 float32 N×C×H×W images and N int64 labels, got "
+                         f"{images.dtype} {tuple(images.shape)} and {labels.dtype} {tuple(labels.shape)}")
 
 
 def _optimizer(model: nn.Module, settings: TrainSettings) -> torch.optim.Optimizer:
     """Weight decay on weight matrices and kernels only, not biases or norm scales (common practice)."""
     params = [p for p in model.parameters() if p.requires_grad]
-    groups = [
-        {"params": [p for p in params if p.dim() > 1], "weight_decay": settings.weight_decay},
-        {"params": [p for p in params if p.dim() <= 1], "weight_decay": 0.0},
-    ]
+    split = [(settings.weight_decay, [p for p in params if p.dim() > 1]), (0.0, [p for p in params if p.dim() <= 1])]
+    groups = [{"params": group, "weight_decay": decay} for decay, group in split if group]
     if settings.optimizer == "sgd":
         return torch.optim.SGD(groups, lr=settings.learning_rate, momentum=0.9, nesterov=True, foreach=True)
     return torch.optim.AdamW(groups, lr=settings.learning_rate, foreach=True)
@@ -297,3 +293,14 @@ def _thread_count(threads: int | None) -> Iterator[None]:
         yield
     finally:
         torch.set_num_threads(before)
+
+
+def keep_freed_memory() -> bool:
+    """Keep glibc from returning large freed blocks to the OS: each training step re-allocates its
+    activations, and fresh pages cost page faults (about a tenth of step time, in tests/bench_train.py).
+    Process-wide: call once at start-up (CLI, worker), not per candidate. False where libc is not glibc."""
+    try:
+        libc = ctypes.CDLL("libc.so.6")
+    except OSError:
+        return False
+    return bool(libc.mallopt(_M_MMAP_THRESHOLD, 32 << 20)) and bool(libc.mallopt(_M_TRIM_THRESHOLD, 256 << 20))

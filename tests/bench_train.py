@@ -26,7 +26,7 @@ sys.path.insert(0, str(Path(__file__).resolve().parents[1]))  # run from a check
 
 from test_train import small_net  # noqa: E402  (this folder is on the path when run as a script)
 
-from searcher.train import TrainSettings, train_candidate  # noqa: E402
+from searcher.train import TrainSettings, keep_freed_memory, train_candidate  # noqa: E402
 
 CANDIDATES = {"small": (8, 16, 32), "medium": (16, 32, 64), "large": (32, 64, 128)}
 CLASSES = 10
@@ -84,7 +84,9 @@ def main() -> None:
     parser.add_argument("--rounds", type=int, default=3, help="interleaved repeats; the best of each counts")
     parser.add_argument("--images", type=int, default=2048, help="training images (32×32×1, random)")
     parser.add_argument("--epochs", type=int, default=2)
+    parser.add_argument("--keep-freed-memory", action="store_true", help="call keep_freed_memory() first (all sides)")
     args = parser.parse_args()
+    kept = args.keep_freed_memory and keep_freed_memory()
 
     torch.set_num_threads(args.threads)
     generator = torch.Generator().manual_seed(0)
@@ -111,7 +113,8 @@ def main() -> None:
         print(f"round {round_index + 1}/{args.rounds} done", flush=True)
 
     print(f"\ntorch {torch.__version__}, {args.threads} thread(s), {args.images} images 32×32×1, batch 128, "
-          f"{args.epochs} epochs, best of {args.rounds} interleaved rounds; training images/s")
+          f"{args.epochs} epochs, best of {args.rounds} interleaved rounds, freed memory kept: {kept}")
+    print("training images per second:")
     header = "".join(f"{side:>{width}}" for side, width in SIDES.items())
     print(f"{'candidate':<22}{header}{'ratio':>8}  goal ≥ 1.2×")
     for name, widths in CANDIDATES.items():

@@ -10,7 +10,17 @@ from torch import nn
 
 from searcher import train
 from searcher.errors import SearcherError
-from searcher.train import Diverged, OutOfTime, TrainProgress, TrainSettings, evaluate, train_candidate
+from searcher.train import (
+    OPTIMIZERS,
+    SCHEDULES,
+    Diverged,
+    OutOfTime,
+    TrainProgress,
+    TrainSettings,
+    evaluate,
+    keep_freed_memory,
+    train_candidate,
+)
 
 FAST = TrainSettings(epochs=3, batch_size=32)
 
@@ -142,6 +152,26 @@ def test_train_fraction_trains_on_that_share(toy):
     result = train_candidate(model, *toy, settings, seed=0)  # threads left as they are
     assert result.train_size == 64  # a quarter of 256
     assert sum(seen) == 2 * 64
+
+
+@pytest.mark.parametrize("optimizer", OPTIMIZERS)
+@pytest.mark.parametrize("schedule", SCHEDULES)
+def test_every_optimizer_and_schedule_trains(toy, optimizer, schedule):
+    settings = TrainSettings(epochs=2, batch_size=64, optimizer=optimizer, schedule=schedule, weight_decay=0,
+                             channels_last=False, learning_rate=0.05 if optimizer == "sgd" else 0.01)
+    model = small_net(widths=(8,))
+    before = [p.detach().clone() for p in model.parameters()]
+    result = train_candidate(model, *toy, settings, seed=0, threads=1)
+    assert math.isfinite(result.train_loss) and result.epochs == 2
+    assert all(not torch.equal(a, b) for a, b in zip(before, model.parameters(), strict=True))  # every layer moved
+
+
+def test_keep_freed_memory_on_glibc():
+    import platform
+
+    if platform.libc_ver()[0] != "glibc":
+        pytest.skip("the allocator setting exists for glibc only")
+    assert keep_freed_memory() is True
 
 
 def test_evaluate_matches_a_plain_forward_pass(toy):
