@@ -64,25 +64,39 @@ def db_path(cwd: Path, name: str) -> Path:
     return cwd / "runs" / name / "study.db"
 
 
-def training_now(db: Path) -> list[int]:
-    """Numbers of the trials that are RUNNING and whose record says they are training."""
+def trial_rows(db: Path) -> list[dict[str, Any]]:
+    """Every trial's number, Optuna state and the user attributes searcher writes, read with plain SQL."""
     if not db.exists():
         return []
     try:
         with sqlite3.connect(f"file:{db}?mode=ro", uri=True, timeout=5) as connection:
-            rows = connection.execute(
-                "SELECT t.number, a.value_json FROM trials t JOIN trial_user_attributes a "
-                "ON a.trial_id = t.trial_id WHERE t.state = 'RUNNING' AND a.key = 'searcher'").fetchall()
+            states = connection.execute("SELECT trial_id, number, state FROM trials").fetchall()
+            attrs = connection.execute("SELECT trial_id, key, value_json FROM trial_user_attributes "
+                                       "WHERE key IN ('searcher', 'worker')").fetchall()
     except sqlite3.OperationalError:  # tables not created yet
         return []
-    return [number for number, value in rows if json.loads(value).get("state") == "training"]
+    rows = {trial_id: {"number": number, "state": state, "searcher": {}, "worker": {}}
+            for trial_id, number, state in states}
+    for trial_id, key, value in attrs:
+        rows[trial_id][key] = json.loads(value)
+    return sorted(rows.values(), key=lambda r: r["number"])
+
+
+def training_now(db: Path, pid: int | None = None) -> list[int]:
+    """Numbers of the RUNNING trials whose record says they train (by process ``pid``, if given).
+
+    The pid matters after a kill: the dead process's trial still looks like this until the next run
+    cleans it up.
+    """
+    return [r["number"] for r in trial_rows(db) if r["state"] == "RUNNING" and r["searcher"].get("state") == "training"
+            and (pid is None or r["worker"].get("pid") == pid)]
 
 
 def wait_until_training(process: subprocess.Popen, db: Path, poll: float = 0.1) -> list[int]:
-    """Poll until some candidate trains; fail if the process ends first."""
+    """Poll until a candidate of this process trains; fail if the process ends first."""
     give_up = time.monotonic() + SAFETY_SECONDS
     while time.monotonic() < give_up:
-        numbers = training_now(db)
+        numbers = training_now(db, process.pid)
         if numbers:
             return numbers
         if process.poll() is not None:

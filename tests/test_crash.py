@@ -16,7 +16,8 @@ import pytest
 from optuna.trial import TrialState
 
 from searchkit import (
-    db_path, finished, load, run, search_args, search_here, start, stop, training_now, wait_until_training,
+    SAFETY_SECONDS, db_path, finished, load, run, search_args, search_here, start, stop, trial_rows, training_now,
+    wait_until_training,
     write_space,
 )
 from searcher.records import INTERRUPTED, REJECTED, TRAINED, counts, trained_count, trials_frame
@@ -31,21 +32,41 @@ def _retries(study) -> dict[int, list]:
     return found
 
 
+def _wait_for_a_kill_moment(process, db: Path, rng: random.Random) -> None:
+    """A seeded moment in this process's work: after 0-2 of its candidates finish, part-way into the next
+    (or, as the wait may outlast it, while telling or asking). Paced mostly by candidates, not seconds,
+    so a faster machine does not finish the run between kills."""
+    wanted = rng.randint(0, 2)
+    give_up = time.monotonic() + SAFETY_SECONDS
+    while True:
+        done = [r for r in trial_rows(db) if r["worker"].get("pid") == process.pid and r["state"] != "RUNNING"]
+        if len(done) >= wanted:
+            break
+        assert process.poll() is None and time.monotonic() < give_up, "the search ended before it could be killed"
+        time.sleep(0.05)
+    wait_until_training(process, db)
+    time.sleep(rng.uniform(0.0, 0.3))  # a warmed-up candidate trains in ~0.1-0.3 s here, the first one longer
+
+
 @pytest.mark.slow
 def test_killed_search_resumes_without_losing_work(tmp_path: Path) -> None:
-    trials = 5
+    trials = 16
     args = search_args(write_space(tmp_path), "crash", "--trials", str(trials), "--epochs", "2")
     db = db_path(tmp_path, "crash")
-    rng = random.Random(20261201)
+    rng = random.Random(2)  # a seed whose draws mix kills at startup, mid-candidate and a few candidates in
     before_kills: list[dict] = []
     seen_training: list[int] = []
     for kill in range(4):
         process = start(args, tmp_path, f"kill{kill}")
-        wait_until_training(process, db)
-        time.sleep(rng.uniform(0.2, 5.0))  # a different moment each time: mid-training, telling, asking
+        _wait_for_a_kill_moment(process, db, rng)
         before_kills.append(finished(load(tmp_path, "crash")))
-        seen_training += training_now(db)
+        seen_training += training_now(db, process.pid)
         assert stop(process, signal.SIGKILL) == -signal.SIGKILL, "the search ended before it could be killed"
+    left_running = [t.number for t in load(tmp_path, "crash").get_trials(states=(TrialState.RUNNING,))]
+    code, out, err = run([sys.executable, "-m", "searcher", "status", "--name", "crash"], tmp_path, "dead")
+    assert code == 0, err
+    for number in left_running:  # what the last kill left behind is seen as dead before anything cleans it up
+        assert f"trial {number} on" in out and "looks dead" in out
     code, out, err = run(args, tmp_path, "final")
     assert code == 0, err
 
