@@ -3,14 +3,17 @@ and the guards (training memory, divergence, secrets in storage URLs) hold."""
 
 from __future__ import annotations
 
+import os
 import random
 import signal
+import socket
 import sqlite3
+import subprocess
 import sys
 import time
-from collections import Counter
 from pathlib import Path
 
+import optuna
 import pandas as pd
 import pytest
 from optuna.trial import TrialState
@@ -20,7 +23,7 @@ from searchkit import (
     wait_until_training,
     write_space,
 )
-from searcher.records import INTERRUPTED, REJECTED, TRAINED, counts, trained_count, trials_frame
+from searcher.records import INTERRUPTED, REJECTED, counts, trained_count, trials_frame
 
 
 def _retries(study) -> dict[int, list]:
@@ -253,3 +256,60 @@ def test_redact_hides_every_password(text: str, password: str) -> None:
     assert password not in shown
     assert shown.count("***") == text.count("{pw}")
     assert shown == text.replace("{pw}", "***")  # everything else is left as it was
+
+
+# -- telling dead trials from live ones --------------------------------------------------------------------
+
+
+def _running_trial(study, worker: dict | None, **attrs):
+    trial = study.ask()
+    trial.suggest_int("width", 1, 64)
+    if worker is not None:
+        trial.set_user_attr("worker", worker)
+    for key, value in attrs.items():
+        trial.set_user_attr(key, value)
+    return trial
+
+
+def test_recovery_fails_and_requeues_only_the_dead() -> None:
+    from searcher.liveness import STALE_SECONDS, recover_stale
+    from searcher.records import record_of
+
+    optuna.logging.set_verbosity(optuna.logging.WARNING)
+    study = optuna.create_study(sampler=optuna.samplers.RandomSampler(seed=1), direction="maximize")
+    host, now = socket.gethostname(), time.time()
+    gone = subprocess.Popen([sys.executable, "-c", "pass"])
+    gone.wait()  # a process of this host that has ended
+    dead_here = _running_trial(study, {"host": host, "pid": gone.pid, "started": now})
+    alive_here = _running_trial(study, {"host": host, "pid": os.getppid(), "started": now})
+    mine = _running_trial(study, {"host": host, "pid": os.getpid(), "started": now})
+    far = {"host": host + "-elsewhere", "pid": 1, "started": now - 10 * STALE_SECONDS}
+    silent_far = _running_trial(study, far, heartbeat=now - 2 * STALE_SECONDS)
+    beating_far = _running_trial(study, far, heartbeat=now)
+    dead_retry = _running_trial(study, {"host": host, "pid": gone.pid, "started": now}, retry_of=dead_here.number)
+    fresh_unclaimed = _running_trial(study, None)
+
+    recovered = recover_stale(study)
+    assert sorted(recovered) == sorted([dead_here.number, silent_far.number, dead_retry.number])
+    trials = study.get_trials(deepcopy=False)
+    for number in recovered:
+        assert trials[number].state == TrialState.FAIL
+        assert record_of(trials[number])["state"] == INTERRUPTED
+    for kept in (alive_here, mine, beating_far, fresh_unclaimed):
+        assert trials[kept.number].state == TrialState.RUNNING
+    queued = study.get_trials(deepcopy=False, states=(TrialState.WAITING,))
+    assert sorted(t.user_attrs["retry_of"] for t in queued) == [dead_here.number, silent_far.number]  # a retry is not retried
+    assert recover_stale(study) == []  # a second pass finds nothing new
+
+
+def test_unclaimed_trial_counts_as_dead_only_after_the_grace_period() -> None:
+    from searcher.liveness import UNCLAIMED_SECONDS, is_dead
+
+    optuna.logging.set_verbosity(optuna.logging.WARNING)
+    study = optuna.create_study()
+    study.ask()  # asked, then the worker died before it could claim the trial
+    trial = study.get_trials(deepcopy=False)[0]
+    asked = trial.datetime_start.timestamp()
+    host = socket.gethostname()
+    assert not is_dead(trial, asked + UNCLAIMED_SECONDS / 2, host)
+    assert is_dead(trial, asked + UNCLAIMED_SECONDS + 1, host)
