@@ -71,7 +71,10 @@ def write_space(tmp_path: Path) -> Callable[..., Path]:
 # -- PostgreSQL for the multi-machine tests ---------------------------------------------------
 # .ci/run exports SEARCHER_TEST_POSTGRES; without it the fixture starts a throw-away cluster.
 
+from collections.abc import Iterator  # noqa: E402  (this section's own import)
+
 POSTGRES_ENV = "SEARCHER_TEST_POSTGRES"
+Urls = Iterator[str]  # what the PostgreSQL fixtures yield
 
 
 class ThrowawayPostgres:
@@ -154,7 +157,7 @@ def drop_database(server_url: str, name: str) -> None:
 
 
 @pytest.fixture(scope="session")
-def postgres_url() -> str:
+def postgres_url() -> Urls:
     """A PostgreSQL server URL: $SEARCHER_TEST_POSTGRES, else a throw-away cluster; skip if neither works."""
     import os
 
@@ -183,7 +186,7 @@ def postgres_url() -> str:
 
 
 @pytest.fixture
-def postgres_database(postgres_url: str, request: pytest.FixtureRequest) -> str:
+def postgres_database(postgres_url: str, request: pytest.FixtureRequest) -> Urls:
     """A database of its own for one test, dropped afterwards; its URL keeps the server's password."""
     import re
     import uuid
