@@ -44,6 +44,7 @@ log = logging.getLogger(__name__)
 
 HEARTBEAT_SECONDS = 20.0  # how often a training worker says it is alive
 MAX_IDLE_PROPOSALS = 300  # stop after this many proposals in a row that could not be trained
+RECOVER_SECONDS = 30.0  # how often a running worker looks for trials that dead workers left running
 
 
 class StopRequested(BaseException):
@@ -122,13 +123,11 @@ class Search:
         self.classes = data.num_classes
         self._known: dict[str, tuple[int, Any]] = {}  # arch text -> (trial number, values) of trained ones
         self.on_proposal: Any = None  # called as on_proposal(state, tally) after each proposal
+        self._recovered_at = -math.inf  # time.monotonic() of the last look for dead workers' trials
 
     # -- the loop --------------------------------------------------------------------------
     def run(self) -> WorkerTally:
-        from searcher.liveness import recover_stale
-
-        self.signals.install()
-        recover_stale(self.study)
+        self.signals.install()  # the first _should_stop recovers what dead workers left running
         idle = 0
         while True:
             stop = self._should_stop(idle)
@@ -156,6 +155,13 @@ class Search:
             return "parent process gone"
         if idle >= MAX_IDLE_PROPOSALS:
             return f"{idle} proposals in a row were over budget or already known; the space looks exhausted"
+        if time.monotonic() - self._recovered_at >= RECOVER_SECONDS:
+            # not only at start: a worker elsewhere may die later, and a trial a kill left unclaimed is
+            # only called dead after a grace period; until recovered, both count as in flight below
+            from searcher.liveness import recover_stale
+
+            recover_stale(self.study)
+            self._recovered_at = time.monotonic()
         frame = trials_frame(self.study)
         in_flight = int((frame["state"] == "running").sum())  # other workers' candidates will count too
         if trained_count(frame) + in_flight >= self.plan.trials:

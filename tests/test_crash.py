@@ -12,6 +12,7 @@ import subprocess
 import sys
 import time
 from pathlib import Path
+from types import SimpleNamespace
 
 import optuna
 import pandas as pd
@@ -23,7 +24,13 @@ from searchkit import (
     wait_until_training,
     write_space,
 )
+import searcher.liveness
+import searcher.search
+from searcher.budget import Budget
 from searcher.records import INTERRUPTED, REJECTED, counts, trained_count, trials_frame
+from searcher.search import Search, WorkerPlan
+from searcher.space import load_space
+from searcher.train import TrainSettings
 
 
 def _retries(study) -> dict[int, list]:
@@ -192,7 +199,6 @@ def test_memory_cap_rejects_candidates_without_building_them(tmp_path: Path, mon
     import importlib
 
     from searcher.cost import cost, training_bytes
-    from searcher.space import load_space
 
     space_file = write_space(tmp_path)
     estimates = sorted(training_bytes(cost(a), 128) for a in load_space(space_file).enumerate(8))
@@ -313,3 +319,19 @@ def test_unclaimed_trial_counts_as_dead_only_after_the_grace_period() -> None:
     host = socket.gethostname()
     assert not is_dead(trial, asked + UNCLAIMED_SECONDS / 2, host)
     assert is_dead(trial, asked + UNCLAIMED_SECONDS + 1, host)
+
+
+def test_running_search_recovers_what_dies_later(tmp_path: Path, monkeypatch) -> None:
+    """Not only at start: a trial whose worker died after this one started is cleaned up while it runs."""
+    optuna.logging.set_verbosity(optuna.logging.WARNING)
+    study = optuna.create_study(direction="maximize")
+    data = SimpleNamespace(num_classes=8, train=SimpleNamespace(labels=[0] * 100))
+    plan = WorkerPlan(trials=5, deadline=None, candidate_seconds=None, memory_cap=2**40, threads=1, log_path=None)
+    worker = Search(study, load_space(write_space(tmp_path)), Budget(), TrainSettings(), data, "accuracy", plan)
+    assert worker._should_stop(0) == ""  # the first look, as at start: nothing to recover yet
+    study.ask()  # a worker asked and was killed before it could claim the trial
+    monkeypatch.setattr(searcher.liveness, "UNCLAIMED_SECONDS", 0.0)  # its grace period has passed
+    assert worker._should_stop(0) == "" and study.trials[0].state == TrialState.RUNNING  # not looked yet
+    monkeypatch.setattr(searcher.search, "RECOVER_SECONDS", 0.0)  # time for the next look
+    assert worker._should_stop(0) == ""
+    assert study.trials[0].state == TrialState.FAIL
