@@ -12,6 +12,7 @@ Also printed: training FLOP/s on the largest candidate as a share of a 1024×102
 from __future__ import annotations
 
 import argparse
+import statistics
 import sys
 import time
 from pathlib import Path
@@ -96,7 +97,8 @@ def main() -> None:
     ours = TrainSettings(epochs=args.epochs)
     ours_nchw = TrainSettings(epochs=args.epochs, channels_last=False)
 
-    best: dict[tuple[str, str], float] = {}
+    speeds: dict[tuple[str, str], list[float]] = {}  # (candidate, side) -> images/s per round
+    matmuls: list[float] = []
     for round_index in range(args.rounds):
         for name, widths in CANDIDATES.items():
             runs = {
@@ -109,27 +111,33 @@ def main() -> None:
                 "DataLoader": lambda: plain_loop(candidate(widths), images, labels, ours),
             }
             for side, run in runs.items():
-                best[name, side] = max(best.get((name, side), 0.0), run())
+                speeds.setdefault((name, side), []).append(run())
+        matmuls.append(matmul_flops_per_second())
         print(f"round {round_index + 1}/{args.rounds} done", flush=True)
 
     print(f"\ntorch {torch.__version__}, {args.threads} thread(s), {args.images} images 32×32×1, batch 128, "
-          f"{args.epochs} epochs, best of {args.rounds} interleaved rounds, freed memory kept: {kept}")
-    print("training images per second:")
+          f"{args.epochs} epochs, {args.rounds} interleaved rounds, freed memory kept: {kept}")
+    print("training images per second, best round of each; ratio = proxy / DataLoader, best rounds and median of "
+          "the per-round ratios")
     header = "".join(f"{side:>{width}}" for side, width in SIDES.items())
-    print(f"{'candidate':<22}{header}{'ratio':>8}  goal ≥ 1.2×")
+    print(f"{'candidate':<22}{header}{'ratio':>8}{'median':>8}  goal ≥ 1.2×")
     for name, widths in CANDIDATES.items():
-        ratio = best[name, "proxy"] / best[name, "DataLoader"]
+        best = {side: max(speeds[name, side]) for side in SIDES}
+        ratio = best["proxy"] / best["DataLoader"]
+        paired = statistics.median(p / d for p, d in zip(speeds[name, "proxy"], speeds[name, "DataLoader"]))
         label = f"{name} {'/'.join(map(str, widths))}"
-        figures = "".join(f"{best[name, side]:>{width}.0f}" for side, width in SIDES.items())
-        print(f"{label:<22}{figures}{ratio:>7.2f}×  {'met' if ratio >= 1.2 else 'MISSED'}")
+        figures = "".join(f"{best[side]:>{width}.0f}" for side, width in SIDES.items())
+        verdict = "met" if min(ratio, paired) >= 1.2 else "MISSED"
+        print(f"{label:<22}{figures}{ratio:>7.2f}×{paired:>7.2f}×  {verdict}")
 
     large = candidate(CANDIDATES["large"])
     per_image = forward_flops(large, images[:128]) / 128
-    training = 3 * per_image * best["large", "proxy"]
-    matmul = matmul_flops_per_second()
+    training = 3 * per_image * max(speeds["large", "proxy"])
+    matmul = max(matmuls)
     print(f"\nlarge candidate: {per_image / 1e6:.1f} MFLOP forward per image (FlopCounterMode), "
           f"training ≈ 3× forward = {training / 1e9:.2f} GFLOP/s")
-    print(f"fp32 1024×1024 matmul: {matmul / 1e9:.1f} GFLOP/s; training reaches {training / matmul:.1%} of it")
+    print(f"fp32 1024×1024 matmul (best of every round's best): {matmul / 1e9:.1f} GFLOP/s; "
+          f"training reaches {training / matmul:.1%} of it")
 
 
 if __name__ == "__main__":

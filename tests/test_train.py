@@ -57,6 +57,18 @@ class InfiniteScale(nn.Module):
         return x * math.inf
 
 
+class InfiniteFrom(nn.Module):
+    """Passes training batches through until the `first`-th (from 1), then multiplies by infinity."""
+
+    def __init__(self, first: int) -> None:
+        super().__init__()
+        self.first, self.calls = first, 0
+
+    def forward(self, x: torch.Tensor) -> torch.Tensor:
+        self.calls += self.training
+        return x * math.inf if self.training and self.calls >= self.first else x
+
+
 class Clock:
     """Stands in for the time module so deadline tests do not depend on machine speed."""
 
@@ -122,9 +134,17 @@ def test_infinite_output_raises_diverged_at_first_step(toy):
     assert caught.value.result.epochs == 0 and not issubclass(Diverged, SearcherError)
 
 
+def test_divergence_names_the_first_bad_step_not_the_step_it_was_noticed(toy):
+    settings = TrainSettings(epochs=2, batch_size=8)  # 32 steps an epoch
+    model = nn.Sequential(small_net(widths=(8,)), InfiniteFrom(32 + 21))
+    with pytest.raises(Diverged, match=r"at epoch 2, step 21\b") as caught:
+        train_candidate(model, *toy, settings, seed=0, threads=1)
+    assert caught.value.result.epochs == 1 and caught.value.result.images_per_second > 0
+
+
 def test_huge_learning_rate_diverges(toy):
     settings = TrainSettings(epochs=3, batch_size=32, optimizer="sgd", learning_rate=1e6, schedule="constant")
-    with pytest.raises(Diverged, match=r"loss became .* at epoch \d+, step \d+"):
+    with pytest.raises(Diverged, match=r"loss became (nan|inf) at epoch \d+, step \d+"):
         train_candidate(small_net(widths=(8,)), *toy, settings, seed=0, threads=1)
 
 
