@@ -163,7 +163,9 @@ class Search:
             recover_stale(self.study)
             self._recovered_at = time.monotonic()
         frame = trials_frame(self.study)
-        in_flight = int((frame["state"] == "running").sum())  # other workers' candidates will count too
+        # other workers' candidates will count too; an unclaimed trial is a kill's leftover (or one that is
+        # claimed a moment later), so it does not hold back the last candidate
+        in_flight = int(((frame["state"] == "running") & (frame["worker"] != "")).sum())
         if trained_count(frame) + in_flight >= self.plan.trials:
             return f"{self.plan.trials} candidates trained"
         return ""

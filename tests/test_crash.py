@@ -72,7 +72,10 @@ def test_killed_search_resumes_without_losing_work(tmp_path: Path) -> None:
         before_kills.append(finished(load(tmp_path, "crash")))
         seen_training += training_now(db, process.pid)
         assert stop(process, signal.SIGKILL) == -signal.SIGKILL, "the search ended before it could be killed"
-    left_running = [t.number for t in load(tmp_path, "crash").get_trials(states=(TrialState.RUNNING,))]
+    # A kill between Optuna's ask and the claim leaves a trial with no owner, dead only after a grace
+    # period (searcher.liveness.UNCLAIMED_SECONDS); every other leftover is seen as dead at once.
+    left_running = [t.number for t in load(tmp_path, "crash").get_trials(states=(TrialState.RUNNING,))
+                    if "worker" in t.user_attrs]
     code, out, err = run([sys.executable, "-m", "searcher", "status", "--name", "crash"], tmp_path, "dead")
     assert code == 0, err
     for number in left_running:  # what the last kill left behind is seen as dead before anything cleans it up
@@ -85,10 +88,11 @@ def test_killed_search_resumes_without_losing_work(tmp_path: Path) -> None:
     for snapshot in before_kills:  # nothing told to the study before a kill is lost or changed
         for number, outcome in snapshot.items():
             assert after[number] == outcome, f"trial {number} changed across a kill"
-    assert study.get_trials(states=(TrialState.RUNNING,)) == []
+    assert [t for t in study.get_trials(states=(TrialState.RUNNING,)) if "worker" in t.user_attrs] == []
     frame = trials_frame(study)
     c = counts(frame)
     assert sum(c[s] for s in c if s not in ("tried", "repeats")) == len(frame)
+    assert c["running"] <= 1  # at most one unclaimed trial, from the last kill
     assert trained_count(frame) <= trials  # one worker: no candidate beyond --trials
     assert trained_count(frame) == trials  # the final run went on to the end
     by_number = {t.number: t for t in study.get_trials(deepcopy=False)}
@@ -321,13 +325,19 @@ def test_unclaimed_trial_counts_as_dead_only_after_the_grace_period() -> None:
     assert is_dead(trial, asked + UNCLAIMED_SECONDS + 1, host)
 
 
-def test_running_search_recovers_what_dies_later(tmp_path: Path, monkeypatch) -> None:
-    """Not only at start: a trial whose worker died after this one started is cleaned up while it runs."""
+def _worker_on_memory_study(tmp_path: Path, trials: int) -> Search:
+    """A worker whose stop rule can be asked directly; it never trains, so its data is only a size."""
     optuna.logging.set_verbosity(optuna.logging.WARNING)
     study = optuna.create_study(direction="maximize")
     data = SimpleNamespace(num_classes=8, train=SimpleNamespace(labels=[0] * 100))
-    plan = WorkerPlan(trials=5, deadline=None, candidate_seconds=None, memory_cap=2**40, threads=1, log_path=None)
-    worker = Search(study, load_space(write_space(tmp_path)), Budget(), TrainSettings(), data, "accuracy", plan)
+    plan = WorkerPlan(trials=trials, deadline=None, candidate_seconds=None, memory_cap=2**40, threads=1, log_path=None)
+    return Search(study, load_space(write_space(tmp_path)), Budget(), TrainSettings(), data, "accuracy", plan)
+
+
+def test_running_search_recovers_what_dies_later(tmp_path: Path, monkeypatch) -> None:
+    """Not only at start: a trial whose worker died after this one started is cleaned up while it runs."""
+    worker = _worker_on_memory_study(tmp_path, trials=5)
+    study = worker.study
     assert worker._should_stop(0) == ""  # the first look, as at start: nothing to recover yet
     study.ask()  # a worker asked and was killed before it could claim the trial
     monkeypatch.setattr(searcher.liveness, "UNCLAIMED_SECONDS", 0.0)  # its grace period has passed
@@ -335,3 +345,12 @@ def test_running_search_recovers_what_dies_later(tmp_path: Path, monkeypatch) ->
     monkeypatch.setattr(searcher.search, "RECOVER_SECONDS", 0.0)  # time for the next look
     assert worker._should_stop(0) == ""
     assert study.trials[0].state == TrialState.FAIL
+
+
+def test_unclaimed_leftover_does_not_count_as_in_flight(tmp_path: Path) -> None:
+    worker = _worker_on_memory_study(tmp_path, trials=1)
+    study = worker.study
+    study.ask()  # killed before the claim: no owner, not yet called dead
+    assert worker._should_stop(0) == ""  # the one candidate asked for is still to train
+    _running_trial(study, {"host": socket.gethostname(), "pid": os.getppid(), "started": time.time()})
+    assert worker._should_stop(0) == "1 candidates trained"  # a live worker's candidate does count
