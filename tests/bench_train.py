@@ -7,6 +7,8 @@ what the layout alone gives) and with a hand-written loop over a DataLoader, int
 that load from other processes falls on all of them alike; the best round of each counts.
 Goal: the proxy trainer ≥ 1.2× the plain loop's training images per second on every candidate.
 Also printed: training FLOP/s on the largest candidate as a share of a 1024×1024 fp32 matmul.
+On a shared machine prefer --threads 1: two OpenMP threads on two busy cores wait on each other and the
+figures swing several-fold between runs; the median of paired per-round ratios is the steadier figure.
 """
 
 from __future__ import annotations
