@@ -82,7 +82,7 @@ def cmd_report(args: argparse.Namespace) -> int:
 
 def cmd_status(args: argparse.Namespace) -> int:
     from searcher.budget import Budget
-    from searcher.liveness import is_dead
+    from searcher.liveness import Registry, is_dead
     from searcher.records import HEARTBEAT, counts, trials_frame
     from searcher.results import best_row
     from searcher.study import redact
@@ -104,10 +104,11 @@ def cmd_status(args: argparse.Namespace) -> int:
     best = best_row(frame, budget)
     print("best fitting: " + (f"trial {best['trial']} accuracy {best['val_accuracy']:.4f} {best['arch']}" if best else "none yet"))
     now, host = time.time(), socket.gethostname()
+    alone = args.storage is None and not Registry(folder).others_alive()  # no worker of this run is alive here
     for t in study.get_trials(deepcopy=False, states=(TrialState.RUNNING,)):
         worker = t.user_attrs.get("worker", {})
         beat = t.user_attrs.get(HEARTBEAT)
-        alive = "looks dead (will be retried)" if is_dead(t, now, host) else "alive"
+        alive = "looks dead (will be retried)" if is_dead(t, now, host, alone) else "alive"
         print(f"  running: trial {t.number} on {worker.get('host', '?')}:{worker.get('pid', '?')}, "
               f"last heartbeat {'-' if beat is None else f'{now - beat:.0f} s ago'}, {alive}")
     return 0

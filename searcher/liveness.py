@@ -4,8 +4,10 @@ Optuna 5 heartbeats run only inside ``study.optimize()`` on RDB storages, and a 
 otherwise stays RUNNING for ever. So each trial is claimed right after it is asked: the
 worker's host and process id go on the trial (``worker``), and a training worker stamps
 ``heartbeat`` every few seconds. A RUNNING trial is dead when its process is gone (same
-host), its stamps stopped (another host), or it was never claimed and is older than a grace
-period. Dead trials are failed, marked ``interrupted``, and their parameters queued once more.
+host), its stamps stopped (another host), or it was never claimed — killed inside Optuna's
+``ask`` — and either no other worker of the run is alive on this machine (the run's own store,
+where every worker registers in ``runs/<name>/workers/``) or it is older than a grace period.
+Dead trials are failed, marked ``interrupted``, and their parameters queued once more.
 """
 
 from __future__ import annotations
@@ -14,6 +16,7 @@ import logging
 import os
 import socket
 import time
+from pathlib import Path
 
 import optuna
 from optuna.trial import TrialState
@@ -42,11 +45,46 @@ def pid_alive(pid: int) -> bool:
     return True
 
 
-def is_dead(trial: optuna.trial.FrozenTrial, now: float, host: str) -> bool:
+class Registry:
+    """The workers of one run on this machine, one file each; used to judge unclaimed trials.
+
+    Only meaningful when every worker of the study runs here (SQLite or journal store in the run
+    folder): then an unclaimed RUNNING trial with no other live worker around is a kill's leftover.
+    """
+
+    def __init__(self, folder: Path) -> None:
+        self.folder = folder / "workers"
+        self.path = self.folder / f"{socket.gethostname()}-{os.getpid()}"
+
+    def __enter__(self) -> Registry:
+        self.folder.mkdir(parents=True, exist_ok=True)
+        self.path.write_text(str(os.getpid()))
+        return self
+
+    def __exit__(self, *exc: object) -> None:
+        self.path.unlink(missing_ok=True)
+
+    def others_alive(self) -> bool:
+        """Is another registered worker of this run alive on this machine? Prunes dead entries."""
+        host = socket.gethostname()
+        alive = False
+        for entry in self.folder.glob(f"{host}-*"):
+            pid = int(entry.name.rsplit("-", 1)[1])
+            if pid == os.getpid():
+                continue
+            if pid_alive(pid):
+                alive = True
+            else:
+                entry.unlink(missing_ok=True)
+        return alive
+
+
+def is_dead(trial: optuna.trial.FrozenTrial, now: float, host: str, alone: bool = False) -> bool:
+    """``alone``: this is the only live worker of a run whose workers all run on this machine."""
     worker = trial.user_attrs.get(WORKER)
     if worker is None:
         started = trial.datetime_start.timestamp() if trial.datetime_start else now
-        return now - started > UNCLAIMED_SECONDS
+        return alone or now - started > UNCLAIMED_SECONDS
     if worker["pid"] == os.getpid() and worker["host"] == host:
         return False
     if worker["host"] == host:
@@ -55,12 +93,17 @@ def is_dead(trial: optuna.trial.FrozenTrial, now: float, host: str) -> bool:
     return now - last > STALE_SECONDS
 
 
-def recover_stale(study: optuna.Study) -> list[int]:
-    """Fail every dead RUNNING trial as interrupted and queue its parameters again (once)."""
+def recover_stale(study: optuna.Study, registry: Registry | None = None) -> list[int]:
+    """Fail every dead RUNNING trial as interrupted and queue its parameters again (once).
+
+    ``registry``: the run's local worker registry, given when the store is the run's own.
+    """
     now, host = time.time(), socket.gethostname()
     recovered = []
-    for trial in study.get_trials(deepcopy=False, states=(TrialState.RUNNING,)):
-        if not is_dead(trial, now, host):
+    running = study.get_trials(deepcopy=False, states=(TrialState.RUNNING,))
+    alone = registry is not None and bool(running) and not registry.others_alive()
+    for trial in running:
+        if not is_dead(trial, now, host, alone):
             continue
         record = record_of(trial) | {"state": INTERRUPTED, "reason": "its worker died; queued again"}
         try:

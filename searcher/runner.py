@@ -199,10 +199,16 @@ def run_worker(run: PreparedRun, study: Any, deadline: float | None, index: int,
         candidate_seconds=None if s.candidate_minutes is None else s.candidate_minutes * 60,
         memory_cap=s.memory_cap or default_memory_cap(s.workers), threads=threads,
         log_path=run.folder / "search.log", seed=s.seed + index, parent_pid=parent_pid,
+        run_folder=run.folder if _local_store(run.url) else None,
     )
     worker = Search(study, run.space, run.budget, run.train, run.data, s.objective, plan)
     worker.on_proposal = _progress_printer(study, deadline, prefix=f"[worker {index}] " if s.workers > 1 else "")
     return worker.run()
+
+
+def _local_store(url: str) -> bool:
+    """A store in a file on this machine: every worker of its study runs here."""
+    return url.startswith("sqlite:") or url.endswith(".journal")
 
 
 def _progress_printer(study: Any, deadline: float | None, prefix: str):

@@ -86,6 +86,7 @@ class WorkerPlan:
     log_path: Path | None  # one line per candidate, appended
     seed: int = 0
     parent_pid: int | None = None  # stop when the parent process is gone
+    run_folder: Path | None = None  # given when every worker of the study runs on this machine
 
 
 @dataclass
@@ -124,10 +125,20 @@ class Search:
         self._known: dict[str, tuple[int, Any]] = {}  # arch text -> (trial number, values) of trained ones
         self.on_proposal: Any = None  # called as on_proposal(state, tally) after each proposal
         self._recovered_at = -math.inf  # time.monotonic() of the last look for dead workers' trials
+        self.registry: Any = None  # this run's local worker registry, when its store is local
 
     # -- the loop --------------------------------------------------------------------------
     def run(self) -> WorkerTally:
+        from contextlib import nullcontext
+
+        from searcher.liveness import Registry
+
         self.signals.install()  # the first _should_stop recovers what dead workers left running
+        with Registry(self.plan.run_folder) if self.plan.run_folder else nullcontext() as registry:
+            self.registry = registry
+            return self._loop()
+
+    def _loop(self) -> WorkerTally:
         idle = 0
         while True:
             stop = self._should_stop(idle)
@@ -160,7 +171,7 @@ class Search:
             # only called dead after a grace period; until recovered, both count as in flight below
             from searcher.liveness import recover_stale
 
-            recover_stale(self.study)
+            recover_stale(self.study, self.registry)
             self._recovered_at = time.monotonic()
         frame = trials_frame(self.study)
         # other workers' candidates will count too; an unclaimed trial is a kill's leftover (or one that is

@@ -325,6 +325,27 @@ def test_unclaimed_trial_counts_as_dead_only_after_the_grace_period() -> None:
     assert is_dead(trial, asked + UNCLAIMED_SECONDS + 1, host)
 
 
+def test_unclaimed_trial_of_a_local_run_is_dead_at_once_when_no_other_worker_lives(tmp_path: Path) -> None:
+    """A kill inside Optuna's ask leaves an unclaimed trial; on the run's own store, with every other
+    registered worker gone, it is recovered without waiting for the grace period."""
+    from searcher.liveness import Registry, recover_stale
+
+    optuna.logging.set_verbosity(optuna.logging.WARNING)
+    study = optuna.create_study()
+    leftover = _running_trial(study, None)
+    gone = subprocess.Popen([sys.executable, "-c", "pass"])
+    gone.wait()
+    (tmp_path / "workers").mkdir()
+    (tmp_path / "workers" / f"{socket.gethostname()}-{gone.pid}").write_text(str(gone.pid))  # a dead worker's entry
+    with Registry(tmp_path) as registry:
+        other = tmp_path / "workers" / f"{socket.gethostname()}-{os.getppid()}"
+        other.write_text(str(os.getppid()))  # a live worker (the test runner's parent) in mid-ask
+        assert recover_stale(study, registry) == []
+        other.unlink()
+        assert recover_stale(study, registry) == [leftover.number]
+    assert not list((tmp_path / "workers").iterdir())  # own entry removed, the dead one pruned
+
+
 def _worker_on_memory_study(tmp_path: Path, trials: int) -> Search:
     """A worker whose stop rule can be asked directly; it never trains, so its data is only a size."""
     optuna.logging.set_verbosity(optuna.logging.WARNING)
