@@ -27,7 +27,11 @@ log = logging.getLogger(__name__)
 
 # Trial states in the order the header counts them, with the words shown for each.
 STATE_LABELS: dict[str, str] = {"trained": "trained", "stopped_early": "stopped early", "rejected": "rejected",
-                                "failed": "failed", "interrupted": "interrupted", "running": "running"}
+                                "failed": "failed", "interrupted": "interrupted", "running": "running",
+                                "queued": "queued again", "not_started": "not started (time)",
+                                "duplicate": "left to another worker"}
+JUDGED = ("trained", "stopped_early", "rejected", "failed", "interrupted")  # counted as tried
+_SHOWN_WHEN_ANY = ("queued", "not_started", "duplicate")  # header tiles only when some exist
 # Each cost column: the words for it and how its numbers are written.
 COST_LABELS: dict[str, tuple[str, Callable[[float], str]]] = {
     "params": ("parameters", format_count), "macs": ("MACs", format_count),
@@ -221,7 +225,9 @@ def _failures_html(table: pd.DataFrame, most: int = 30) -> str:
 
 def _header_html(table: pd.DataFrame, caps: dict[str, float], title: str, notes: list[str]) -> str:
     counts = table["state"].value_counts()
-    tiles = [("tried", len(table))] + [(label, int(counts.get(state, 0))) for state, label in STATE_LABELS.items()]
+    tiles = [("tried", int(table["state"].isin(JUDGED).sum()))]
+    tiles += [(label, int(counts.get(state, 0))) for state, label in STATE_LABELS.items()
+              if state not in _SHOWN_WHEN_ANY or counts.get(state, 0)]
     tile_html = "".join(f'<div class="tile"><b>{n}</b><span>{html.escape(w)}</span></div>' for w, n in tiles)
     scored = _scored(table)  # the best is fully trained, as the exported one is; fewest params wins a tie
     done = scored[feasible_mask(scored, caps) & (scored["state"] == "trained").to_numpy()]

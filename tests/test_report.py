@@ -93,7 +93,8 @@ def test_header_counts_best_and_notes(trials: pd.DataFrame, page: tuple[Path, st
     assert "<title>Test &lt;run&gt;</title>" in text and "data: synthetic" in text
     for state, label in [("trained", "trained"), ("stopped_early", "stopped early"), ("failed", "failed")]:
         assert f"<b>{(trials['state'] == state).sum()}</b><span>{label}</span>" in text
-    assert f"<b>{len(trials)}</b><span>tried</span>" in text
+    tried = trials["state"].isin(["trained", "stopped_early", "rejected", "failed", "interrupted"]).sum()
+    assert f"<b>{tried}</b><span>tried</span>" in text
     trained = trials[(trials["state"] == "trained") & feasible_mask(trials, CAPS)]
     best = trained.loc[trained["val_accuracy"].idxmax()]
     header = text.split("</header>")[0]
