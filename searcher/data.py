@@ -8,6 +8,7 @@ arrays and a fingerprint of the data, so a resumed run can prove it sees the sam
 from __future__ import annotations
 
 import hashlib
+import io
 import logging
 from dataclasses import dataclass
 from pathlib import Path
@@ -315,9 +316,12 @@ def _check_split(indices: dict[str, np.ndarray], count: int) -> dict[str, np.nda
 
 def save_split(path: str | Path, indices: dict[str, np.ndarray], fingerprint: str) -> None:
     """Store the split and the data fingerprint in one .npz file (exactly at `path`)."""
+    from searcher.runs import write_atomic
+
     parts = {p: np.asarray(indices[p], dtype=np.int64) for p in PARTS}
-    with open(path, "wb") as out:
-        np.savez(out, fingerprint=np.array(fingerprint), **parts)
+    buffer = io.BytesIO()
+    np.savez(buffer, fingerprint=np.array(fingerprint), **parts)
+    write_atomic(Path(path), buffer.getvalue())  # a search starting beside this one never reads half a file
 
 
 def load_split(path: str | Path) -> tuple[dict[str, np.ndarray], str]:
