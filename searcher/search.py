@@ -35,7 +35,7 @@ from searcher.cost import cost, training_bytes
 from searcher.errors import SearcherError
 from searcher.records import (
     DUPLICATE, FAILED, HEARTBEAT, INTERRUPTED, NOT_STARTED, RECORD, REJECTED, STOPPED, TRAINED,
-    describe, record_of, trained_count, trials_frame,
+    describe, record_of,
 )
 from searcher.space import Space
 from searcher.study import OBJECTIVES
@@ -122,7 +122,7 @@ class Search:
         self.tally = WorkerTally()
         self.signals = _Signals()
         self.classes = data.num_classes
-        self._known: dict[str, tuple[int, Any]] = {}  # arch text -> (trial number, values) of trained ones
+        self._index = _FinishedIndex()
         self.on_proposal: Any = None  # called as on_proposal(state, tally) after each proposal
         self._recovered_at = -math.inf  # time.monotonic() of the last look for dead workers' trials
         self.registry: Any = None  # this run's local worker registry, when its store is local
@@ -173,11 +173,10 @@ class Search:
 
             recover_stale(self.study, self.registry)
             self._recovered_at = time.monotonic()
-        frame = trials_frame(self.study)
         # other workers' candidates will count too; an unclaimed trial is a kill's leftover (or one that is
         # claimed a moment later), so it does not hold back the last candidate
-        in_flight = int(((frame["state"] == "running") & (frame["worker"] != "")).sum())
-        if trained_count(frame) + in_flight >= self.plan.trials:
+        in_flight = self._index.update(self.study)
+        if self._index.spent + in_flight >= self.plan.trials:
             return f"{self.plan.trials} candidates trained"
         return ""
 
@@ -208,8 +207,9 @@ class Search:
                                 optuna_state=TrialState.FAIL)
         known = self._known_result(record["arch"])
         if known is not None:
-            number, values = known
-            record["repeat_of"] = number
+            number, values, earlier = known
+            record |= {"repeat_of": number, "val_accuracy": earlier.get("val_accuracy"),
+                       "history": earlier.get("history", []), "epochs": earlier.get("epochs"), "train_seconds": 0.0}
             self._finish(trial, record, TRAINED, f"same architecture as trial {number}", values=values)
             return "repeat"
         left = None if self.plan.deadline is None else self.plan.deadline - time.time()
@@ -278,8 +278,6 @@ class Search:
         if state == STOPPED:
             values = None
         self._finish(trial, record, state, reason, values=values, optuna_state=optuna_state)
-        if state == TRAINED:
-            self._known[record["arch"]] = (trial.number, values)
         return state
 
     def _on_epoch(self, trial: optuna.Trial, totals: dict):
@@ -334,15 +332,8 @@ class Search:
         self._log(trial.number, record)
         return state
 
-    def _known_result(self, text: str) -> tuple[int, Any] | None:
-        if text in self._known:
-            return self._known[text]
-        for t in self.study.get_trials(deepcopy=False, states=(TrialState.COMPLETE,)):
-            r = record_of(t)
-            if r.get("state") == TRAINED and r.get("arch") == text and r.get("repeat_of") is None:
-                self._known[text] = (t.number, list(t.values))
-                return self._known[text]
-        return None
+    def _known_result(self, text: str) -> tuple[int, Any, dict] | None:
+        return self._index.trained.get(text)  # the index was brought up to date by _should_stop
 
     def _in_training_elsewhere(self, number: int, text: str) -> bool:
         running = self.study.get_trials(deepcopy=False, states=(TrialState.RUNNING,))
@@ -374,6 +365,36 @@ class Search:
         if self.plan.log_path is not None:
             with open(self.plan.log_path, "a", encoding="utf-8") as handle:
                 handle.write(line + "\n")
+
+
+class _FinishedIndex:
+    """What finished trials say, read once each (a finished trial never changes).
+
+    Keeps the per-proposal bookkeeping flat as a study grows to thousands of trials.
+    """
+
+    def __init__(self) -> None:
+        self.seen: set[int] = set()
+        self.spent = 0  # candidates that used training time (trained, stopped early, failed; repeats excluded)
+        self.trained: dict[str, tuple[int, Any, dict]] = {}  # arch text -> (trial, values, record), first one
+
+    def update(self, study: optuna.Study) -> int:
+        """Read trials finished since the last call; return how many claimed trials are running."""
+        running = 0
+        for t in study.get_trials(deepcopy=False):
+            if t.state == TrialState.RUNNING:
+                running += "worker" in t.user_attrs
+            if t.number in self.seen or not t.state.is_finished():
+                continue
+            self.seen.add(t.number)
+            record = record_of(t)
+            if record.get("repeat_of") is not None:
+                continue
+            if record.get("state") in (TRAINED, STOPPED, FAILED):
+                self.spent += 1
+            if record.get("state") == TRAINED and t.state == TrialState.COMPLETE:
+                self.trained.setdefault(record["arch"], (t.number, list(t.values), record))
+        return running
 
 
 def _finite(value: float) -> float | None:
