@@ -113,7 +113,7 @@ def prepare(settings: SearchSettings, budget: dict | None = None, train: dict | 
     ``budget`` and ``train`` override keys of the space file's [budget] and [train] tables.
     """
     from searcher.data import load_dataset, load_split
-    from searcher.train import TrainSettings
+    from searcher.train_settings import TrainSettings
 
     settings.check()
     space = load_space(settings.space)

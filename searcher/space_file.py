@@ -132,7 +132,7 @@ def read_space_text(text: str, file: str, default_name: str = "space") -> Space:
     if hidden_count[1] > 2:
         raise r.fail("head.hidden", f"allows at most 2 hidden dense layers, got {list(hidden_count)}")
     train = r.get("train", {})
-    from searcher.train import TrainSettings
+    from searcher.train_settings import TrainSettings
 
     TrainSettings.from_dict(train, file=file)  # checked now, used later
 

@@ -205,3 +205,14 @@ def test_first_widths_that_round_to_the_same_network_are_refused(tmp_path):
     with pytest.raises(SearcherError, match=r"`stages.first_width` choices 8 and 9 give the same stage widths") as info:
         load_space(path)
     assert info.value.file == str(path)
+
+
+def test_reading_a_space_never_imports_torch():
+    """The cost layer stays torch-free: a census or cost table must not pay for importing torch."""
+    import subprocess
+    import sys
+
+    code = ("import sys; from searcher.space import load_space, builtin_space; from searcher.census_report import "
+            "run_census; run_census(load_space(builtin_space('classic'))); print('torch' in sys.modules)")
+    out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True).stdout
+    assert out.strip() == "False"
