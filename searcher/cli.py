@@ -78,7 +78,10 @@ def cmd_census(args: argparse.Namespace) -> int:
 
 
 def make_parser() -> argparse.ArgumentParser:
-    parser = argparse.ArgumentParser(prog="searcher", description=__doc__.splitlines()[0] if __doc__ else None)
+    parser = argparse.ArgumentParser(
+        prog="searcher",
+        description="Find a small image classifier that fits a fixed hardware budget: census, search, report, export.",
+        epilog="Start with: searcher census --space mcu   (see README.md for the walkthrough)")
     parser.add_argument("-v", "--verbose", action="store_true", help="log debug detail")
     sub = parser.add_subparsers(dest="command", required=True, metavar="COMMAND")
 
