@@ -6,7 +6,7 @@ import sys
 import types
 from collections import OrderedDict
 
-import torch
+import torch  # noqa: F401  (used by the docstring example)
 from torch import nn
 
 from searcher.arch import Arch

@@ -9,8 +9,6 @@ two agree candidate by candidate.
 
 from __future__ import annotations
 
-import math
-from dataclasses import dataclass
 from typing import Any
 
 import numpy as np

@@ -74,7 +74,7 @@ def export(settings: ExportSettings) -> ExportOutcome:
     import torch
 
     from searcher.build import build
-    from searcher.data import Split, load_dataset, load_split
+    from searcher.data import load_dataset, load_split
     from searcher.records import trials_frame
     from searcher.runner import RunData
     from searcher.study import open_study, storage_url

@@ -22,7 +22,7 @@ import math
 import signal
 import threading
 import time
-from dataclasses import dataclass, field, replace
+from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
 
@@ -32,7 +32,6 @@ from optuna.trial import TrialState
 from searcher.arch import Arch
 from searcher.budget import Budget, Violation
 from searcher.cost import cost, training_bytes
-from searcher.errors import SearcherError
 from searcher.records import (
     DUPLICATE, FAILED, HEARTBEAT, INTERRUPTED, NOT_STARTED, RECORD, REJECTED, STOPPED, TRAINED,
     describe, record_of,

@@ -11,12 +11,11 @@ from __future__ import annotations
 import functools
 import math
 import random
-import tomllib
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any, Callable, Iterator, Sequence
 
-from searcher.arch import ACTIVATIONS, FEATURES, PADDINGS, POOLS, Arch, Conv, Head, Pool, Stage
+from searcher.arch import POOLS, Arch, Conv, Head, Pool, Stage
 from searcher.budget import Budget
 from searcher.errors import SearcherError, one_of
 

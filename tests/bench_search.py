@@ -18,7 +18,6 @@ import tempfile
 import time
 from pathlib import Path
 
-import numpy as np
 import optuna
 import pandas as pd
 

@@ -10,7 +10,7 @@ import torch.nn.functional as F
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
-from searcher.arch import Conv, Head, Pool, Stage, parse_arch
+from searcher.arch import Conv, Head, Stage, parse_arch
 from searcher.cost import conv_output_size, cost
 from searcher.errors import SearcherError
 
