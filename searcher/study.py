@@ -164,6 +164,17 @@ def make_sampler(kind: str, objective: str, seed: int) -> optuna.samplers.BaseSa
     return sampler
 
 
+def make_pruner(epochs: int) -> optuna.pruners.BasePruner:
+    """Successive halving with one check, halfway through the proxy schedule, keeping the better half.
+
+    Earlier checks stop the wrong candidates: in the warm-up of a one-cycle schedule every
+    candidate is still near chance. Measured on the digits benchmark (tests/bench_search.py, 3
+    seeds), a first check after epoch 2 keeping a third missed the plain loop's best on one seed;
+    halfway keeping half reached it on all three, in 9–24% of the plain loop's time.
+    """
+    return optuna.pruners.SuccessiveHalvingPruner(min_resource=max(1, epochs // 2), reduction_factor=2)
+
+
 def open_study(name: str, url: str, config: RunConfig | None, sampler: str = "tpe",
                worker: int = 0) -> tuple[optuna.Study, RunConfig]:
     """Create the run's study or load it; refuse to continue a study that searched something else.
@@ -196,8 +207,7 @@ def open_study(name: str, url: str, config: RunConfig | None, sampler: str = "tp
                 f"continue it with the same settings, or start a new run with another --name",
                 key="--name",
             )
-    # first check after epoch 2: at epoch 1 of a warm-up schedule every candidate is near chance
-    pruner = optuna.pruners.SuccessiveHalvingPruner(min_resource=2, reduction_factor=3)
+    pruner = make_pruner(int(config.train.get("epochs", 6)))
     study = optuna.create_study(study_name=name, storage=storage, directions=directions, load_if_exists=True,
                                 sampler=make_sampler(sampler, config.objective, config.seed + worker), pruner=pruner)
     if stored_config is None:
