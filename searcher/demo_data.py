@@ -135,9 +135,9 @@ def make_demo(n: int = 3000, size: tuple[int, int] = (32, 32),
     light_dir = _draw(rng, 0.4, 1.2, n)  # fixed lamp at the upper left, some jitter (radians)
     relief = _draw(rng, 0.4, 0.9, n)  # height of the raised stamp times light strength
     tint = _draw(rng, 0.05, 0.15, n) * rng.choice(np.float32([-1, 1]), (n, 1, 1))  # face brighter or darker
-    worn = np.where(rng.random((n, 1, 1)) < 0.06, np.float32(0.25), np.float32(1.0))  # a worn die leaves a faint stamp
-    blur = rng.uniform(0.0, 0.8, n)  # focus, in pixels
-    noise = _draw(rng, 0.01, 0.03, n)  # sensor noise, as a fraction of full scale
+    worn = np.where(rng.random((n, 1, 1)) < 0.12, np.float32(0.15), np.float32(1.0))  # a worn die leaves a faint stamp
+    blur = rng.uniform(0.0, 1.2, n)  # focus, in pixels
+    noise = _draw(rng, 0.02, 0.06, n)  # sensor noise, as a fraction of full scale
     background = _background(rng, n, py, px)
 
     # Each pixel in the symbol's own frame, then the symbol's signed distance there.
