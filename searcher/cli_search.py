@@ -7,22 +7,14 @@ import logging
 import time
 from pathlib import Path
 
-from searcher.errors import SearcherError
 
 log = logging.getLogger("searcher")
 
 
 def _open_run(args: argparse.Namespace):
-    """The stored study of run ``--name`` (read-only use), with its configuration."""
-    from searcher.runs import run_folder
-    from searcher.study import open_study, storage_url
+    from searcher.study import open_run
 
-    folder = run_folder(args.name)
-    if args.storage is None and not (folder / "study.db").exists():
-        raise SearcherError(f"no run {args.name!r}: {folder / 'study.db'} does not exist "
-                            f"(give --storage for a run kept elsewhere)", key="--name")
-    study, config = open_study(args.name, storage_url(args.storage, folder), None)
-    return folder, study, config
+    return open_run(args.name, args.storage)
 
 
 def cmd_search(args: argparse.Namespace, space_path, budget_of) -> int:

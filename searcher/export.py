@@ -22,7 +22,7 @@ from searcher.arch import Arch, parse_arch
 from searcher.budget import Budget
 from searcher.cost import cost
 from searcher.errors import SearcherError
-from searcher.runs import RUNS, run_folder
+from searcher.runs import RUNS
 
 log = logging.getLogger(__name__)
 
@@ -77,14 +77,10 @@ def export(settings: ExportSettings) -> ExportOutcome:
     from searcher.data import load_dataset, load_split
     from searcher.records import trials_frame
     from searcher.runner import RunData
-    from searcher.study import open_study, storage_url
+    from searcher.study import open_run
     from searcher.train import TrainSettings, evaluate, train_candidate
 
-    folder = run_folder(settings.name, settings.root)
-    url = storage_url(settings.storage, folder)
-    if settings.storage is None and not (folder / "study.db").exists():
-        raise SearcherError(f"no run {settings.name!r} under {settings.root}/ (no {folder / 'study.db'})", key="--name")
-    study, config = open_study(settings.name, url, None)
+    folder, study, config = open_run(settings.name, settings.storage, settings.root)
     budget = Budget(**config.budget)
     frame = trials_frame(study)
     arch, how = choose(frame, budget, settings, config.classes)

@@ -213,3 +213,15 @@ def open_study(name: str, url: str, config: RunConfig | None, sampler: str = "tp
     if stored_config is None:
         study.set_user_attr("config", config.to_dict())
     return study, config
+
+
+def open_run(name: str, storage: str | None = None, root: Path | None = None) -> tuple[Path, optuna.Study, RunConfig]:
+    """A stored run for reading (report, status, export): its folder, study and configuration."""
+    from searcher.runs import RUNS, run_folder
+
+    folder = run_folder(name, root or RUNS)
+    if storage is None and not (folder / "study.db").exists():
+        raise SearcherError(f"no run {name!r}: {folder / 'study.db'} does not exist "
+                            f"(give --storage for a run kept elsewhere)", key="--name")
+    study, config = open_study(name, storage_url(storage, folder), None)
+    return folder, study, config
