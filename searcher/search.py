@@ -13,6 +13,10 @@ How each proposal ends (the ``state`` column of trials.csv):
   epoch checkpoint (successive halving; a dominance rule in two-objective mode).
 * ``failed`` — training diverged, or it ran past the per-candidate time limit.
 * ``interrupted`` — a signal, the run's time limit or a crash ended it; queued again once.
+* ``duplicate`` — another worker was training the same architecture at that moment.
+
+A proposal of an architecture that was already trained, stopped early or failed takes that
+outcome over (``repeat_of`` names the trial) and costs no training time.
 """
 
 from __future__ import annotations
@@ -206,11 +210,7 @@ class Search:
                                 optuna_state=TrialState.FAIL)
         known = self._known_result(record["arch"])
         if known is not None:
-            number, values, earlier = known
-            record |= {"repeat_of": number, "val_accuracy": earlier.get("val_accuracy"),
-                       "history": earlier.get("history", []), "epochs": earlier.get("epochs"), "train_seconds": 0.0}
-            self._finish(trial, record, TRAINED, f"same architecture as trial {number}", values=values)
-            return "repeat"
+            return self._repeat(trial, record, known)
         left = None if self.plan.deadline is None else self.plan.deadline - time.time()
         predicted = self._predict_seconds(totals["macs"])
         if left is not None and predicted is not None and predicted > left:
@@ -331,8 +331,20 @@ class Search:
         self._log(trial.number, record)
         return state
 
-    def _known_result(self, text: str) -> tuple[int, Any, dict] | None:
-        return self._index.trained.get(text)  # the index was brought up to date by _should_stop
+    def _known_result(self, text: str) -> "_Outcome | None":
+        # read again, after the running check: a worker that finished this architecture since
+        # _should_stop read the study is no longer running, so only this read can see it
+        self._index.update(self.study)
+        return self._index.outcomes.get(text)
+
+    def _repeat(self, trial: optuna.Trial, record: dict, known: "_Outcome") -> str:
+        """Reuse the outcome of the same architecture trained before, whatever it was; no training time."""
+        earlier = known.record
+        record = record | {"repeat_of": known.number, "val_accuracy": earlier.get("val_accuracy"),
+                           "history": earlier.get("history", []), "epochs": earlier.get("epochs"), "train_seconds": 0.0}
+        reason = f"same architecture as trial {known.number}" + (f": {earlier['reason']}" if earlier.get("reason") else "")
+        self._finish(trial, record, earlier["state"], reason, values=known.values, optuna_state=known.optuna_state)
+        return "repeat"
 
     def _in_training_elsewhere(self, number: int, text: str) -> bool:
         running = self.study.get_trials(deepcopy=False, states=(TrialState.RUNNING,))
@@ -375,7 +387,7 @@ class _FinishedIndex:
     def __init__(self) -> None:
         self.seen: set[int] = set()
         self.spent = 0  # candidates that used training time (trained, stopped early, failed; repeats excluded)
-        self.trained: dict[str, tuple[int, Any, dict]] = {}  # arch text -> (trial, values, record), first one
+        self.outcomes: dict[str, _Outcome] = {}  # arch text -> its first spent trial's outcome
 
     def update(self, study: optuna.Study) -> int:
         """Read trials finished since the last call; return how many claimed trials are running."""
@@ -391,9 +403,19 @@ class _FinishedIndex:
                 continue
             if record.get("state") in (TRAINED, STOPPED, FAILED):
                 self.spent += 1
-            if record.get("state") == TRAINED and t.state == TrialState.COMPLETE:
-                self.trained.setdefault(record["arch"], (t.number, list(t.values), record))
+                values = list(t.values) if t.state == TrialState.COMPLETE else None
+                self.outcomes.setdefault(record["arch"], _Outcome(t.number, t.state, values, record))
         return running
+
+
+@dataclass(frozen=True)
+class _Outcome:
+    """A spent trial's result, as a repeat of its architecture reuses it."""
+
+    number: int
+    optuna_state: TrialState
+    values: list[float] | None
+    record: dict
 
 
 def _finite(value: float) -> float | None:

@@ -16,6 +16,7 @@ import subprocess
 import sys
 import time
 from pathlib import Path
+from types import SimpleNamespace
 from typing import Any, Iterator
 
 import optuna
@@ -147,3 +148,39 @@ def search_here(folder: Path, space: Path, name: str, train: dict | None = None,
     settings = SearchSettings(name=name, space=str(space), root=folder / "runs", **fields)
     with in_process():
         return search(settings, train={"epochs": 1, "train_fraction": 0.2, **(train or {})})
+
+
+def memory_worker(tmp_path: Path, *, trials: int = 100, deadline: float | None = None, data: Any = None,
+                  epochs: int = 2, study: optuna.Study | None = None):
+    """A Search on an in-memory study (or on ``study``), whose steps a test can call one by one.
+
+    Unless real data is given, only the training-set size and class count are there: enough for
+    every step but training itself (see :func:`pretend_training`).
+    """
+    from searcher.budget import Budget
+    from searcher.search import Search, WorkerPlan
+    from searcher.space import load_space
+    from searcher.train_settings import TrainSettings
+
+    optuna.logging.set_verbosity(optuna.logging.WARNING)
+    if study is None:
+        study = optuna.create_study(directions=["maximize"], sampler=optuna.samplers.RandomSampler(seed=3))
+    data = data or SimpleNamespace(num_classes=8, train=SimpleNamespace(labels=[0] * 1000))
+    plan = WorkerPlan(trials=trials, deadline=deadline, candidate_seconds=None, memory_cap=2**40, threads=1,
+                      log_path=None)
+    settings = TrainSettings(epochs=epochs, train_fraction=0.5, batch_size=16)
+    return Search(study, load_space(write_space(tmp_path)), Budget(), settings, data, "accuracy", plan)
+
+
+def pretend_training(worker, started: list[int], state: str = "trained"):
+    """Stands in for Search._train: records which trials would train and tells them as ``state``
+    (trained at accuracy 0.5, or stopped early) without training."""
+    from optuna.trial import TrialState
+
+    def train(trial, arch, totals, record):
+        started.append(trial.number)
+        if state == "trained":
+            return worker._finish(trial, record, state, "stand-in", values=[0.5])
+        return worker._finish(trial, record, state, "stand-in", optuna_state=TrialState.PRUNED)
+
+    return train

@@ -12,7 +12,6 @@ import subprocess
 import sys
 import time
 from pathlib import Path
-from types import SimpleNamespace
 
 import optuna
 import pandas as pd
@@ -20,17 +19,13 @@ import pytest
 from optuna.trial import TrialState
 
 from searchkit import (
-    SAFETY_SECONDS, db_path, finished, load, run, search_args, search_here, start, stop, trial_rows, training_now,
-    wait_until_training,
-    write_space,
+    SAFETY_SECONDS, db_path, finished, load, memory_worker, run, search_args, search_here, start, stop, trial_rows,
+    training_now, wait_until_training, write_space,
 )
 import searcher.liveness
 import searcher.search
-from searcher.budget import Budget
 from searcher.records import INTERRUPTED, REJECTED, counts, trained_count, trials_frame
-from searcher.search import Search, WorkerPlan
 from searcher.space import load_space
-from searcher.train import TrainSettings
 
 
 def _retries(study) -> dict[int, list]:
@@ -346,18 +341,9 @@ def test_unclaimed_trial_of_a_local_run_is_dead_at_once_when_no_other_worker_liv
     assert not list((tmp_path / "workers").iterdir())  # own entry removed, the dead one pruned
 
 
-def _worker_on_memory_study(tmp_path: Path, trials: int) -> Search:
-    """A worker whose stop rule can be asked directly; it never trains, so its data is only a size."""
-    optuna.logging.set_verbosity(optuna.logging.WARNING)
-    study = optuna.create_study(direction="maximize")
-    data = SimpleNamespace(num_classes=8, train=SimpleNamespace(labels=[0] * 100))
-    plan = WorkerPlan(trials=trials, deadline=None, candidate_seconds=None, memory_cap=2**40, threads=1, log_path=None)
-    return Search(study, load_space(write_space(tmp_path)), Budget(), TrainSettings(), data, "accuracy", plan)
-
-
 def test_running_search_recovers_what_dies_later(tmp_path: Path, monkeypatch) -> None:
     """Not only at start: a trial whose worker died after this one started is cleaned up while it runs."""
-    worker = _worker_on_memory_study(tmp_path, trials=5)
+    worker = memory_worker(tmp_path, trials=5)
     study = worker.study
     assert worker._should_stop(0) == ""  # the first look, as at start: nothing to recover yet
     study.ask()  # a worker asked and was killed before it could claim the trial
@@ -369,7 +355,7 @@ def test_running_search_recovers_what_dies_later(tmp_path: Path, monkeypatch) ->
 
 
 def test_unclaimed_leftover_does_not_count_as_in_flight(tmp_path: Path) -> None:
-    worker = _worker_on_memory_study(tmp_path, trials=1)
+    worker = memory_worker(tmp_path, trials=1)
     study = worker.study
     study.ask()  # killed before the claim: no owner, not yet called dead
     assert worker._should_stop(0) == ""  # the one candidate asked for is still to train

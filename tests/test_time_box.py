@@ -7,51 +7,27 @@ import time
 from pathlib import Path
 from types import SimpleNamespace
 
-import optuna
 import pandas as pd
 import pytest
 from optuna.trial import TrialState
 
-from searchkit import load, run, search_args, search_here, write_space
-from searcher.budget import Budget
+from searchkit import load, memory_worker, pretend_training, run, search_args, search_here, write_space
 from searcher.records import FAILED, INTERRUPTED, NOT_STARTED, QUEUED, STOPPED, TRAINED, record_of
-from searcher.search import Search, WorkerPlan
 from searcher.space import load_space
-from searcher.train import TrainSettings
 
 TRAIN_IMAGES = 1000
 
 
-def _worker(tmp_path: Path, deadline: float | None, data=None, epochs: int = 2) -> Search:
-    """A worker on an in-memory study; unless given real data, only the training-set size is there."""
-    optuna.logging.set_verbosity(optuna.logging.WARNING)
-    study = optuna.create_study(directions=["maximize"], sampler=optuna.samplers.RandomSampler(seed=3))
-    data = data or SimpleNamespace(num_classes=8, train=SimpleNamespace(labels=[0] * TRAIN_IMAGES))
-    plan = WorkerPlan(trials=100, deadline=deadline, candidate_seconds=None, memory_cap=2**40, threads=1, log_path=None)
-    settings = TrainSettings(epochs=epochs, train_fraction=0.5, batch_size=16)
-    return Search(study, load_space(write_space(tmp_path)), Budget(), settings, data, "accuracy", plan)
-
-
-def _pretend_training(worker: Search, started: list[int]):
-    """Stands in for Search._train: records which trials would train, tells them without training."""
-
-    def train(trial, arch, totals, record):
-        started.append(trial.number)
-        return worker._finish(trial, record, TRAINED, "stand-in", values=[0.5])
-
-    return train
-
-
 def test_no_prediction_before_any_candidate_was_measured(tmp_path: Path) -> None:
-    worker = _worker(tmp_path, deadline=time.time() + 1)
+    worker = memory_worker(tmp_path, deadline=time.time() + 1)
     assert worker._predict_seconds(10**6) is None
     started: list[int] = []
-    worker._train = _pretend_training(worker, started)
+    worker._train = pretend_training(worker, started)
     assert worker._one() == TRAINED and started == [0]  # with nothing measured, a candidate may start
 
 
 def test_prediction_scales_with_macs_and_epochs(tmp_path: Path) -> None:
-    short, long = _worker(tmp_path, None, epochs=1), _worker(tmp_path, None, epochs=3)
+    short, long = memory_worker(tmp_path, epochs=1), memory_worker(tmp_path, epochs=3)
     for worker in (short, long):
         worker.tally.train_seconds, worker.tally.mac_images = 2.0, 4e9
     assert short._predict_seconds(2_000_000) == pytest.approx(2 * short._predict_seconds(1_000_000))
@@ -60,7 +36,7 @@ def test_prediction_scales_with_macs_and_epochs(tmp_path: Path) -> None:
 
 def test_candidate_predicted_to_overrun_is_not_started_and_queued(tmp_path: Path) -> None:
     left = 60.0
-    worker = _worker(tmp_path, deadline=time.time() + left)
+    worker = memory_worker(tmp_path, deadline=time.time() + left)
     space = load_space(write_space(tmp_path))
     from searcher.cost import cost
 
@@ -69,7 +45,7 @@ def test_candidate_predicted_to_overrun_is_not_started_and_queued(tmp_path: Path
     images = 2 * TRAIN_IMAGES * 0.5
     worker.tally.train_seconds, worker.tally.mac_images = left, threshold * images
     started: list[int] = []
-    worker._train = _pretend_training(worker, started)
+    worker._train = pretend_training(worker, started)
     states = [worker._one() for _ in range(30)]
     trials = worker.study.get_trials(deepcopy=False)
     records = {t.number: record_of(t) for t in trials}
@@ -102,7 +78,7 @@ def test_prediction_for_a_measured_candidate_is_not_shorter_than_it_took(tmp_pat
     split = Split(torch.rand(TRAIN_IMAGES, 1, 16, 16, generator=g), torch.randint(0, 8, (TRAIN_IMAGES,), generator=g))
     data = SimpleNamespace(num_classes=8, train=split, val=Split(split.images[:64], split.labels[:64]))
     data.at = lambda shape: data
-    worker = _worker(tmp_path, deadline=None, data=data)
+    worker = memory_worker(tmp_path, data=data)
     assert worker._one() in (TRAINED, STOPPED)
     trial = worker.study.trials[0]
     record = record_of(trial)

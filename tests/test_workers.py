@@ -21,6 +21,7 @@ from searcher.records import (
     trials_frame,
 )
 from searcher.study import open_study
+from searchkit import memory_worker, pretend_training
 
 TRIALS = 3  # trained candidates asked for: small, yet enough that workers overlap
 # the Optuna state each searcher state must be told with (see searcher.search's module docstring)
@@ -69,7 +70,8 @@ def check_study(study: optuna.Study, csv: Path, workers: int, *, last_writer: bo
     assert not twice, f"trained more than once: {twice}"
     for _, row in frame[frame["repeat_of"].notna()].iterrows():
         original = frame.loc[frame["trial"] == int(row["repeat_of"])].iloc[0]
-        assert original["arch"] == row["arch"] and original["state"] == TRAINED, f"bad repeat: trial {row['trial']}"
+        assert original["arch"] == row["arch"] and original["state"] == row["state"], f"bad repeat: trial {row['trial']}"
+        assert pd.isna(original["repeat_of"]) and row["train_seconds"] == 0.0, f"bad repeat: trial {row['trial']}"
     drawn = frame["arch"].value_counts()
     for _, row in frame[frame["state"] == DUPLICATE].iterrows():  # yielded to a trial drawing the same
         assert drawn[row["arch"]] >= 2, f"duplicate {row['trial']} of an architecture no other trial drew"
@@ -91,6 +93,25 @@ def check_study(study: optuna.Study, csv: Path, workers: int, *, last_writer: bo
 
 def stored(name: str, url: str) -> optuna.Study:
     return open_study(name, url, None)[0]
+
+
+@pytest.mark.parametrize("outcome", [TRAINED, STOPPED])
+def test_an_architecture_another_worker_finished_meanwhile_is_reused_not_trained(tmp_path: Path, outcome) -> None:
+    """Two workers, one study: the second read the study, then the first trained and finished the
+    architecture the second draws next. The second takes that outcome over, whatever it was."""
+    first = memory_worker(tmp_path)
+    second = memory_worker(tmp_path, study=first.study)
+    started: list[int] = []
+    first._train, second._train = pretend_training(first, started, outcome), pretend_training(second, started, outcome)
+    assert second._should_stop(0) == ""  # the second worker's look at the study: nothing has finished
+    assert first._should_stop(0) == "" and first._one() == outcome and started == [0]
+    first.study.enqueue_trial(first.study.trials[0].params)  # the second draws the same architecture
+    assert second._one() == "repeat" and started == [0]  # not trained again
+    repeat = first.study.trials[1]
+    record = record_of(repeat)
+    assert (record["repeat_of"], record["state"], record["train_seconds"]) == (0, outcome, 0.0)
+    assert record["arch"] == record_of(first.study.trials[0])["arch"]
+    assert repeat.state == OPTUNA_STATE[outcome]
 
 
 @pytest.mark.slow
