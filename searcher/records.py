@@ -51,16 +51,23 @@ def record_of(trial: optuna.trial.FrozenTrial) -> dict[str, Any]:
     return dict(trial.user_attrs.get(RECORD) or {})
 
 
+def finished_state(record: dict[str, Any]) -> str:
+    """The state of a finished trial from its record."""
+    state = record.get("state")
+    if state in (None, "training"):
+        return FAILED  # ended by something other than this program (another tool, a crash clean-up)
+    return state
+
+
 def row_of(trial: optuna.trial.FrozenTrial) -> dict[str, Any]:
     """One table row; trials with no record yet (just asked) show what Optuna knows."""
     record = record_of(trial)
-    state = record.get("state")
     if trial.state == TrialState.RUNNING:
         state = RUNNING
     elif trial.state == TrialState.WAITING:
         state = QUEUED
-    elif state in (None, "training"):
-        state = FAILED  # ended by something other than this program (another tool, a crash clean-up)
+    else:
+        state = finished_state(record)
     row = {column: record.get(column) for column in COLUMNS}
     row.update(trial=trial.number, state=state, reason=record.get("reason", ""),
                rejected_by=record.get("rejected_by", ""), arch=record.get("arch", ""))
@@ -81,12 +88,18 @@ def trials_frame(study: optuna.Study) -> pd.DataFrame:
 
 
 def counts(frame: pd.DataFrame) -> dict[str, int]:
-    """Trials by state, plus 'tried' (every candidate the sampler proposed that was judged)."""
-    by_state = frame["state"].value_counts().to_dict()
+    """Trials by state, plus 'tried' and 'repeats' (see :func:`counts_of`)."""
+    repeats = int(frame["repeat_of"].notna().sum()) if len(frame) else 0
+    return counts_of(frame["state"].value_counts().to_dict(), repeats)
+
+
+def counts_of(by_state: dict[str, int], repeats: int) -> dict[str, int]:
+    """Every state's count, 'tried' (every proposal that was judged: neither left for later nor
+    yielded to another worker) and 'repeats' (proposals that reused a known outcome)."""
     states = (TRAINED, STOPPED, REJECTED, FAILED, INTERRUPTED, RUNNING, NOT_STARTED, DUPLICATE, QUEUED)
     out = {s: int(by_state.get(s, 0)) for s in states}
     out["tried"] = sum(out[s] for s in (TRAINED, STOPPED, REJECTED, FAILED, INTERRUPTED))
-    out["repeats"] = int(frame["repeat_of"].notna().sum()) if len(frame) else 0
+    out["repeats"] = repeats
     return out
 
 

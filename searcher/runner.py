@@ -20,7 +20,7 @@ from searcher.budget import Budget
 from searcher.errors import SearcherError, one_of
 from searcher.runs import RUNS, run_folder, write_atomic
 from searcher.space import Space, load_space
-from searcher.study import OBJECTIVES, SAMPLERS, RunConfig, open_study, redact, storage_url
+from searcher.study import OBJECTIVES, SAMPLERS, RunConfig, disk_flush, open_study, redact, storage_url
 
 log = logging.getLogger(__name__)
 
@@ -199,10 +199,10 @@ def run_worker(run: PreparedRun, study: Any, deadline: float | None, index: int,
         candidate_seconds=None if s.candidate_minutes is None else s.candidate_minutes * 60,
         memory_cap=s.memory_cap or default_memory_cap(s.workers), threads=threads,
         log_path=run.folder / "search.log", seed=s.seed + index, parent_pid=parent_pid,
-        run_folder=run.folder if _local_store(run.url) else None,
+        run_folder=run.folder if _local_store(run.url) else None, flush=disk_flush(run.url),
     )
     worker = Search(study, run.space, run.budget, run.train, run.data, s.objective, plan)
-    worker.on_proposal = _progress_printer(study, deadline, prefix=f"[worker {index}] " if s.workers > 1 else "")
+    worker.on_proposal = _progress_printer(deadline, prefix=f"[worker {index}] " if s.workers > 1 else "")
     return worker.run()
 
 
@@ -211,29 +211,29 @@ def _local_store(url: str) -> bool:
     return url.startswith("sqlite:") or url.endswith(".journal")
 
 
-def _progress_printer(study: Any, deadline: float | None, prefix: str):
-    """A progress line after each trained candidate and every 25 rejections."""
-    from searcher.records import counts, trials_frame
+def _progress_printer(deadline: float | None, prefix: str):
+    """A progress line after each trained candidate and every 25 rejections.
 
+    The counts are the worker's running digest of the study (no extra read): its own trials at
+    once, other workers' as of its last look.
+    """
     started = time.time()
     seen = {"rejected": 0}
 
-    def show(state: str, tally: Any) -> None:
+    def show(state: str, tally: Any, finished: Any) -> None:
         if state == "rejected":
             seen["rejected"] += 1
             if seen["rejected"] % 25:
                 return
-        frame = trials_frame(study)
-        c = counts(frame)
+        c = finished.counts()
         recent = tally.proposals[-50:]
         share = sum(p == "rejected" for p in recent) / max(1, len(recent))
-        best = frame.loc[frame.state == "trained", "val_accuracy"].max()
         elapsed = time.time() - started
         left = "" if deadline is None else f", {_clock(max(0.0, deadline - time.time()))} left"
         log.info("%stried %d: rejected %d (%.0f%% of the last %d), trained %d, stopped early %d, failed %d, "
                  "interrupted %d | best %s | %s elapsed%s", prefix, c["tried"], c["rejected"], 100 * share,
                  len(recent), c["trained"], c["stopped_early"], c["failed"], c["interrupted"],
-                 "-" if math.isnan(best) else f"{best:.4f}", _clock(elapsed), left)
+                 "-" if math.isnan(finished.best) else f"{finished.best:.4f}", _clock(elapsed), left)
 
     return show
 

@@ -26,9 +26,10 @@ import math
 import signal
 import threading
 import time
+from collections import Counter
 from dataclasses import dataclass, field
 from pathlib import Path
-from typing import Any
+from typing import Any, Callable
 
 import optuna
 from optuna.trial import TrialState
@@ -38,10 +39,10 @@ from searcher.budget import Budget, Violation
 from searcher.cost import cost, training_bytes
 from searcher.records import (
     DUPLICATE, FAILED, HEARTBEAT, INTERRUPTED, NOT_STARTED, RECORD, REJECTED, STOPPED, TRAINED,
-    describe, record_of,
+    counts_of, describe, finished_state, record_of,
 )
 from searcher.space import Space
-from searcher.study import OBJECTIVES
+from searcher.study import OBJECTIVES, pruning_epochs
 
 log = logging.getLogger(__name__)
 
@@ -90,6 +91,7 @@ class WorkerPlan:
     seed: int = 0
     parent_pid: int | None = None  # stop when the parent process is gone
     run_folder: Path | None = None  # given when every worker of the study runs on this machine
+    flush: Callable[[], None] | None = None  # puts what the store has committed on disk (study.disk_flush)
 
 
 @dataclass
@@ -125,8 +127,8 @@ class Search:
         self.tally = WorkerTally()
         self.signals = _Signals()
         self.classes = data.num_classes
-        self._index = _FinishedIndex()
-        self.on_proposal: Any = None  # called as on_proposal(state, tally) after each proposal
+        self.finished = FinishedTrials()
+        self.on_proposal: Any = None  # called as on_proposal(state, tally, finished) after each proposal
         self._recovered_at = -math.inf  # time.monotonic() of the last look for dead workers' trials
         self.registry: Any = None  # this run's local worker registry, when its store is local
 
@@ -151,7 +153,7 @@ class Search:
             state = self._one()
             self.tally.proposals.append(state)
             if self.on_proposal is not None:
-                self.on_proposal(state, self.tally)
+                self.on_proposal(state, self.tally, self.finished)
             idle = idle + 1 if state in (REJECTED, DUPLICATE, "repeat") else 0
             if state in (NOT_STARTED, INTERRUPTED):  # say why (a signal sets the exit status), not just "interrupted"
                 self.tally.stopped_by = self._should_stop(idle) or {
@@ -178,8 +180,8 @@ class Search:
             self._recovered_at = time.monotonic()
         # other workers' candidates will count too; an unclaimed trial is a kill's leftover (or one that is
         # claimed a moment later), so it does not hold back the last candidate
-        in_flight = self._index.update(self.study)
-        if self._index.spent + in_flight >= self.plan.trials:
+        in_flight = sum("worker" in t.user_attrs for t in self.finished.update(self.study))
+        if self.finished.spent + in_flight >= self.plan.trials:
             return f"{self.plan.trials} candidates trained"
         return ""
 
@@ -203,12 +205,14 @@ class Search:
                                 rejected_by="+".join(v.cap for v in violations))
         # Write the architecture on the trial before looking at the others: of two workers that draw
         # it at once, at least one then sees the other, so it is never trained twice (both may yield).
-        # Running trials are read before finished ones, so one that ends in between is seen as known.
+        # The look is one read of the study, after the write: a trial that drew the same architecture
+        # is in it either still running or finished, and then its outcome is known.
         trial.set_user_attr(RECORD, record | {"state": "training"})
-        if self._in_training_elsewhere(trial.number, record["arch"]):
+        running = self.finished.update(self.study)
+        if any(t.number != trial.number and record_of(t).get("arch") == record["arch"] for t in running):
             return self._finish(trial, record, DUPLICATE, "another worker is training the same architecture",
                                 optuna_state=TrialState.FAIL)
-        known = self._known_result(record["arch"])
+        known = self.finished.outcomes.get(record["arch"])
         if known is not None:
             return self._repeat(trial, record, known)
         left = None if self.plan.deadline is None else self.plan.deadline - time.time()
@@ -225,8 +229,7 @@ class Search:
         from searcher.build import build
         from searcher.train import Diverged, OutOfTime, TrainProgress, train_candidate
 
-        record = record | {"state": "training"}
-        trial.set_user_attr(RECORD, record)
+        record = record | {"state": "training"}  # as _one has stored it
         beat = _Heartbeat(self.study, trial._trial_id)
         progress = TrainProgress()
         run_deadline = self._monotonic(self.plan.deadline)
@@ -282,14 +285,16 @@ class Search:
     def _on_epoch(self, trial: optuna.Trial, totals: dict):
         """Stop poor candidates between epochs: Optuna's pruner, or dominance for two objectives."""
         cost_column = OBJECTIVES[self.objective]
+        judged = pruning_epochs(self.train_settings.epochs)
 
         def on_epoch(epoch: int, accuracy: float) -> None:
             self.signals.raise_now = False
             try:
                 if cost_column is None:
-                    trial.report(accuracy, epoch + 1)
-                    if trial.should_prune():
-                        raise optuna.TrialPruned()
+                    if epoch + 1 in judged:
+                        trial.report(accuracy, epoch + 1)
+                        if trial.should_prune():
+                            raise optuna.TrialPruned()
                 elif self._dominated(epoch, accuracy, totals[cost_column], cost_column):
                     raise optuna.TrialPruned()
             finally:
@@ -328,16 +333,13 @@ class Search:
             self.study.tell(trial, values)
         else:
             self.study.tell(trial, state=optuna_state)
+        self.finished.add(trial.number, optuna_state, values if optuna_state == TrialState.COMPLETE else None, record)
+        if self.plan.flush is not None and state not in (REJECTED, DUPLICATE):
+            self.plan.flush()  # a power cut now can cost only rejections, which are free to redo
         self._log(trial.number, record)
         return state
 
-    def _known_result(self, text: str) -> "_Outcome | None":
-        # read again, after the running check: a worker that finished this architecture since
-        # _should_stop read the study is no longer running, so only this read can see it
-        self._index.update(self.study)
-        return self._index.outcomes.get(text)
-
-    def _repeat(self, trial: optuna.Trial, record: dict, known: "_Outcome") -> str:
+    def _repeat(self, trial: optuna.Trial, record: dict, known: _Outcome) -> str:
         """Reuse the outcome of the same architecture trained before, whatever it was; no training time."""
         earlier = known.record
         record = record | {"repeat_of": known.number, "val_accuracy": earlier.get("val_accuracy"),
@@ -345,10 +347,6 @@ class Search:
         reason = f"same architecture as trial {known.number}" + (f": {earlier['reason']}" if earlier.get("reason") else "")
         self._finish(trial, record, earlier["state"], reason, values=known.values, optuna_state=known.optuna_state)
         return "repeat"
-
-    def _in_training_elsewhere(self, number: int, text: str) -> bool:
-        running = self.study.get_trials(deepcopy=False, states=(TrialState.RUNNING,))
-        return any(t.number != number and record_of(t).get("arch") == text for t in running)
 
     def _requeue(self, trial: optuna.Trial) -> None:
         """Queue the same parameters once more, unless this already was the retry."""
@@ -378,34 +376,48 @@ class Search:
                 handle.write(line + "\n")
 
 
-class _FinishedIndex:
-    """What finished trials say, read once each (a finished trial never changes).
+class FinishedTrials:
+    """What the study's finished trials say, each read once (a finished trial never changes).
 
-    Keeps the per-proposal bookkeeping flat as a study grows to thousands of trials.
+    Keeps the per-proposal bookkeeping flat as a study grows to thousands of trials; this
+    worker's own trials are added as it tells them, other workers' at the next read.
     """
 
     def __init__(self) -> None:
         self.seen: set[int] = set()
+        self.by_state: Counter[str] = Counter()  # searcher state -> finished trials (repeats included)
+        self.repeats = 0
         self.spent = 0  # candidates that used training time (trained, stopped early, failed; repeats excluded)
+        self.best = math.nan  # best validation accuracy of a trained candidate
         self.outcomes: dict[str, _Outcome] = {}  # arch text -> its first spent trial's outcome
 
-    def update(self, study: optuna.Study) -> int:
-        """Read trials finished since the last call; return how many claimed trials are running."""
-        running = 0
+    def update(self, study: optuna.Study) -> list[optuna.trial.FrozenTrial]:
+        """Read trials finished since the last call; return the running ones."""
+        running = []
         for t in study.get_trials(deepcopy=False):
             if t.state == TrialState.RUNNING:
-                running += "worker" in t.user_attrs
-            if t.number in self.seen or not t.state.is_finished():
-                continue
-            self.seen.add(t.number)
-            record = record_of(t)
-            if record.get("repeat_of") is not None:
-                continue
-            if record.get("state") in (TRAINED, STOPPED, FAILED):
-                self.spent += 1
-                values = list(t.values) if t.state == TrialState.COMPLETE else None
-                self.outcomes.setdefault(record["arch"], _Outcome(t.number, t.state, values, record))
+                running.append(t)
+            elif t.state.is_finished():
+                self.add(t.number, t.state, list(t.values) if t.state == TrialState.COMPLETE else None, record_of(t))
         return running
+
+    def add(self, number: int, optuna_state: TrialState, values: list[float] | None, record: dict) -> None:
+        if number in self.seen:
+            return
+        self.seen.add(number)
+        state = finished_state(record)
+        self.by_state[state] += 1
+        if state == TRAINED and record.get("val_accuracy") is not None:
+            self.best = max(record["val_accuracy"], self.best) if not math.isnan(self.best) else record["val_accuracy"]
+        if record.get("repeat_of") is not None:
+            self.repeats += 1
+        elif state in (TRAINED, STOPPED, FAILED):
+            self.spent += 1
+            self.outcomes.setdefault(record["arch"], _Outcome(number, optuna_state, values, record))
+
+    def counts(self) -> dict[str, int]:
+        """As :func:`searcher.records.counts` gives for the finished trials."""
+        return counts_of(self.by_state, self.repeats)
 
 
 @dataclass(frozen=True)
@@ -444,8 +456,7 @@ class _Heartbeat:
                 log.debug("heartbeat failed: %s", exc)
 
     def start(self) -> None:
-        self.study._storage.set_trial_user_attr(self.trial_id, HEARTBEAT, time.time())
-        self._thread.start()
+        self._thread.start()  # the first stamp after HEARTBEAT_SECONDS: until then the claim's time stands
 
     def stop(self) -> None:
         self._stop.set()

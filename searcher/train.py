@@ -35,7 +35,7 @@ class TrainResult:
     val_accuracy: float  # accuracy after the last finished epoch; NaN if none finished
     history: tuple[float, ...]  # validation accuracy after each finished epoch
     epochs: int  # epochs finished
-    seconds: float  # wall time of the whole run, evaluation included
+    seconds: float  # wall time of the whole run, evaluation included, on_epoch calls not
     images_per_second: float  # training images processed per second of training (evaluation excluded)
     train_loss: float  # mean training loss of the last finished epoch; NaN if none finished
     train_size: int  # training images used per epoch, after train_fraction
@@ -118,6 +118,7 @@ def train_candidate(
     The model ends in eval mode, in the default (NCHW) memory layout.
     """
     started = time.monotonic()
+    waited = 0.0  # seconds spent in on_epoch: the caller's bookkeeping, not training
     _check_data(train_images, train_labels, "training")
     _check_data(val_images, val_labels, "validation")
     progress = TrainProgress() if progress is None else progress
@@ -146,16 +147,18 @@ def train_candidate(
                     loss = _train_epoch(model, train_images, train_labels, order, optimizer, schedule, settings,
                                         deadline, progress, epoch)
                 except TrainingStopped as stopped:
-                    progress.seconds = time.monotonic() - started
+                    progress.seconds = time.monotonic() - started - waited
                     stopped.result = progress.result()
                     raise
                 progress.train_loss = loss
                 accuracy, _ = evaluate(model, val_images, val_labels, settings.eval_batch_size)
                 progress.history.append(accuracy)
-                progress.seconds = time.monotonic() - started
+                progress.seconds = time.monotonic() - started - waited
                 log.debug("epoch %d: loss %.4f, val accuracy %.4f", epoch + 1, loss, accuracy)
                 if on_epoch is not None:
+                    called = time.monotonic()
                     on_epoch(epoch, accuracy)
+                    waited += time.monotonic() - called
         finally:
             model.eval()
             model.to(memory_format=torch.contiguous_format)

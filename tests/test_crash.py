@@ -19,11 +19,12 @@ import pytest
 from optuna.trial import TrialState
 
 from searchkit import (
-    SAFETY_SECONDS, db_path, finished, load, memory_worker, run, search_args, search_here, start, stop, trial_rows,
-    training_now, wait_until_training, write_space,
+    SAFETY_SECONDS, db_path, finished, load, memory_worker, pretend_training, run, search_args, search_here, start,
+    stop, trial_rows, training_now, wait_until_training, write_space,
 )
 import searcher.liveness
 import searcher.search
+from searcher.budget import Budget
 from searcher.records import INTERRUPTED, REJECTED, counts, trained_count, trials_frame
 from searcher.space import load_space
 
@@ -361,3 +362,37 @@ def test_unclaimed_leftover_does_not_count_as_in_flight(tmp_path: Path) -> None:
     assert worker._should_stop(0) == ""  # the one candidate asked for is still to train
     _running_trial(study, {"host": socket.gethostname(), "pid": os.getppid(), "started": time.time()})
     assert worker._should_stop(0) == "1 candidates trained"  # a live worker's candidate does count
+
+
+def test_sqlite_store_commits_without_waiting_and_flushes_after_each_spent_candidate(tmp_path: Path) -> None:
+    """Commits skip the disk wait (synchronous=NORMAL: 1 in SQLite's PRAGMA synchronous docs, which
+    also say WAL mode cannot be corrupted by it); what was committed goes to disk after each
+    candidate that cost training time."""
+    import dataclasses
+
+    from searcher.study import disk_flush, open_storage
+
+    url = f"sqlite:///{tmp_path / 'study.db'}"
+    storage = open_storage(url)
+    optuna.create_study(storage=storage, study_name="s")  # the first connections create the tables
+    for _ in range(2):
+        with storage.engine.connect() as connection:
+            assert connection.exec_driver_sql("PRAGMA synchronous").scalar() == 1
+            assert connection.exec_driver_sql("PRAGMA journal_mode").scalar() == "wal"
+    flush = disk_flush(url)
+    flush()  # fsyncs the WAL that the study's commits wrote
+    assert (tmp_path / "study.db-wal").exists()
+    assert disk_flush("postgresql://u@h/db") is None and disk_flush(str(tmp_path / "s.journal")) is None
+    assert disk_flush(f"sqlite:///{tmp_path / 'none.db'}")() is None  # no WAL yet: nothing to do
+
+    worker = memory_worker(tmp_path)
+    flushes: list[int] = []
+    worker.plan = dataclasses.replace(worker.plan, flush=lambda: flushes.append(len(worker.study.trials)))
+    started: list[int] = []
+    worker._train = pretend_training(worker, started)
+    for _ in range(3):
+        worker._should_stop(0)
+        assert worker._one() == "trained"
+    assert flushes == [1, 2, 3] and started == [0, 1, 2]
+    worker.budget = Budget(max_params=1)  # nothing fits: rejections are free to redo, so no flush
+    assert worker._one() == REJECTED and flushes == [1, 2, 3]

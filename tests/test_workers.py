@@ -17,7 +17,7 @@ import pytest
 from optuna.trial import TrialState
 
 from searcher.records import (
-    DUPLICATE, FAILED, INTERRUPTED, NOT_STARTED, REJECTED, STOPPED, TRAINED, record_of, trained_count,
+    DUPLICATE, FAILED, INTERRUPTED, NOT_STARTED, REJECTED, STOPPED, TRAINED, counts, record_of, trained_count,
     trials_frame,
 )
 from searcher.study import open_study
@@ -112,6 +112,9 @@ def test_an_architecture_another_worker_finished_meanwhile_is_reused_not_trained
     assert (record["repeat_of"], record["state"], record["train_seconds"]) == (0, outcome, 0.0)
     assert record["arch"] == record_of(first.study.trials[0])["arch"]
     assert repeat.state == OPTUNA_STATE[outcome]
+    for worker in (first, second):  # each worker's running digest agrees with the table read afresh
+        worker.finished.update(first.study)
+        assert worker.finished.counts() == counts(trials_frame(first.study))
 
 
 @pytest.mark.slow
