@@ -103,6 +103,14 @@ def counts_of(by_state: dict[str, int], repeats: int) -> dict[str, int]:
     return out
 
 
+def distinct_rows(frame: pd.DataFrame) -> pd.DataFrame:
+    """Rows that stand for a distinct candidate: repeats of a known outcome dropped (a table
+    without a ``repeat_of`` column has none)."""
+    if "repeat_of" not in frame.columns or not len(frame):
+        return frame
+    return frame[frame["repeat_of"].isna()]
+
+
 def trained_count(frame: pd.DataFrame) -> int:
     """Candidates that used training time (repeats of a known result do not count)."""
     spent = frame["state"].isin([TRAINED, STOPPED, FAILED]) & frame["repeat_of"].isna()

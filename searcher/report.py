@@ -19,6 +19,7 @@ import plotly.io as pio
 from plotly.offline import get_plotlyjs
 
 from searcher.errors import SearcherError
+from searcher.records import counts_of, distinct_rows
 from searcher.runs import write_atomic
 from searcher.pareto import COST_COLUMNS, SCORED_STATES, check_caps, feasible_mask, front, front_steps
 from searcher.units import format_bytes, format_count
@@ -30,7 +31,6 @@ STATE_LABELS: dict[str, str] = {"trained": "trained", "stopped_early": "stopped 
                                 "failed": "failed", "interrupted": "interrupted", "running": "running",
                                 "queued": "queued again", "not_started": "not started (time)",
                                 "duplicate": "left to another worker"}
-JUDGED = ("trained", "stopped_early", "rejected", "failed", "interrupted")  # counted as tried
 _SHOWN_WHEN_ANY = ("queued", "not_started", "duplicate")  # header tiles only when some exist
 # Each cost column: the words for it and how its numbers are written.
 COST_LABELS: dict[str, tuple[str, Callable[[float], str]]] = {
@@ -63,7 +63,7 @@ def prepare(trials: pd.DataFrame) -> pd.DataFrame:
     for column in _NUMBER_COLUMNS:
         table[column] = pd.to_numeric(table[column], errors="coerce") if column in table else np.nan
     if unknown := sorted(set(table["state"]) - set(STATE_LABELS)):
-        log.warning("trials table has unknown states %s; the report counts them as tried only", unknown)
+        log.warning("trials table has unknown states %s; the report counts them in no tile", unknown)
     return table
 
 
@@ -224,12 +224,16 @@ def _failures_html(table: pd.DataFrame, most: int = 30) -> str:
 
 
 def _header_html(table: pd.DataFrame, caps: dict[str, float], title: str, notes: list[str]) -> str:
-    counts = table["state"].value_counts()
-    tiles = [("tried", int(table["state"].isin(JUDGED).sum()))]
-    tiles += [(label, int(counts.get(state, 0))) for state, label in STATE_LABELS.items()
-              if state not in _SHOWN_WHEN_ANY or counts.get(state, 0)]
+    """Counts over every trial, as the search command's summary gives them; the best among distinct ones."""
+    repeats = int(table["repeat_of"].notna().sum()) if "repeat_of" in table else 0
+    counts = counts_of(table["state"].value_counts().to_dict(), repeats)
+    tiles = [("tried", counts["tried"])]
+    tiles += [(label, counts[state]) for state, label in STATE_LABELS.items()
+              if state not in _SHOWN_WHEN_ANY or counts[state]]
+    if repeats:
+        tiles.append(("reused a known outcome", repeats))
     tile_html = "".join(f'<div class="tile"><b>{n}</b><span>{html.escape(w)}</span></div>' for w, n in tiles)
-    scored = _scored(table)  # the best is fully trained, as the exported one is; fewest params wins a tie
+    scored = _scored(distinct_rows(table))  # the best is fully trained, as exported; fewest params wins a tie
     done = scored[feasible_mask(scored, caps) & (scored["state"] == "trained").to_numpy()]
     best = "No candidate within the caps has been fully trained yet."
     for top in done.sort_values(["val_accuracy", "params"], ascending=[False, True]).head(1).itertuples(index=False):
@@ -260,7 +264,8 @@ tbody tr:nth-child(odd) { background: #fafafa; } .numbers td, .numbers th { text
 def render_html(trials: pd.DataFrame, *, caps: Mapping[str, float | None] | None, title: str,
                 notes: list[str] | None = None) -> str:
     """The whole page as text: header, one section per cost with its front, then the rest."""
-    table, set_caps = prepare(trials), check_caps(caps)
+    everything, set_caps = prepare(trials), check_caps(caps)
+    table = distinct_rows(everything)  # a repeat of a known outcome is shown once, where it was trained
     figures = build_figures(table, set_caps)
 
     def div(key: str) -> str:
@@ -279,7 +284,7 @@ def render_html(trials: pd.DataFrame, *, caps: Mapping[str, float | None] | None
         f"<!doctype html>\n<html lang='en'><head><meta charset='utf-8'><title>{html.escape(title)}</title>"
         f"<style>{_STYLE}</style><script>window.PlotlyConfig = {{MathJaxConfig: 'local'}};</script>"
         f"<script>{get_plotlyjs()}</script></head>\n<body><main>"
-        f"{_header_html(table, set_caps, title, list(notes or []))}{''.join(sections)}</main></body></html>\n"
+        f"{_header_html(everything, set_caps, title, list(notes or []))}{''.join(sections)}</main></body></html>\n"
     )
 
 

@@ -8,18 +8,13 @@ from typing import Any
 import pandas as pd
 
 from searcher.budget import CAP_COLUMNS, Budget
-from searcher.records import TRAINED
+from searcher.records import TRAINED, distinct_rows
 from searcher.runs import write_atomic
-
-
-def scored_rows(frame: pd.DataFrame) -> pd.DataFrame:
-    """Rows that stand for a distinct trained candidate (repeats of a known result dropped)."""
-    return frame[frame["repeat_of"].isna()] if len(frame) else frame
 
 
 def best_row(frame: pd.DataFrame, budget: Budget) -> dict[str, Any] | None:
     """The fully trained candidate with the best validation accuracy that meets every cap."""
-    rows = scored_rows(frame)
+    rows = distinct_rows(frame)
     rows = rows[(rows["state"] == TRAINED) & rows["val_accuracy"].notna()]
     for column, limit in budget.caps().items():
         rows = rows[rows[column] <= limit]
@@ -34,7 +29,7 @@ def fronts(frame: pd.DataFrame, budget: Budget) -> pd.DataFrame:
 
     parts = []
     for column in CAP_COLUMNS:
-        part = front(scored_rows(frame), column, caps=budget.caps())
+        part = front(distinct_rows(frame), column, caps=budget.caps())
         parts.append(part.assign(cost=column))
     return pd.concat(parts, ignore_index=True) if parts else pd.DataFrame()
 
@@ -47,5 +42,5 @@ def write_results(folder: Path, frame: pd.DataFrame, budget: Budget, *, title: s
     written = [write_atomic(folder / "trials.csv", frame.to_csv(index=False)),
                write_atomic(folder / "front.csv", fronts(frame, budget).to_csv(index=False))]
     notes = [f"budget: {budget.describe()}", *notes]
-    written.append(write_report(scored_rows(frame), folder / "report.html", caps=budget.caps(), title=title, notes=notes))
+    written.append(write_report(frame, folder / "report.html", caps=budget.caps(), title=title, notes=notes))
     return written
