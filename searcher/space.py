@@ -187,8 +187,11 @@ def _span(bounds: tuple[int, int]) -> list[int]:
 
 
 def builtin_space(name: str) -> Path:
-    """Path of a space shipped with the package (``mcu``, ``workstation``, ``classic``)."""
-    here = Path(__file__).resolve().parent.parent / "spaces"
+    """Path of a space shipped with the package (``mcu``, ``workstation``, ``classic``).
+
+    ``searcher/spaces`` links to the repository's ``spaces/`` folder; a wheel holds copies.
+    """
+    here = Path(__file__).parent / "spaces"
     path = here / f"{name}.toml"
     if not path.exists():
         names = sorted(p.stem for p in here.glob("*.toml"))

@@ -2,7 +2,9 @@
 
 from __future__ import annotations
 
+import os
 import random
+from pathlib import Path
 from collections import Counter
 
 import optuna
@@ -216,3 +218,27 @@ def test_reading_a_space_never_imports_torch():
             "run_census; run_census(load_space(builtin_space('classic'))); print('torch' in sys.modules)")
     out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True).stdout
     assert out.strip() == "False"
+
+
+@pytest.mark.slow
+def test_a_built_wheel_carries_the_shipped_spaces(tmp_path):
+    """Built-in space names work from a plain (non-editable) install, not only from a clone."""
+    import subprocess
+    import sys
+    import zipfile
+
+    root = Path(__file__).resolve().parent.parent
+    build = subprocess.run([sys.executable, "-m", "pip", "wheel", "-q", "--no-deps", "--no-build-isolation",
+                            "-w", str(tmp_path / "wheel"), str(root)], capture_output=True, text=True)
+    assert build.returncode == 0, build.stderr[-2000:]
+    (wheel,) = (tmp_path / "wheel").glob("searcher-*.whl")
+    shipped = sorted(p.name for p in (root / "spaces").glob("*.toml"))
+    with zipfile.ZipFile(wheel) as archive:
+        assert sorted(Path(n).name for n in archive.namelist() if n.startswith("searcher/spaces/")) == shipped
+        archive.extractall(tmp_path / "site")
+    check = subprocess.run(
+        [sys.executable, "-c", "import searcher, sys; from searcher.space import builtin_space; "
+         "p = builtin_space('mcu'); searcher.load_space(p); print(p)"],
+        cwd=tmp_path, capture_output=True, text=True, env={**os.environ, "PYTHONPATH": str(tmp_path / "site")})
+    assert check.returncode == 0, check.stderr[-2000:]
+    assert Path(check.stdout.strip()).is_relative_to(tmp_path / "site")
