@@ -23,6 +23,7 @@ from __future__ import annotations
 
 import logging
 import math
+import os
 import signal
 import threading
 import time
@@ -60,13 +61,19 @@ class StopRequested(BaseException):
 
 
 class _Signals:
-    """Turns SIGINT/SIGTERM into a flag, raised as StopRequested only while training runs."""
+    """Turns SIGINT/SIGTERM into a flag, raised as StopRequested only while training runs.
+
+    A second signal ends the process at once, as after a kill: whatever was completed is in the
+    study already, and the next run recovers the candidate in flight.
+    """
 
     def __init__(self) -> None:
         self.received: int | None = None
         self.raise_now = False
 
     def __call__(self, signum: int, frame: Any) -> None:
+        if self.received is not None:
+            exit_at_once(signum)
         self.received = signum
         if self.raise_now:
             self.raise_now = False
@@ -106,6 +113,13 @@ class WorkerTally:
 
     def seconds_per_mac_image(self) -> float | None:
         return self.train_seconds / self.mac_images if self.mac_images else None
+
+
+def exit_at_once(signum: int) -> None:
+    """End the process now with the shell's status for the signal (130 for SIGINT, 143 for SIGTERM)."""
+    os.write(2, f"second {signal.Signals(signum).name}: stopping at once; completed candidates are kept "
+                f"and the next run recovers the one in flight\n".encode())
+    os._exit(128 + signum)
 
 
 def constraint_value(violations: list[Violation], totals: dict[str, int], caps: dict[str, int]) -> float:

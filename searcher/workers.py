@@ -21,6 +21,7 @@ def _worker_main(settings: Any, budget: Any, train: Any, index: int, threads: in
     from searcher.runner import prepare, run_worker
     from searcher.study import open_study
 
+    os.setpgrp()  # out of the terminal's group: a Ctrl-C reaches the parent only, which passes it on once
     logging.basicConfig(level=logging.INFO, format="%(message)s")
     import torch
 
@@ -34,6 +35,7 @@ def _worker_main(settings: Any, budget: Any, train: Any, index: int, threads: in
 def run_workers(run: Any, deadline: float | None) -> tuple[str, int, list[str]]:
     """Start ``run.settings.workers`` processes, pass signals on, and wait for all of them."""
     from searcher.runner import _status
+    from searcher.search import exit_at_once
 
     count = run.settings.workers
     threads = max(1, (os.cpu_count() or 1) // count)
@@ -52,6 +54,8 @@ def run_workers(run: Any, deadline: float | None) -> tuple[str, int, list[str]]:
         for p in processes:
             if p.is_alive() and p.pid:
                 os.kill(p.pid, signum)
+        if len(received) > 1:  # the workers end at once on their second signal too
+            exit_at_once(signum)
 
     previous = {s: signal.signal(s, forward) for s in (signal.SIGINT, signal.SIGTERM)}
     try:

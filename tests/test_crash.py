@@ -19,7 +19,7 @@ import pytest
 from optuna.trial import TrialState
 
 from searchkit import (
-    SAFETY_SECONDS, db_path, finished, load, memory_worker, pretend_training, run, search_args, search_here, start,
+    SAFETY_SECONDS, child_env, db_path, finished, load, memory_worker, pretend_training, run, search_args, search_here, start,
     stop, trial_rows, training_now, wait_until_training, write_space,
 )
 import searcher.liveness
@@ -143,6 +143,35 @@ def test_signal_stops_the_search_and_the_next_run_retrains(tmp_path: Path, signu
     assert retry.params == params
     assert retry.state in (TrialState.COMPLETE, TrialState.PRUNED)  # trained this time (pruning is training too)
     assert list(_retries(study)) == [cut]
+
+
+def test_a_second_signal_ends_the_process_at_once() -> None:
+    """The first signal asks for a graceful stop; a second, while that runs, ends the process now."""
+    code = ("import signal; from searcher.search import _Signals; s = _Signals(); "
+            "s(signal.SIGINT, None); print('first: graceful'); s(signal.SIGINT, None); print('not reached')")
+    done = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, timeout=60)
+    assert done.returncode == 130 and done.stdout.split() == ["first:", "graceful"]
+    assert "second SIGINT: stopping at once" in done.stderr and "Traceback" not in done.stderr
+
+
+@pytest.mark.slow
+def test_ctrl_c_to_the_terminal_group_stops_parallel_workers_gracefully(tmp_path: Path) -> None:
+    """A Ctrl-C goes to every process of the terminal's group. The workers leave that group, so each
+    gets the signal once, from the parent; twice would end them at once instead of gracefully."""
+    args = search_args(write_space(tmp_path), "group", "--trials", "6", "--epochs", "40", "--workers", "2")
+    with open(tmp_path / "group.err", "w") as err:
+        process = subprocess.Popen(args, cwd=tmp_path, stdout=subprocess.DEVNULL, stderr=err, env=child_env(),
+                                   start_new_session=True)  # its own group, as a terminal's foreground job
+        give_up = time.monotonic() + SAFETY_SECONDS
+        while not training_now(db_path(tmp_path, "group")):  # by either worker (a child of the command)
+            assert process.poll() is None and time.monotonic() < give_up, "no candidate started training"
+            time.sleep(0.05)
+        os.killpg(process.pid, signal.SIGINT)  # what the terminal does on Ctrl-C
+        assert process.wait(timeout=SAFETY_SECONDS) == 130
+    assert "stopping at once" not in (tmp_path / "group.err").read_text()
+    study = load(tmp_path, "group")
+    assert study.get_trials(states=(TrialState.RUNNING,)) == []  # every worker recorded its candidate
+    assert INTERRUPTED in set(trials_frame(study)["state"])
 
 
 # -- training-memory guard ---------------------------------------------------------------------------------
