@@ -21,7 +21,7 @@ from pathlib import Path
 import optuna
 from optuna.trial import TrialState
 
-from searcher.records import HEARTBEAT, INTERRUPTED, RECORD, record_of, worker_id
+from searcher.records import HEARTBEAT, INTERRUPTED, NOT_STARTED, RECORD, record_of, worker_id
 
 log = logging.getLogger(__name__)
 
@@ -97,11 +97,14 @@ def recover_stale(study: optuna.Study, registry: Registry | None = None) -> list
     """Fail every dead RUNNING trial as interrupted and queue its parameters again (once).
 
     ``registry``: the run's local worker registry, given when the store is the run's own.
+    Also queues the retry of any interrupted or put-off trial that lacks one: a kill between
+    ending a trial and queueing its copy would otherwise lose the retry.
     """
     now, host = time.time(), socket.gethostname()
-    recovered = []
-    running = study.get_trials(deepcopy=False, states=(TrialState.RUNNING,))
+    trials = study.get_trials(deepcopy=False)
+    running = [t for t in trials if t.state == TrialState.RUNNING]
     alone = registry is not None and bool(running) and not registry.others_alive()
+    recovered = []
     for trial in running:
         if not is_dead(trial, now, host, alone):
             continue
@@ -111,8 +114,21 @@ def recover_stale(study: optuna.Study, registry: Registry | None = None) -> list
             study.tell(trial.number, state=TrialState.FAIL)
         except (RuntimeError, ValueError, optuna.exceptions.UpdateFinishedTrialError):
             continue  # another worker recovered it first
-        if trial.user_attrs.get("retry_of") is None and trial.params:
-            study.enqueue_trial(dict(trial.params), user_attrs={"retry_of": trial.number})
         recovered.append(trial.number)
         log.info("trial %d was left running by a worker that died: marked interrupted, queued again", trial.number)
+    retried = {t.user_attrs.get("retry_of") for t in trials}
+    for trial in trials:
+        owed = trial.number in recovered or (
+            trial.state == TrialState.FAIL and record_of(trial).get("state") in (INTERRUPTED, NOT_STARTED))
+        if owed and trial.number not in retried and trial.user_attrs.get("retry_of") is None and trial.params:
+            queue_retry(study, trial)
     return recovered
+
+
+def queue_retry(study: optuna.Study, trial: optuna.trial.FrozenTrial | optuna.Trial) -> None:
+    """Queue the trial's parameters once more, marked as its retry (see Search and recover_stale).
+
+    Two workers that queue the same retry at once cost nothing: the second copy finds the first
+    one running or finished and yields to it or reuses its outcome.
+    """
+    study.enqueue_trial(dict(trial.params), user_attrs={"retry_of": trial.number})

@@ -364,8 +364,10 @@ class Search:
 
     def _requeue(self, trial: optuna.Trial) -> None:
         """Queue the same parameters once more, unless this already was the retry."""
+        from searcher.liveness import queue_retry
+
         if trial.user_attrs.get("retry_of") is None:
-            self.study.enqueue_trial(dict(trial.params), user_attrs={"retry_of": trial.number})
+            queue_retry(self.study, trial)
 
     def _predict_seconds(self, macs: int) -> float | None:
         rate = self.tally.seconds_per_mac_image()

@@ -321,7 +321,10 @@ def test_recovery_fails_and_requeues_only_the_dead() -> None:
     far = {"host": host + "-elsewhere", "pid": 1, "started": now - 10 * STALE_SECONDS}
     silent_far = _running_trial(study, far, heartbeat=now - 2 * STALE_SECONDS)
     beating_far = _running_trial(study, far, heartbeat=now)
-    dead_retry = _running_trial(study, {"host": host, "pid": gone.pid, "started": now}, retry_of=dead_here.number)
+    original = _running_trial(study, None)  # interrupted earlier; its retry is the next trial
+    study._storage.set_trial_user_attr(original._trial_id, "searcher", {"state": INTERRUPTED})
+    study.tell(original, state=TrialState.FAIL)
+    dead_retry = _running_trial(study, {"host": host, "pid": gone.pid, "started": now}, retry_of=original.number)
     fresh_unclaimed = _running_trial(study, None)
 
     recovered = recover_stale(study)
@@ -335,6 +338,35 @@ def test_recovery_fails_and_requeues_only_the_dead() -> None:
     queued = study.get_trials(deepcopy=False, states=(TrialState.WAITING,))
     assert sorted(t.user_attrs["retry_of"] for t in queued) == [dead_here.number, silent_far.number]  # a retry is not retried
     assert recover_stale(study) == []  # a second pass finds nothing new
+
+
+def test_recovery_queues_a_retry_that_a_kill_kept_from_being_queued() -> None:
+    """Killed after a trial was ended as interrupted (or put off for time) but before its copy was
+    queued: the next look queues it, once, and never for a retry or a trial whose copy exists."""
+    from searcher.liveness import recover_stale
+    from searcher.records import NOT_STARTED, RECORD
+
+    optuna.logging.set_verbosity(optuna.logging.WARNING)
+    study = optuna.create_study(sampler=optuna.samplers.RandomSampler(seed=1), direction="maximize")
+
+    def ended(state: str, **attrs) -> int:
+        trial = _running_trial(study, None, **attrs)
+        trial.set_user_attr(RECORD, {"state": state})
+        study.tell(trial, state=TrialState.FAIL)
+        return trial.number
+
+    owed = [ended(INTERRUPTED), ended(NOT_STARTED)]
+    covered = ended(INTERRUPTED)
+    study.enqueue_trial(dict(study.trials[covered].params), user_attrs={"retry_of": covered})
+    retry = ended(INTERRUPTED)  # the next ask takes the queued copy: a retry, itself interrupted
+    assert study.trials[retry].user_attrs["retry_of"] == covered
+    ended("failed")  # diverged or over its time limit: an outcome, not retried
+    assert recover_stale(study) == []  # nothing was running
+    queued = study.get_trials(deepcopy=False, states=(TrialState.WAITING,))
+    assert sorted(t.user_attrs["retry_of"] for t in queued) == owed
+    assert all(t.system_attrs["fixed_params"] == study.trials[t.user_attrs["retry_of"]].params for t in queued)
+    recover_stale(study)
+    assert len(study.get_trials(deepcopy=False, states=(TrialState.WAITING,))) == len(queued)  # once
 
 
 def test_unclaimed_trial_counts_as_dead_only_after_the_grace_period() -> None:
