@@ -4,7 +4,8 @@
     python tests/bench_search.py overhead   # only the loop-overhead part
 
 1. Overhead: on a demo run, the share of wall time that is not training (sampling, storage,
-   budget checks, logging, the report). Goal: under 5%.
+   budget checks, logging, the report), on the default SQLite store and on the journal file
+   store, one after the other. Goal: under 5%.
 2. Against the plain way: an Optuna loop that builds and trains every sample and applies the cap
    only afterwards, on the UCI digits set (scikit-learn) with a 5k-parameter cap. Printed: the wall
    time our search needs to reach the plain loop's best fitting validation accuracy, as a ratio of
@@ -29,8 +30,11 @@ from searcher.runner import SearchSettings, prepare, search  # noqa: E402
 from searcher.study import open_study, storage_url  # noqa: E402
 
 
-def overhead(folder: Path) -> None:
-    """Time the worker loop and the final write-out inside one real search; training is what's left."""
+def overhead(folder: Path, store: str) -> None:
+    """Time the worker loop and the final write-out inside one real search; training is what's left.
+
+    ``store``: "sqlite" (the default store) or "journal" (Optuna's journal file), the same search on each.
+    """
     import searcher.runner as runner
 
     spent: dict[str, float] = {}
@@ -44,21 +48,26 @@ def overhead(folder: Path) -> None:
                 spent[name] = spent.get(name, 0.0) + time.perf_counter() - started
         return wrapper
 
+    real = runner.run_worker, runner.finish
     runner.run_worker, runner.finish = timed("loop", runner.run_worker), timed("finish", runner.finish)
-    settings = SearchSettings(name="overhead", space=str(ROOT / "examples" / "stamp_inspection.toml"), data="demo",
-                              trials=20, root=folder)
+    storage = str(folder / "overhead.journal") if store == "journal" else None
+    settings = SearchSettings(name=f"overhead-{store}", space=str(ROOT / "examples" / "stamp_inspection.toml"),
+                              data="demo", trials=20, root=folder, storage=storage)
     started = time.perf_counter()
-    outcome = search(settings)  # the demo as README runs it: 6-epoch proxy training
+    try:
+        outcome = search(settings)  # the demo as README runs it: 6-epoch proxy training
+    finally:
+        runner.run_worker, runner.finish = real
     wall = time.perf_counter() - started
     trials = pd.read_csv(outcome.folder / "trials.csv")
     training = trials["train_seconds"].sum()
     once = wall - spent["loop"] - spent["finish"]
     loop = spent["loop"] - training
-    print(f"[overhead] {len(trials)} proposals, {outcome.counts['rejected']} rejected, "
+    print(f"[overhead {store}] {len(trials)} proposals, {outcome.counts['rejected']} rejected, "
           f"{outcome.counts['trained'] + outcome.counts['stopped_early']} trained")
-    print(f"[overhead] wall {wall:.1f} s: training {training:.1f} s, loop bookkeeping {loop:.1f} s, "
+    print(f"[overhead {store}] wall {wall:.1f} s: training {training:.1f} s, loop bookkeeping {loop:.1f} s, "
           f"final trials.csv + report {spent['finish']:.1f} s, one-off start (data, census, study) {once:.1f} s")
-    print(f"[overhead] search-loop overhead (sampling, storage, checks, logging, report) = "
+    print(f"[overhead {store}] search-loop overhead (sampling, storage, checks, logging, report) = "
           f"{(loop + spent['finish']) / wall:.1%} of wall time (goal < 5%); with the one-off start {(wall - training) / wall:.1%}")
 
 
@@ -123,7 +132,8 @@ if __name__ == "__main__":
     which = sys.argv[1:] or ["overhead", "plain"]
     with tempfile.TemporaryDirectory() as tmp:
         if "overhead" in which:
-            overhead(Path(tmp))
+            for store in ("sqlite", "journal"):
+                overhead(Path(tmp), store)
         if "plain" in which:
             for seed in (0, 1, 2):
                 (Path(tmp) / f"seed{seed}").mkdir()
