@@ -45,6 +45,7 @@ def open_storage(url: str) -> optuna.storages.BaseStorage:
     try:
         if url.endswith(".journal") and "://" not in url:
             Path(url).parent.mkdir(parents=True, exist_ok=True)
+            repair_journal(Path(url))
             backend = optuna.storages.journal.JournalFileBackend(url)
             return optuna.storages.JournalStorage(backend)
         if url.startswith("sqlite:///"):
@@ -66,6 +67,45 @@ def open_storage(url: str) -> optuna.storages.BaseStorage:
         f"`--storage` {redact(url)!r} must be a sqlite:/// or postgresql:// URL or a path ending in .journal",
         key="--storage",
     )
+
+
+def repair_journal(path: Path) -> int:
+    """Cut the damaged end a power cut can leave on a journal file; the number of bytes cut.
+
+    Optuna fsyncs each append, so only the last one can be incomplete: a torn line, or one the
+    file system filled with zeros. Optuna's reader skips such a last line but refuses the file
+    once anything is appended after it. The cut is made under the journal's own lock, the one
+    every append holds, so no writer is half-way through a line meanwhile.
+    """
+    if not path.exists() or path.stat().st_size == 0:
+        return 0
+    lock = optuna.storages.journal.JournalFileSymlinkLock(str(path))  # what JournalFileBackend uses
+    lock.acquire()
+    try:
+        data = path.read_bytes()
+        keep = len(data)
+        while keep > 0:
+            start = data.rfind(b"\n", 0, keep - 1) + 1
+            if data[keep - 1:keep] == b"\n" and _is_json(data[start:keep]):
+                break
+            keep = start
+        if keep < len(data):
+            with open(path, "r+b") as handle:
+                handle.truncate(keep)
+                os.fsync(handle.fileno())
+            log.warning("%s: cut %d bytes of an incomplete last write (a power cut?); the rest is intact",
+                        path, len(data) - keep)
+        return len(data) - keep
+    finally:
+        lock.release()
+
+
+def _is_json(line: bytes) -> bool:
+    try:
+        json.loads(line)
+    except ValueError:  # UnicodeDecodeError and JSONDecodeError both are
+        return False
+    return True
 
 
 def _commit_without_waiting_for_disk(storage: optuna.storages.RDBStorage) -> optuna.storages.RDBStorage:

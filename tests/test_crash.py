@@ -457,3 +457,51 @@ def test_sqlite_store_commits_without_waiting_and_flushes_after_each_spent_candi
     assert flushes == [1, 2, 3] and started == [0, 1, 2]
     worker.budget = Budget(max_params=1)  # nothing fits: rejections are free to redo, so no flush
     assert worker._one() == REJECTED and flushes == [1, 2, 3]
+
+
+@pytest.mark.parametrize("cut", [0.5, 0.97, None], ids=["torn half-way", "torn near the end", "zero-filled"])
+def test_journal_store_is_repaired_after_a_power_cut(tmp_path: Path, cut: float | None) -> None:
+    """A power cut can leave the journal's last append incomplete: cut short, or filled with zeros
+    by the file system. Optuna's own reader then fails on the file as soon as more is appended
+    (checked below on a copy); opened by us, the damaged end is cut first and the run goes on
+    with everything that was complete."""
+    import shutil
+
+    from searcher.study import open_storage
+
+    optuna.logging.set_verbosity(optuna.logging.WARNING)
+    path = tmp_path / "study.journal"
+    study = optuna.create_study(storage=open_storage(str(path)), study_name="s", direction="maximize")
+    for value in (0.1, 0.2, 0.3):
+        trial = study.ask()
+        trial.suggest_int("width", 1, 64)
+        study.tell(trial, value)
+    complete = path.read_bytes()
+    trial = study.ask()  # the append the power cut catches: this trial's creation and parameter
+    trial.suggest_int("width", 1, 64)
+    last = path.read_bytes()[len(complete):]
+    damage = b"\0" * len(last) if cut is None else last[: int(len(last) * cut)]
+    assert not damage.endswith(b"\n")
+    path.write_bytes(complete + damage)
+
+    def plain_optuna(file: Path) -> optuna.Study:
+        backend = optuna.storages.journal.JournalFileBackend(str(file))
+        return optuna.load_study(study_name="s", storage=optuna.storages.JournalStorage(backend))
+
+    copy = tmp_path / "copy.journal"
+    shutil.copy(path, copy)
+    # Optuna 5 fails in more than one way here: the next ask cannot find the trial it just created
+    # (its line was glued to the torn one), or the zero bytes fail to decode
+    with pytest.raises((AttributeError, ValueError)):
+        plain = plain_optuna(copy)
+        plain.tell(plain.ask(), 0.4)
+        plain.tell(plain.ask(), 0.5)
+        plain_optuna(copy)
+
+    resumed = optuna.load_study(study_name="s", storage=open_storage(str(path)))
+    assert [t.value for t in resumed.trials if t.state == TrialState.COMPLETE] == [0.1, 0.2, 0.3]
+    resumed.tell(resumed.ask(), 0.4)
+    resumed.tell(resumed.ask(), 0.5)
+    again = optuna.load_study(study_name="s", storage=open_storage(str(path)))
+    assert [t.value for t in again.trials if t.state == TrialState.COMPLETE] == [0.1, 0.2, 0.3, 0.4, 0.5]
+    assert not path.with_name(path.name + ".lock").exists()  # the lock was given back
