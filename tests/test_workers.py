@@ -67,7 +67,7 @@ def check_study(study: optuna.Study, csv: Path, workers: int, *, last_writer: bo
 
     spent = frame[frame["state"].isin(SPENT) & frame["repeat_of"].isna()]
     twice = spent["arch"][spent["arch"].duplicated()].tolist()
-    assert not twice, f"trained more than once: {twice}"
+    assert not twice, f"trained more than once: {twice}\n" + frame.to_string()
     for _, row in frame[frame["repeat_of"].notna()].iterrows():
         original = frame.loc[frame["trial"] == int(row["repeat_of"])].iloc[0]
         assert original["arch"] == row["arch"] and original["state"] == row["state"], f"bad repeat: trial {row['trial']}"
@@ -76,8 +76,9 @@ def check_study(study: optuna.Study, csv: Path, workers: int, *, last_writer: bo
     for _, row in frame[frame["state"] == DUPLICATE].iterrows():  # yielded to a trial drawing the same
         assert drawn[row["arch"]] >= 2, f"duplicate {row['trial']} of an architecture no other trial drew"
 
-    assert TRIALS <= trained_count(frame) <= TRIALS + workers - 1, trained_count(frame)
-    assert frame["worker"].nunique() == workers, frame["worker"].unique()
+    shown = frame[["trial", "arch", "state", "reason", "worker", "repeat_of"]].to_string()  # for a failure's message
+    assert TRIALS <= trained_count(frame) <= TRIALS + workers - 1, shown
+    assert frame["worker"].nunique() == workers, shown
 
     written = pd.read_csv(csv, keep_default_na=False)
     if last_writer:
@@ -129,7 +130,9 @@ def test_two_worker_processes_share_the_default_sqlite_store(tmp_path: Path, wri
 @pytest.mark.slow
 def test_two_searches_started_at_once_with_one_name_share_the_run(tmp_path: Path, write_space) -> None:
     space = write_space()
-    processes = [start(search_command(space, "twin"), tmp_path) for _ in range(2)]
+    # three epochs: long enough that the second search, slowed by the first creating the store,
+    # still finds work when it gets going (with one epoch the first could be done by then)
+    processes = [start(search_command(space, "twin", "--epochs", "3"), tmp_path) for _ in range(2)]
     finish(processes)
     folder = tmp_path / "runs" / "twin"
     frame = check_study(stored("twin", f"sqlite:///{folder / 'study.db'}"), folder / "trials.csv", workers=2,
