@@ -33,15 +33,19 @@ from searcher.runner import SearchSettings, search  # noqa: E402
 from searcher.study import open_study  # noqa: E402
 
 SPENT = (TRAINED, STOPPED, FAILED)
-# The tests' tiny space made uniform: 1,536 candidates of two stages on 16x16 input, every one within
-# the budget and small (27k-1.1M MACs; at this size per-batch overhead dominates their training),
-# so the rate hangs less on which ones the sampler happened to pick.
+# The tests' tiny space made uniform: 30,720 candidates of two stages on 16x16 input, every one within
+# the budget and small (28k to 4.2M MACs; at this size per-batch overhead dominates their
+# training), so the rate hangs less on which ones the sampler happened to pick. Large enough that a
+# run of a few minutes explores a few per cent of it: in a space nearly used up most proposals are
+# repeats of known outcomes, and the figure would measure how soon the sampler runs dry, not the
+# workers (an earlier 1,536-candidate version did: 40-60% repeats).
 UNIFORM_CHANGES = {
     "sizes = [[12, 12], [16, 16]]": "sizes = [[16, 16]]", "count = [1, 3]": "count = [2, 2]",
-    "first_width = [2, 4]": "first_width = [4, 8]", "max_width = 8": "max_width = 16",
-    "kernel = 3": "kernel = [3, 5]", "batch_norm = [true, false]": "batch_norm = [true]",
-    'kind = ["max", "none"]': 'kind = ["max", "avg"]', "hidden_width = [3, 5]": "hidden_width = [8, 16]",
-    'max_params = "300"\nmax_macs = "20k"': 'max_params = "1M"',
+    "first_width = [2, 4]": "first_width = [4, 6, 8, 10, 12, 16]", "max_width = 8": "max_width = 32",
+    "kernel = 3": "kernel = [3, 5]", 'activation = ["relu", "tanh"]':
+    'activation = ["relu", "relu6", "tanh", "sigmoid", "hardswish"]', "batch_norm = [true, false]": "batch_norm = [true]",
+    'kind = ["max", "none"]': 'kind = ["max", "avg"]', "hidden_width = [3, 5]": "hidden_width = [8, 16, 24]",
+    "dropout = 0.0": "dropout = [0.0, 0.1]", 'max_params = "300"\nmax_macs = "20k"': 'max_params = "1M"',
 }
 
 
@@ -81,11 +85,13 @@ def one_search(root: Path, name: str, workers: int, minutes: float, space: str, 
         row["other"] = wall - row["startup"] - row["train"]
     return {"wall": wall, "count": len(spent), "per_hour": len(spent) / wall * 3600,
             "steady_per_hour": in_window / window * 3600 if window == window and window > 0 else float("nan"),
-            "proposals": len(trials), "workers": per_worker}
+            "proposals": len(trials), "workers": per_worker,
+            "repeats": sum(record_of(t).get("repeat_of") is not None for t in trials)}
 
 
 def show(label: str, result: dict) -> None:
-    print(f"  {label}: {result['count']} trained of {result['proposals']} proposals in {result['wall']:.0f} s -> "
+    print(f"  {label}: {result['count']} trained of {result['proposals']} proposals ({result['repeats']} repeats "
+          f"of a known outcome) in {result['wall']:.0f} s -> "
           f"{result['per_hour']:.0f}/h overall, {result['steady_per_hour']:.0f}/h steady")
     for pid, row in sorted(result["workers"].items()):
         print(f"      worker pid {pid}: start-up {row['startup']:.1f} s, training {row['train']:.1f} s "
@@ -96,7 +102,7 @@ def main() -> None:
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     parser.add_argument("--minutes", type=float, default=1.5, help="time limit of each search")
     parser.add_argument("--rounds", type=int, default=1)
-    parser.add_argument("--space", help="space file (default: 1,536 small two-stage candidates)")
+    parser.add_argument("--space", help="space file (default: 30,720 small two-stage candidates)")
     parser.add_argument("--train-fraction", type=float, default=0.3)
     parser.add_argument("--storage", choices=("sqlite", "journal"), default="sqlite", help="the run's store")
     args = parser.parse_args()
