@@ -78,7 +78,7 @@ def one_search(root: Path, name: str, workers: int, minutes: float, space: str, 
                                                            "count": 0, "proposals": 0})
         row["first"] = min(row["first"], t.datetime_start.timestamp())
         row["train"] += float(record_of(t).get("train_seconds") or 0.0)
-        row["count"] += record_of(t).get("state") in SPENT
+        row["count"] += record_of(t).get("state") in SPENT and record_of(t).get("repeat_of") is None
         row["proposals"] += 1
     for row in per_worker.values():
         row["startup"] = row["first"] - started
