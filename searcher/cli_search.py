@@ -33,15 +33,16 @@ def cmd_search(args: argparse.Namespace, space_path, budget_of) -> int:
     outcome = search(settings, budget_of(args), train)
     c = outcome.counts
     print(f"run {args.name}: {outcome.stopped_by or 'done'} after {outcome.seconds / 60:.1f} min")
-    print(f"tried {c['tried']}: rejected {c['rejected']}, trained {c['trained']} ({c['repeats']} repeats of known "
-          f"results), stopped early {c['stopped_early']}, failed {c['failed']}, interrupted {c['interrupted']}")
+    print(f"tried {c['tried']}: rejected {c['rejected']}, trained {c['trained']}, stopped early {c['stopped_early']}, "
+          f"failed {c['failed']}, interrupted {c['interrupted']}"
+          + (f"; {c['repeats']} of these reused a known outcome" if c["repeats"] else ""))
     if outcome.rejected_share:
         print("share of proposals rejected, per 50: " + ", ".join(f"{s:.0%}" for s in outcome.rejected_share))
     _print_reasons(outcome.folder)
     if outcome.best:
         b = outcome.best
-        print(f"best fitting: trial {b['trial']} accuracy {b['val_accuracy']:.4f} params {b['params']:,} "
-              f"macs {b['macs']:,}  {b['arch']}")
+        print(f"best fitting: trial {b['trial']} accuracy {b['val_accuracy']:.4f} params {int(b['params']):,} "
+              f"macs {int(b['macs']):,}  {b['arch']}")
     else:
         print("no fully trained candidate fits the budget yet")
     print(f"results: {outcome.folder / 'trials.csv'}, {outcome.folder / 'report.html'}")

@@ -20,7 +20,7 @@ from searcher.budget import Budget
 from searcher.errors import SearcherError, one_of
 from searcher.runs import RUNS, run_folder, write_atomic
 from searcher.space import Space, load_space
-from searcher.study import OBJECTIVES, SAMPLERS, RunConfig, disk_flush, open_study, redact, storage_url
+from searcher.study import OBJECTIVES, SAMPLERS, RunConfig, disk_flush, open_study, redact, storage_kind, storage_url
 
 log = logging.getLogger(__name__)
 
@@ -56,6 +56,8 @@ class SearchSettings:
         for key, value in (("--minutes", self.minutes), ("--candidate-minutes", self.candidate_minutes)):
             if value is not None and not value > 0:
                 raise SearcherError(f"`{key}` must be a number of minutes > 0, got {value!r}", key=key)
+        if self.storage is not None:
+            storage_kind(self.storage)
 
 
 @dataclass
@@ -208,7 +210,7 @@ def run_worker(run: PreparedRun, study: Any, deadline: float | None, index: int,
 
 def _local_store(url: str) -> bool:
     """A store in a file on this machine: every worker of its study runs here."""
-    return url.startswith("sqlite:") or url.endswith(".journal")
+    return storage_kind(url) in ("sqlite", "journal")
 
 
 def _progress_printer(deadline: float | None, prefix: str):

@@ -40,15 +40,33 @@ def storage_url(storage: str | None, folder: Path) -> str:
     return storage or f"sqlite:///{folder / 'study.db'}"
 
 
+def storage_kind(url: str) -> str:
+    """"journal", "sqlite" or "postgresql" for a storage the program can open; else a clear error.
+
+    Cheap, so a search checks a mistyped ``--storage`` before it spends time loading the data.
+    """
+    if url.endswith(".journal") and "://" not in url:
+        return "journal"
+    if url.startswith("sqlite:///"):
+        return "sqlite"
+    if url.startswith(("postgresql://", "postgres://", "postgresql+")):
+        return "postgresql"
+    raise SearcherError(
+        f"`--storage` {redact(url)!r} must be a sqlite:/// or postgresql:// URL or a path ending in .journal",
+        key="--storage",
+    )
+
+
 def open_storage(url: str) -> optuna.storages.BaseStorage:
     """An Optuna storage for a URL (sqlite:///, postgresql://) or a ``.journal`` file path."""
+    kind = storage_kind(url)
     try:
-        if url.endswith(".journal") and "://" not in url:
+        if kind == "journal":
             Path(url).parent.mkdir(parents=True, exist_ok=True)
             repair_journal(Path(url))
             backend = optuna.storages.journal.JournalFileBackend(url)
             return optuna.storages.JournalStorage(backend)
-        if url.startswith("sqlite:///"):
+        if kind == "sqlite":
             path = Path(url.removeprefix("sqlite:///"))
             path.parent.mkdir(parents=True, exist_ok=True)
             with sqlite3.connect(path) as connection:  # WAL lets readers (status, report) not block writers
@@ -56,17 +74,12 @@ def open_storage(url: str) -> optuna.storages.BaseStorage:
             return _commit_without_waiting_for_disk(_rdb_storage(url, {"connect_args": {"timeout": 120}}))
         if url.startswith(("postgresql://", "postgres://")):
             url = "postgresql+psycopg://" + url.split("://", 1)[1]
-        if url.startswith("postgresql"):
-            return _rdb_storage(url, {"pool_pre_ping": True, "pool_size": 2})
+        return _rdb_storage(url, {"pool_pre_ping": True, "pool_size": 2})
     except ImportError as exc:
         raise SearcherError(f"`--storage` {redact(url)} needs a driver: {exc}; install with `pip install -e .[postgres]`",
                             key="--storage") from None
     except Exception as exc:  # connection refused, bad credentials, unreadable file ...
         raise SearcherError(f"cannot open `--storage` {redact(url)}: {redact(_first_line(exc))}", key="--storage") from None
-    raise SearcherError(
-        f"`--storage` {redact(url)!r} must be a sqlite:/// or postgresql:// URL or a path ending in .journal",
-        key="--storage",
-    )
 
 
 def repair_journal(path: Path) -> int:
@@ -131,7 +144,7 @@ def disk_flush(url: str) -> Callable[[], None] | None:
 
     None for other stores, which make each commit durable themselves.
     """
-    if not url.startswith("sqlite:///"):
+    if storage_kind(url) != "sqlite":
         return None
     wal = url.removeprefix("sqlite:///") + "-wal"
 

@@ -67,6 +67,13 @@ def test_bad_search_input_exits_2_with_a_message_and_writes_nothing(capsys, work
     assert_refused(capsys, workdir, base + argv, *phrases)
 
 
+def test_a_mistyped_storage_is_refused_before_the_data_is_read(capsys, workdir):
+    status = run("search", "--space", "tiny.toml", "--name", "bad", "--data", "missing.npz", "--storage", "runs/x.txt")
+    err = capsys.readouterr().err
+    assert status == 2 and "`--storage` 'runs/x.txt' must be" in err, err
+    assert "missing.npz" not in err  # the data (missing too) was never looked at
+
+
 def test_bad_data_files_are_refused_by_name(capsys, workdir):
     images = np.zeros((20, 16, 16), np.uint8)
     np.savez(workdir / "one_class.npz", images=images, labels=np.zeros(20, np.int64))
