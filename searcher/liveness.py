@@ -120,15 +120,16 @@ def recover_stale(study: optuna.Study, registry: Registry | None = None) -> list
     for trial in trials:
         owed = trial.number in recovered or (
             trial.state == TrialState.FAIL and record_of(trial).get("state") in (INTERRUPTED, NOT_STARTED))
-        if owed and trial.number not in retried and trial.user_attrs.get("retry_of") is None and trial.params:
+        if owed and trial.number not in retried and trial.params:
             queue_retry(study, trial)
     return recovered
 
 
 def queue_retry(study: optuna.Study, trial: optuna.trial.FrozenTrial | optuna.Trial) -> None:
-    """Queue the trial's parameters once more, marked as its retry (see Search and recover_stale).
+    """Queue the trial's parameters once more, marked as its retry, unless it already was the retry.
 
     Two workers that queue the same retry at once cost nothing: the second copy finds the first
     one running or finished and yields to it or reuses its outcome.
     """
-    study.enqueue_trial(dict(trial.params), user_attrs={"retry_of": trial.number})
+    if trial.user_attrs.get("retry_of") is None:
+        study.enqueue_trial(dict(trial.params), user_attrs={"retry_of": trial.number})

@@ -32,6 +32,7 @@ TRAINED, STOPPED, REJECTED, FAILED, INTERRUPTED, RUNNING = (
 NOT_STARTED = "not_started"  # asked, then left for a later run: not enough time left
 DUPLICATE = "duplicate"  # the same architecture was already being trained by another worker
 QUEUED = "queued"  # queued again (a retry) and not yet asked for: no outcome yet
+SPENT = (TRAINED, STOPPED, FAILED)  # outcomes that cost training time
 
 
 def worker_id() -> dict[str, Any]:
@@ -89,7 +90,7 @@ def trials_frame(study: optuna.Study) -> pd.DataFrame:
 
 def counts(frame: pd.DataFrame) -> dict[str, int]:
     """Trials by state, plus 'tried' and 'repeats' (see :func:`counts_of`)."""
-    repeats = int(frame["repeat_of"].notna().sum()) if len(frame) else 0
+    repeats = len(frame) - len(distinct_rows(frame))
     return counts_of(frame["state"].value_counts().to_dict(), repeats)
 
 
@@ -113,5 +114,4 @@ def distinct_rows(frame: pd.DataFrame) -> pd.DataFrame:
 
 def trained_count(frame: pd.DataFrame) -> int:
     """Candidates that used training time (repeats of a known result do not count)."""
-    spent = frame["state"].isin([TRAINED, STOPPED, FAILED]) & frame["repeat_of"].isna()
-    return int(spent.sum())
+    return int(distinct_rows(frame)["state"].isin(SPENT).sum())

@@ -19,7 +19,7 @@ import plotly.io as pio
 from plotly.offline import get_plotlyjs
 
 from searcher.errors import SearcherError
-from searcher.records import counts_of, distinct_rows
+from searcher.records import counts as trial_counts, distinct_rows
 from searcher.runs import write_atomic
 from searcher.pareto import COST_COLUMNS, SCORED_STATES, check_caps, feasible_mask, front, front_steps
 from searcher.units import format_bytes, format_count
@@ -225,13 +225,12 @@ def _failures_html(table: pd.DataFrame, most: int = 30) -> str:
 
 def _header_html(table: pd.DataFrame, caps: dict[str, float], title: str, notes: list[str]) -> str:
     """Counts over every trial, as the search command's summary gives them; the best among distinct ones."""
-    repeats = int(table["repeat_of"].notna().sum()) if "repeat_of" in table else 0
-    counts = counts_of(table["state"].value_counts().to_dict(), repeats)
+    counts = trial_counts(table)
     tiles = [("tried", counts["tried"])]
     tiles += [(label, counts[state]) for state, label in STATE_LABELS.items()
               if state not in _SHOWN_WHEN_ANY or counts[state]]
-    if repeats:
-        tiles.append(("reused a known outcome", repeats))
+    if counts["repeats"]:
+        tiles.append(("reused a known outcome", counts["repeats"]))
     tile_html = "".join(f'<div class="tile"><b>{n}</b><span>{html.escape(w)}</span></div>' for w, n in tiles)
     scored = _scored(distinct_rows(table))  # the best is fully trained, as exported; fewest params wins a tie
     done = scored[feasible_mask(scored, caps) & (scored["state"] == "trained").to_numpy()]

@@ -38,8 +38,9 @@ from optuna.trial import TrialState
 from searcher.arch import Arch
 from searcher.budget import Budget, Violation
 from searcher.cost import cost, training_bytes
+from searcher.liveness import Registry, claim, queue_retry, recover_stale
 from searcher.records import (
-    DUPLICATE, FAILED, HEARTBEAT, INTERRUPTED, NOT_STARTED, RECORD, REJECTED, STOPPED, TRAINED,
+    DUPLICATE, FAILED, HEARTBEAT, INTERRUPTED, NOT_STARTED, RECORD, REJECTED, SPENT, STOPPED, TRAINED,
     counts_of, describe, finished_state, record_of,
 )
 from searcher.space import Space
@@ -150,8 +151,6 @@ class Search:
     def run(self) -> WorkerTally:
         from contextlib import nullcontext
 
-        from searcher.liveness import Registry
-
         self.signals.install()  # the first _should_stop recovers what dead workers left running
         with Registry(self.plan.run_folder) if self.plan.run_folder else nullcontext() as registry:
             self.registry = registry
@@ -188,8 +187,6 @@ class Search:
         if time.monotonic() - self._recovered_at >= RECOVER_SECONDS:
             # not only at start: a worker elsewhere may die later, and a trial a kill left unclaimed is
             # only called dead after a grace period; until recovered, both count as in flight below
-            from searcher.liveness import recover_stale
-
             recover_stale(self.study, self.registry)
             self._recovered_at = time.monotonic()
         # other workers' candidates will count too; an unclaimed trial is a kill's leftover (or one that is
@@ -200,8 +197,6 @@ class Search:
         return ""
 
     def _one(self) -> str:
-        from searcher.liveness import claim
-
         trial = self.study.ask()
         claim(trial)
         arch = self.space.suggest(trial, self.classes)
@@ -221,7 +216,8 @@ class Search:
         # it at once, at least one then sees the other, so it is never trained twice (both may yield).
         # The look is one read of the study, after the write: a trial that drew the same architecture
         # is in it either still running or finished, and then its outcome is known.
-        trial.set_user_attr(RECORD, record | {"state": "training"})
+        record = record | {"state": "training"}
+        trial.set_user_attr(RECORD, record)
         running = self.finished.update(self.study)
         if any(t.number != trial.number and record_of(t).get("arch") == record["arch"] for t in running):
             return self._finish(trial, record, DUPLICATE, "another worker is training the same architecture",
@@ -232,7 +228,7 @@ class Search:
         left = None if self.plan.deadline is None else self.plan.deadline - time.time()
         predicted = self._predict_seconds(totals["macs"])
         if left is not None and predicted is not None and predicted > left:
-            self._requeue(trial)
+            queue_retry(self.study, trial)
             return self._finish(trial, record, NOT_STARTED,
                                 f"predicted {predicted:.0f} s of training but {left:.0f} s left; queued for the next run",
                                 optuna_state=TrialState.FAIL)
@@ -243,7 +239,6 @@ class Search:
         from searcher.build import build
         from searcher.train import Diverged, OutOfTime, TrainProgress, train_candidate
 
-        record = record | {"state": "training"}  # as _one has stored it
         beat = _Heartbeat(self.study, trial._trial_id)
         progress = TrainProgress()
         run_deadline = self._monotonic(self.plan.deadline)
@@ -283,7 +278,7 @@ class Search:
             self.signals.raise_now = False
             beat.stop()
         if state == INTERRUPTED:
-            self._requeue(trial)
+            queue_retry(self.study, trial)
         if state in (TRAINED, STOPPED):
             self.tally.mac_images += totals["macs"] * max(progress.images_seen, 1)
             self.tally.train_seconds += result.seconds
@@ -362,13 +357,6 @@ class Search:
         self._finish(trial, record, earlier["state"], reason, values=known.values, optuna_state=known.optuna_state)
         return "repeat"
 
-    def _requeue(self, trial: optuna.Trial) -> None:
-        """Queue the same parameters once more, unless this already was the retry."""
-        from searcher.liveness import queue_retry
-
-        if trial.user_attrs.get("retry_of") is None:
-            queue_retry(self.study, trial)
-
     def _predict_seconds(self, macs: int) -> float | None:
         rate = self.tally.seconds_per_mac_image()
         if rate is None:
@@ -427,7 +415,7 @@ class FinishedTrials:
             self.best = max(record["val_accuracy"], self.best) if not math.isnan(self.best) else record["val_accuracy"]
         if record.get("repeat_of") is not None:
             self.repeats += 1
-        elif state in (TRAINED, STOPPED, FAILED):
+        elif state in SPENT:
             self.spent += 1
             self.outcomes.setdefault(record["arch"], _Outcome(number, optuna_state, values, record))
 

@@ -17,7 +17,7 @@ import pytest
 from optuna.trial import TrialState
 
 from searcher.records import (
-    DUPLICATE, FAILED, INTERRUPTED, NOT_STARTED, REJECTED, STOPPED, TRAINED, counts, record_of, trained_count,
+    DUPLICATE, FAILED, INTERRUPTED, NOT_STARTED, REJECTED, SPENT, STOPPED, TRAINED, counts, record_of, trained_count,
     trials_frame,
 )
 from searcher.study import open_study
@@ -28,7 +28,6 @@ TRIALS = 3  # trained candidates asked for: small, yet enough that workers overl
 OPTUNA_STATE = {TRAINED: TrialState.COMPLETE, REJECTED: TrialState.COMPLETE, STOPPED: TrialState.PRUNED,
                 FAILED: TrialState.FAIL, DUPLICATE: TrialState.FAIL, NOT_STARTED: TrialState.FAIL,
                 INTERRUPTED: TrialState.FAIL}
-SPENT = (TRAINED, STOPPED, FAILED)  # states that used training time
 
 
 def search_command(space: Path, name: str, *extra: str) -> list[str]:
