@@ -7,9 +7,9 @@ It makes a short run named `api-tour` under runs/ (a few minutes on 2 cores).
 from pathlib import Path
 
 import searcher
-from searcher.census_report import run_census, summary_lines
-from searcher.export import ExportSettings, export
-from searcher.runner import SearchSettings, search
+from searcher.core.census_report import run_census, summary_lines
+from searcher.ship.export import ExportSettings, export
+from searcher.study.run import SearchSettings, search
 
 SPACE = Path(__file__).with_name("stamp_inspection.toml")
 

@@ -5,23 +5,46 @@
 >>> arch = space.random(seed=0)
 >>> searcher.cost(arch).params == sum(p.numel() for p in searcher.build(arch).parameters())
 True
+
+The torch-free part (spaces, architectures, cost, budget, census) is imported at once; what
+needs torch (``build``, ``search``, ``export``) is imported on first use, so ``import searcher``
+and the ``cost`` and ``census`` commands start without loading torch.
 """
 
-from searcher.arch import Arch, Conv, Head, Pool, Stage, parse_arch
-from searcher.budget import Budget, Violation
-from searcher.cost import Cost, LayerCost, cost
+from __future__ import annotations
+
+import importlib
+from typing import Any
+
+from searcher.core.arch import Arch, Conv, Head, Pool, Stage, parse_arch
+from searcher.core.budget import Budget, Violation
+from searcher.core.census_report import Census, CensusSettings, run_census as census
+from searcher.core.cost import Cost, LayerCost, cost
+from searcher.core.space import Space
+from searcher.core.space_file import builtin_space, load_space
 from searcher.errors import SearcherError
-from searcher.space import Space, builtin_space, load_space
+
+# public name -> the module that defines it; loaded on first use because it loads torch
+_LATE = {
+    "build": "searcher.model.build",
+    "search": "searcher.study.run",
+    "SearchSettings": "searcher.study.run",
+    "SearchOutcome": "searcher.study.run",
+    "export": "searcher.ship.export",
+    "ExportSettings": "searcher.ship.export",
+    "ExportOutcome": "searcher.ship.export",
+}
 
 
-def build(arch: Arch):
-    """The torch module for ``arch`` (imports torch only when called)."""
-    from searcher.build import build as _build
-
-    return _build(arch)
+def __getattr__(name: str) -> Any:
+    if name in _LATE:
+        value = getattr(importlib.import_module(_LATE[name]), name)
+        globals()[name] = value
+        return value
+    raise AttributeError(f"module 'searcher' has no attribute {name!r}")
 
 
 __all__ = [
-    "Arch", "Budget", "Conv", "Cost", "Head", "LayerCost", "Pool", "SearcherError", "Space", "Stage",
-    "Violation", "build", "builtin_space", "cost", "load_space", "parse_arch",
+    "Arch", "Budget", "Census", "CensusSettings", "Conv", "Cost", "Head", "LayerCost", "Pool", "SearcherError",
+    "Space", "Stage", "Violation", "builtin_space", "census", "cost", "load_space", "parse_arch", *_LATE,
 ]

@@ -1,5 +1,5 @@
 import sys
 
-from searcher.cli import main
+from searcher.cli.main import main
 
 sys.exit(main())

@@ -19,9 +19,9 @@ import torch
 from torch.utils.flop_counter import FlopCounterMode
 
 import searcher
-from searcher.census import batch_costs, sample
-from searcher.census_report import CensusSettings, run_census
-from searcher.cost import cost
+from searcher.core.census import batch_costs, sample
+from searcher.core.census_report import CensusSettings, run_census
+from searcher.core.cost import cost
 
 
 def candidates(space: searcher.Space, n: int) -> list[searcher.Arch]:

@@ -25,9 +25,9 @@ import pandas as pd
 ROOT = Path(__file__).resolve().parent.parent
 sys.path.insert(0, str(ROOT / "tests"))
 
-from searcher.budget import Budget  # noqa: E402
-from searcher.runner import SearchSettings, prepare, search  # noqa: E402
-from searcher.study import open_study, storage_url  # noqa: E402
+from searcher.core.budget import Budget  # noqa: E402
+from searcher.study.run import SearchSettings, prepare, search  # noqa: E402
+from searcher.study.storage import open_study, storage_url  # noqa: E402
 
 
 def overhead(folder: Path, store: str) -> None:
@@ -35,7 +35,7 @@ def overhead(folder: Path, store: str) -> None:
 
     ``store``: "sqlite" (the default store) or "journal" (Optuna's journal file), the same search on each.
     """
-    import searcher.runner as runner
+    import searcher.study.run as runner
 
     spent: dict[str, float] = {}
 
@@ -73,9 +73,9 @@ def overhead(folder: Path, store: str) -> None:
 
 def plain_loop(space, data, budget: Budget, trials: int, seed: int) -> tuple[float, float]:
     """Build and train every sample, apply the cap afterwards; (best fitting accuracy, seconds to reach it)."""
-    from searcher.build import build
-    from searcher.cost import cost
-    from searcher.train import TrainSettings, train_candidate
+    from searcher.model.build import build
+    from searcher.core.cost import cost
+    from searcher.model.train import TrainSettings, train_candidate
 
     settings = TrainSettings(**{**TrainSettings().__dict__, **space.train})
     study = optuna.create_study(direction="maximize", sampler=optuna.samplers.TPESampler(seed=seed))

@@ -39,11 +39,11 @@ sys.path.insert(0, str(HERE))
 import numpy as np  # noqa: E402
 import optuna  # noqa: E402
 
-from searcher.budget import Budget  # noqa: E402
-from searcher.search import Search, WorkerPlan  # noqa: E402
-from searcher.space import load_space  # noqa: E402
-from searcher.study import RunConfig, make_sampler, open_study  # noqa: E402
-from searcher.train import TrainResult, TrainSettings  # noqa: E402
+from searcher.core.budget import Budget  # noqa: E402
+from searcher.study.worker import Search, WorkerPlan  # noqa: E402
+from searcher.core.space_file import load_space  # noqa: E402
+from searcher.study.storage import RunConfig, make_sampler, open_study  # noqa: E402
+from searcher.model.train import TrainResult, TrainSettings  # noqa: E402
 
 SPACE = HERE.parent / "spaces" / "mcu.toml"
 CLASSES = 10
@@ -142,10 +142,10 @@ def main() -> None:
     args = parser.parse_args()
     logging.basicConfig(level=logging.WARNING)
     optuna.logging.set_verbosity(optuna.logging.WARNING)
-    import searcher.train
+    import searcher.model.train
 
-    searcher.train.train_candidate = stand_in_training
-    importlib.import_module("searcher.build").build = lambda arch: None
+    searcher.model.train.train_candidate = stand_in_training
+    importlib.import_module("searcher.model.build").build = lambda arch: None
     print(f"{os.cpu_count()} cores; load average before: {' '.join(f'{x:.2f}' for x in os.getloadavg())}")
 
     from conftest import POSTGRES_ENV, ThrowawayPostgres

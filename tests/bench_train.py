@@ -29,7 +29,7 @@ sys.path.insert(0, str(Path(__file__).resolve().parents[1]))  # run from a check
 
 from test_train import small_net  # noqa: E402  (this folder is on the path when run as a script)
 
-from searcher.train import TrainSettings, keep_freed_memory, train_candidate  # noqa: E402
+from searcher.model.train import TrainSettings, keep_freed_memory, train_candidate  # noqa: E402
 
 CANDIDATES = {"small": (8, 16, 32), "medium": (16, 32, 64), "large": (32, 64, 128)}
 CLASSES = 10

@@ -7,7 +7,8 @@ from typing import Callable
 
 import pytest
 
-from searcher.space import Space, builtin_space, load_space
+from searcher.core.space import Space
+from searcher.core.space_file import builtin_space, load_space
 
 SHIPPED_SPACES = ("mcu", "workstation", "classic")
 

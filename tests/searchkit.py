@@ -119,7 +119,7 @@ def load(cwd: Path, name: str) -> optuna.Study:
 
 def finished(study: optuna.Study) -> dict[int, tuple[str, Any, str]]:
     """Trial number -> (Optuna state, values, our state) of every finished trial."""
-    from searcher.records import record_of
+    from searcher.results.records import record_of
 
     return {t.number: (t.state.name, t.values, record_of(t).get("state"))
             for t in study.get_trials(deepcopy=False) if t.state.is_finished()}
@@ -143,7 +143,7 @@ def in_process() -> Iterator[None]:
 
 def search_here(folder: Path, space: Path, name: str, train: dict | None = None, **fields: Any):
     """runner.search in this process on the demo data, runs under folder/runs; returns its outcome."""
-    from searcher.runner import SearchSettings, search
+    from searcher.study.run import SearchSettings, search
 
     settings = SearchSettings(name=name, space=str(space), root=folder / "runs", **fields)
     with in_process():
@@ -157,10 +157,10 @@ def memory_worker(tmp_path: Path, *, trials: int = 100, deadline: float | None =
     Unless real data is given, only the training-set size and class count are there: enough for
     every step but training itself (see :func:`pretend_training`).
     """
-    from searcher.budget import Budget
-    from searcher.search import Search, WorkerPlan
-    from searcher.space import load_space
-    from searcher.train_settings import TrainSettings
+    from searcher.core.budget import Budget
+    from searcher.study.worker import Search, WorkerPlan
+    from searcher.core.space_file import load_space
+    from searcher.core.train_settings import TrainSettings
 
     optuna.logging.set_verbosity(optuna.logging.WARNING)
     if study is None:

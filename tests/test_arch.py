@@ -8,7 +8,7 @@ import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
-from searcher.arch import ACTIVATIONS, Arch, Conv, Head, Pool, Stage, parse_arch
+from searcher.core.arch import ACTIVATIONS, Arch, Conv, Head, Pool, Stage, parse_arch
 from searcher.errors import SearcherError
 
 from conftest import SHIPPED_SPACES

@@ -6,9 +6,9 @@ import pytest
 from torch import nn
 
 import searcher
-from searcher.arch import parse_arch
-from searcher.budget import CAP_COLUMNS, Budget, Violation
-from searcher.cost import cost
+from searcher.core.arch import parse_arch
+from searcher.core.budget import CAP_COLUMNS, Budget, Violation
+from searcher.core.cost import cost
 from searcher.errors import SearcherError
 
 ARCH = "1x16x16_c4k3-m2_c8k5_flat-d12-o3_relu_bn"

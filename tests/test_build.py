@@ -1,7 +1,7 @@
 """The analytic cost against the real torch module, for many seeded draws from every space.
 
 Each check compares searcher's arithmetic with what torch itself reports for the module that
-``searcher.build`` makes: parameter and buffer counts, FLOPs from
+``searcher.model.build`` makes: parameter and buffer counts, FLOPs from
 ``torch.utils.flop_counter.FlopCounterMode``, and tensor shapes seen by forward hooks.
 """
 
@@ -12,8 +12,8 @@ import torch
 from torch.utils.flop_counter import FlopCounterMode
 
 import searcher
-from searcher.arch import Arch
-from searcher.cost import Cost, cost
+from searcher.core.arch import Arch
+from searcher.core.cost import Cost, cost
 
 from conftest import SHIPPED_SPACES
 

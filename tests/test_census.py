@@ -7,11 +7,12 @@ from collections import Counter
 import numpy as np
 import pytest
 
-from searcher.budget import CAP_COLUMNS, Budget
-from searcher.census import batch_costs, decode, enumerate_all, multiplicity, sample
-from searcher.census_report import CensusSettings, run_census, summary_lines
-from searcher.cost import cost
-from searcher.space import Space, load_space
+from searcher.core.budget import CAP_COLUMNS, Budget
+from searcher.core.census import batch_costs, decode, enumerate_all, multiplicity, sample
+from searcher.core.census_report import CensusSettings, run_census, summary_lines
+from searcher.core.cost import cost
+from searcher.core.space import Space
+from searcher.core.space_file import load_space
 
 from conftest import SHIPPED_SPACES
 

@@ -10,11 +10,11 @@ from pathlib import Path
 import pandas as pd
 import pytest
 
-from searcher.arch import parse_arch
-from searcher.census_report import run_census
-from searcher.cli import main
-from searcher.cost import cost
-from searcher.space import load_space
+from searcher.core.arch import parse_arch
+from searcher.core.census_report import run_census
+from searcher.cli.main import main
+from searcher.core.cost import cost
+from searcher.core.space_file import load_space
 
 from conftest import TINY_SPACE
 

@@ -7,7 +7,7 @@ import optuna
 import pandas as pd
 import pytest
 
-from searcher.cli import main
+from searcher.cli.main import main
 
 TINY = """
 name = "tiny"

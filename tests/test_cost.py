@@ -10,8 +10,8 @@ import torch.nn.functional as F
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
-from searcher.arch import Conv, Head, Stage, parse_arch
-from searcher.cost import conv_output_size, cost
+from searcher.core.arch import Conv, Head, Stage, parse_arch
+from searcher.core.cost import conv_output_size, cost
 from searcher.errors import SearcherError
 
 # VGG-16, configuration D: 13 3x3 'same' convs in five blocks, each block closed by 2x2 max

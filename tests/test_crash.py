@@ -22,11 +22,11 @@ from searchkit import (
     SAFETY_SECONDS, child_env, db_path, finished, load, memory_worker, pretend_training, run, search_args, search_here, start,
     stop, trial_rows, training_now, wait_until_training, write_space,
 )
-import searcher.liveness
-import searcher.search
-from searcher.budget import Budget
-from searcher.records import INTERRUPTED, REJECTED, counts, trained_count, trials_frame
-from searcher.space import load_space
+import searcher.study.liveness
+import searcher.study.worker
+from searcher.core.budget import Budget
+from searcher.results.records import INTERRUPTED, REJECTED, counts, trained_count, trials_frame
+from searcher.core.space_file import load_space
 
 
 def _retries(study) -> dict[int, list]:
@@ -69,7 +69,7 @@ def test_killed_search_resumes_without_losing_work(tmp_path: Path) -> None:
         seen_training += training_now(db, process.pid)
         assert stop(process, signal.SIGKILL) == -signal.SIGKILL, "the search ended before it could be killed"
     # A kill between Optuna's ask and the claim leaves a trial with no owner, dead only after a grace
-    # period (searcher.liveness.UNCLAIMED_SECONDS); every other leftover is seen as dead at once.
+    # period (searcher.study.liveness.UNCLAIMED_SECONDS); every other leftover is seen as dead at once.
     left_running = [t.number for t in load(tmp_path, "crash").get_trials(states=(TrialState.RUNNING,))
                     if "worker" in t.user_attrs]
     code, out, err = run([sys.executable, "-m", "searcher", "status", "--name", "crash"], tmp_path, "dead")
@@ -147,7 +147,7 @@ def test_signal_stops_the_search_and_the_next_run_retrains(tmp_path: Path, signu
 
 def test_a_second_signal_ends_the_process_at_once() -> None:
     """The first signal asks for a graceful stop; a second, while that runs, ends the process now."""
-    code = ("import signal; from searcher.search import _Signals; s = _Signals(); "
+    code = ("import signal; from searcher.study.worker import _Signals; s = _Signals(); "
             "s(signal.SIGINT, None); print('first: graceful'); s(signal.SIGINT, None); print('not reached')")
     done = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, timeout=60)
     assert done.returncode == 130 and done.stdout.split() == ["first:", "graceful"]
@@ -187,7 +187,7 @@ def _measured_training_bytes(arch, batch_size: int) -> int:
     """
     import torch
 
-    from searcher.build import build
+    from searcher.model.build import build
 
     model = build(arch).train()
     params = {p.untyped_storage().data_ptr() for p in model.parameters()}
@@ -213,7 +213,7 @@ def _measured_training_bytes(arch, batch_size: int) -> int:
 @pytest.mark.slow
 @pytest.mark.parametrize("space_name", ["mcu", "workstation", "classic"])
 def test_training_memory_estimate_covers_what_autograd_saves(shipped, space_name: str) -> None:
-    from searcher.cost import cost, training_bytes
+    from searcher.core.cost import cost, training_bytes
 
     space = shipped[space_name]
     rng = random.Random(7)
@@ -227,13 +227,13 @@ def test_training_memory_estimate_covers_what_autograd_saves(shipped, space_name
 def test_memory_cap_rejects_candidates_without_building_them(tmp_path: Path, monkeypatch) -> None:
     import importlib
 
-    from searcher.cost import cost, training_bytes
+    from searcher.core.cost import cost, training_bytes
 
     space_file = write_space(tmp_path)
     estimates = sorted(training_bytes(cost(a), 128) for a in load_space(space_file).enumerate(8))
     cap = estimates[len(estimates) // 4]  # three quarters of the space is over it
     built: list[str] = []
-    module = importlib.import_module("searcher.build")
+    module = importlib.import_module("searcher.model.build")
     real_build = module.build
     monkeypatch.setattr(module, "build", lambda arch: built.append(arch.to_text()) or real_build(arch))
     outcome = search_here(tmp_path, space_file, "memory", trials=2, memory_cap=cap)
@@ -285,7 +285,7 @@ def test_storage_password_never_printed(tmp_path: Path) -> None:
 ])
 @pytest.mark.parametrize("password", ["s3cret-word", "p%40ss:w/rd", "Q9"])
 def test_redact_hides_every_password(text: str, password: str) -> None:
-    from searcher.study import redact
+    from searcher.study.storage import redact
 
     shown = redact(text.format(pw=password))
     assert password not in shown
@@ -307,8 +307,8 @@ def _running_trial(study, worker: dict | None, **attrs):
 
 
 def test_recovery_fails_and_requeues_only_the_dead() -> None:
-    from searcher.liveness import STALE_SECONDS, recover_stale
-    from searcher.records import record_of
+    from searcher.study.liveness import STALE_SECONDS, recover_stale
+    from searcher.results.records import record_of
 
     optuna.logging.set_verbosity(optuna.logging.WARNING)
     study = optuna.create_study(sampler=optuna.samplers.RandomSampler(seed=1), direction="maximize")
@@ -343,8 +343,8 @@ def test_recovery_fails_and_requeues_only_the_dead() -> None:
 def test_recovery_queues_a_retry_that_a_kill_kept_from_being_queued() -> None:
     """Killed after a trial was ended as interrupted (or put off for time) but before its copy was
     queued: the next look queues it, once, and never for a retry or a trial whose copy exists."""
-    from searcher.liveness import recover_stale
-    from searcher.records import NOT_STARTED, RECORD
+    from searcher.study.liveness import recover_stale
+    from searcher.results.records import NOT_STARTED, RECORD
 
     optuna.logging.set_verbosity(optuna.logging.WARNING)
     study = optuna.create_study(sampler=optuna.samplers.RandomSampler(seed=1), direction="maximize")
@@ -370,7 +370,7 @@ def test_recovery_queues_a_retry_that_a_kill_kept_from_being_queued() -> None:
 
 
 def test_unclaimed_trial_counts_as_dead_only_after_the_grace_period() -> None:
-    from searcher.liveness import UNCLAIMED_SECONDS, is_dead
+    from searcher.study.liveness import UNCLAIMED_SECONDS, is_dead
 
     optuna.logging.set_verbosity(optuna.logging.WARNING)
     study = optuna.create_study()
@@ -385,7 +385,7 @@ def test_unclaimed_trial_counts_as_dead_only_after_the_grace_period() -> None:
 def test_unclaimed_trial_of_a_local_run_is_dead_at_once_when_no_other_worker_lives(tmp_path: Path) -> None:
     """A kill inside Optuna's ask leaves an unclaimed trial; on the run's own store, with every other
     registered worker gone, it is recovered without waiting for the grace period."""
-    from searcher.liveness import Registry, recover_stale
+    from searcher.study.liveness import Registry, recover_stale
 
     optuna.logging.set_verbosity(optuna.logging.WARNING)
     study = optuna.create_study()
@@ -409,9 +409,9 @@ def test_running_search_recovers_what_dies_later(tmp_path: Path, monkeypatch) ->
     study = worker.study
     assert worker._should_stop(0) == ""  # the first look, as at start: nothing to recover yet
     study.ask()  # a worker asked and was killed before it could claim the trial
-    monkeypatch.setattr(searcher.liveness, "UNCLAIMED_SECONDS", 0.0)  # its grace period has passed
+    monkeypatch.setattr(searcher.study.liveness, "UNCLAIMED_SECONDS", 0.0)  # its grace period has passed
     assert worker._should_stop(0) == "" and study.trials[0].state == TrialState.RUNNING  # not looked yet
-    monkeypatch.setattr(searcher.search, "RECOVER_SECONDS", 0.0)  # time for the next look
+    monkeypatch.setattr(searcher.study.worker, "RECOVER_SECONDS", 0.0)  # time for the next look
     assert worker._should_stop(0) == ""
     assert study.trials[0].state == TrialState.FAIL
 
@@ -431,7 +431,7 @@ def test_sqlite_store_commits_without_waiting_and_flushes_after_each_spent_candi
     candidate that cost training time."""
     import dataclasses
 
-    from searcher.study import disk_flush, open_storage
+    from searcher.study.storage import disk_flush, open_storage
 
     url = f"sqlite:///{tmp_path / 'study.db'}"
     storage = open_storage(url)
@@ -467,7 +467,7 @@ def test_journal_store_is_repaired_after_a_power_cut(tmp_path: Path, cut: float 
     with everything that was complete."""
     import shutil
 
-    from searcher.study import open_storage
+    from searcher.study.storage import open_storage
 
     optuna.logging.set_verbosity(optuna.logging.WARNING)
     path = tmp_path / "study.journal"

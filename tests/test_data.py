@@ -13,7 +13,7 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 from PIL import Image
 
-from searcher.data import (
+from searcher.data.load import (
     fingerprint_of,
     load_arrays,
     load_dataset,
@@ -21,7 +21,7 @@ from searcher.data import (
     save_split,
     split_indices,
 )
-from searcher.demo_data import CLASS_NAMES, make_demo
+from searcher.data.demo import CLASS_NAMES, make_demo
 from searcher.errors import SearcherError
 
 
@@ -102,7 +102,7 @@ def test_npz_float_data_in_unit_range_and_in_0_255(tmp_path, caplog):
     np.savez(tmp_path / "unit.npz", x=unit, y=_labelled(rng))
     np.savez(tmp_path / "wide.npz", x=unit * 255, y=_labelled(rng))
     a = load_arrays(str(tmp_path / "unit.npz"), (1, 4, 4))[0]
-    with caplog.at_level(logging.INFO, logger="searcher.data"):
+    with caplog.at_level(logging.INFO, logger="searcher.data.load"):
         b = load_arrays(str(tmp_path / "wide.npz"), (1, 4, 4))[0]
     assert torch.allclose(a[:, 0], torch.from_numpy(unit)) and torch.allclose(a, b, atol=1e-6)
     assert "0–255" in caplog.text

@@ -11,7 +11,7 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 
 from searcher.errors import SearcherError
-from searcher.pareto import (
+from searcher.results.pareto import (
     accuracy_per_doubling,
     check_caps,
     feasible_mask,

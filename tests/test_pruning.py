@@ -13,7 +13,7 @@ import optuna
 import pytest
 
 from searchkit import memory_worker
-from searcher.study import make_pruner, pruning_epochs
+from searcher.study.storage import make_pruner, pruning_epochs
 
 
 def _study() -> optuna.Study:

@@ -18,8 +18,8 @@ import pytest
 from plotly.offline import get_plotlyjs
 
 from searcher.errors import SearcherError
-from searcher.pareto import COST_COLUMNS, feasible_mask, pareto_mask
-from searcher.report import broken_caps_label, build_figures, front_table_html, render_html, write_report
+from searcher.results.pareto import COST_COLUMNS, feasible_mask, pareto_mask
+from searcher.results.report import broken_caps_label, build_figures, front_table_html, render_html, write_report
 
 CAPS = {"params": 20_000, "macs": 2_000_000, "peak_activation_bytes": 65_536}
 STATES = ["trained", "stopped_early", "rejected", "failed", "interrupted", "running"]

@@ -18,8 +18,8 @@ import pytest
 import torch
 
 import searcher
-from searcher.export import ExportSettings, export
-from searcher.runner import SearchSettings, search
+from searcher.ship.export import ExportSettings, export
+from searcher.study.run import SearchSettings, search
 
 DIGITS_SPACE = (Path(__file__).parent.parent / "examples" / "digits.toml").read_text()
 
@@ -42,7 +42,7 @@ def digits_run(tmp_path_factory):
     folder = tmp_path_factory.mktemp("digits")
     npz, space_file = write_digits(folder)
     built: list[str] = []
-    import searcher.build as build_module
+    import searcher.model.build as build_module
 
     real_build = build_module.build
 

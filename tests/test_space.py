@@ -10,9 +10,10 @@ from collections import Counter
 import optuna
 import pytest
 
-from searcher.arch import Arch
+from searcher.core.arch import Arch
 from searcher.errors import SearcherError
-from searcher.space import Space, builtin_space, load_space
+from searcher.core.space import Space
+from searcher.core.space_file import builtin_space, load_space
 
 from conftest import SHIPPED_SPACES, TINY_SPACE
 
@@ -214,7 +215,7 @@ def test_reading_a_space_never_imports_torch():
     import subprocess
     import sys
 
-    code = ("import sys; from searcher.space import load_space, builtin_space; from searcher.census_report import "
+    code = ("import sys; from searcher.core.space_file import load_space, builtin_space; from searcher.core.census_report import "
             "run_census; run_census(load_space(builtin_space('classic'))); print('torch' in sys.modules)")
     out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True).stdout
     assert out.strip() == "False"
@@ -237,7 +238,7 @@ def test_a_built_wheel_carries_the_shipped_spaces(tmp_path):
         assert sorted(Path(n).name for n in archive.namelist() if n.startswith("searcher/spaces/")) == shipped
         archive.extractall(tmp_path / "site")
     check = subprocess.run(
-        [sys.executable, "-c", "import searcher, sys; from searcher.space import builtin_space; "
+        [sys.executable, "-c", "import searcher, sys; from searcher.core.space_file import builtin_space; "
          "p = builtin_space('mcu'); searcher.load_space(p); print(p)"],
         cwd=tmp_path, capture_output=True, text=True, env={**os.environ, "PYTHONPATH": str(tmp_path / "site")})
     assert check.returncode == 0, check.stderr[-2000:]

@@ -12,8 +12,8 @@ import pytest
 from optuna.trial import TrialState
 
 from searchkit import load, memory_worker, pretend_training, run, search_args, search_here, write_space
-from searcher.records import FAILED, INTERRUPTED, NOT_STARTED, QUEUED, STOPPED, TRAINED, record_of
-from searcher.space import load_space
+from searcher.results.records import FAILED, INTERRUPTED, NOT_STARTED, QUEUED, STOPPED, TRAINED, record_of
+from searcher.core.space_file import load_space
 
 TRAIN_IMAGES = 1000
 
@@ -38,7 +38,7 @@ def test_candidate_predicted_to_overrun_is_not_started_and_queued(tmp_path: Path
     left = 60.0
     worker = memory_worker(tmp_path, deadline=time.time() + left)
     space = load_space(write_space(tmp_path))
-    from searcher.cost import cost
+    from searcher.core.cost import cost
 
     macs = sorted(cost(a).macs for a in space.enumerate(8))
     threshold = macs[len(macs) // 2]  # candidates above the median are predicted to need more than is left
@@ -72,7 +72,7 @@ def test_prediction_for_a_measured_candidate_is_not_shorter_than_it_took(tmp_pat
     """A candidate like the one just trained is predicted to take at least as long: the guard errs long."""
     import torch
 
-    from searcher.data import Split
+    from searcher.data.load import Split
 
     g = torch.Generator().manual_seed(0)
     split = Split(torch.rand(TRAIN_IMAGES, 1, 16, 16, generator=g), torch.randint(0, 8, (TRAIN_IMAGES,), generator=g))

@@ -8,9 +8,9 @@ import pytest
 import torch
 from torch import nn
 
-from searcher import train
+from searcher.model import train
 from searcher.errors import SearcherError
-from searcher.train import (
+from searcher.model.train import (
     OPTIMIZERS,
     SCHEDULES,
     Diverged,

@@ -7,7 +7,7 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 
 from searcher.errors import SearcherError
-from searcher.units import format_bytes, format_count, parse_bytes, parse_count
+from searcher.core.units import format_bytes, format_count, parse_bytes, parse_count
 
 
 @pytest.mark.parametrize(

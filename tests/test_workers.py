@@ -16,15 +16,15 @@ import pandas as pd
 import pytest
 from optuna.trial import TrialState
 
-from searcher.records import (
+from searcher.results.records import (
     DUPLICATE, FAILED, INTERRUPTED, NOT_STARTED, REJECTED, SPENT, STOPPED, TRAINED, counts, record_of, trained_count,
     trials_frame,
 )
-from searcher.study import open_study
+from searcher.study.storage import open_study
 from searchkit import memory_worker, pretend_training
 
 TRIALS = 3  # trained candidates asked for: small, yet enough that workers overlap
-# the Optuna state each searcher state must be told with (see searcher.search's module docstring)
+# the Optuna state each searcher state must be told with (see searcher.study.worker's module docstring)
 OPTUNA_STATE = {TRAINED: TrialState.COMPLETE, REJECTED: TrialState.COMPLETE, STOPPED: TrialState.PRUNED,
                 FAILED: TrialState.FAIL, DUPLICATE: TrialState.FAIL, NOT_STARTED: TrialState.FAIL,
                 INTERRUPTED: TrialState.FAIL}

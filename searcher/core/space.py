@@ -12,12 +12,10 @@ import functools
 import math
 import random
 from dataclasses import dataclass, field
-from pathlib import Path
 from typing import Any, Callable, Iterator, Sequence
 
-from searcher.arch import POOLS, Arch, Conv, Head, Pool, Stage
-from searcher.budget import Budget
-from searcher.errors import SearcherError, one_of
+from searcher.core.arch import POOLS, Arch, Conv, Head, Pool, Stage
+from searcher.core.budget import Budget
 
 # A picker returns one of ``options`` for the decision ``name``. ``weights`` (relative counts of
 # configurations behind each option) make random draws uniform over whole configurations;
@@ -131,6 +129,7 @@ class Space:
     def random(self, seed: int | random.Random, classes: int | None = None) -> Arch:
         """A seeded draw, uniform over whole configurations.
 
+        >>> from searcher.core.space_file import builtin_space, load_space
         >>> space = load_space(builtin_space("mcu"))
         >>> space.random(0) == space.random(0)
         True
@@ -184,27 +183,3 @@ class Space:
 
 def _span(bounds: tuple[int, int]) -> list[int]:
     return list(range(bounds[0], bounds[1] + 1))
-
-
-def builtin_space(name: str) -> Path:
-    """Path of a space shipped with the package (``mcu``, ``workstation``, ``classic``).
-
-    ``searcher/spaces`` links to the repository's ``spaces/`` folder; a wheel holds copies.
-    """
-    here = Path(__file__).parent / "spaces"
-    path = here / f"{name}.toml"
-    if not path.exists():
-        names = sorted(p.stem for p in here.glob("*.toml"))
-        raise SearcherError(f"no built-in space {name!r}; use {one_of(name, names)}")
-    return path
-
-
-def load_space(path: str | Path) -> Space:
-    """Read and check a space file; raises :class:`SearcherError` naming the file and key.
-
-    >>> load_space(builtin_space("classic")).padding
-    'valid'
-    """
-    from searcher.space_file import read_space
-
-    return read_space(Path(path))

@@ -6,10 +6,10 @@ from typing import Any
 
 from torch import nn
 
-from searcher.arch import Arch
-from searcher.budget import CAP_COLUMNS, show_cost
-from searcher.cost import cost
-from searcher.study import redact
+from searcher.core.arch import Arch
+from searcher.core.budget import CAP_COLUMNS, show_cost
+from searcher.core.cost import cost
+from searcher.study.storage import redact
 
 CAUTIONS = """\
 ## Cautions

@@ -16,7 +16,7 @@ from pathlib import Path
 import numpy as np
 import torch
 
-from searcher.demo_data import make_demo
+from searcher.data.demo import make_demo
 from searcher.errors import SearcherError
 
 log = logging.getLogger(__name__)

@@ -19,10 +19,10 @@ import plotly.io as pio
 from plotly.offline import get_plotlyjs
 
 from searcher.errors import SearcherError
-from searcher.records import counts as trial_counts, distinct_rows
+from searcher.results.records import counts as trial_counts, distinct_rows
 from searcher.runs import write_atomic
-from searcher.pareto import COST_COLUMNS, SCORED_STATES, check_caps, feasible_mask, front, front_steps
-from searcher.units import format_bytes, format_count
+from searcher.results.pareto import COST_COLUMNS, SCORED_STATES, check_caps, feasible_mask, front, front_steps
+from searcher.core.units import format_bytes, format_count
 
 log = logging.getLogger(__name__)
 

@@ -4,9 +4,9 @@ from __future__ import annotations
 
 from dataclasses import dataclass, replace
 
-from searcher.cost import PRECISION_BYTES, Cost, check_precision
+from searcher.core.cost import PRECISION_BYTES, Cost, check_precision
 from searcher.errors import SearcherError, one_of
-from searcher.units import format_bytes, format_count, parse_bytes, parse_count
+from searcher.core.units import format_bytes, format_count, parse_bytes, parse_count
 
 # budget key in a space file / CLI option -> (field of Budget, column of the cost totals)
 CAP_KEYS = {

@@ -6,11 +6,11 @@ import tomllib
 from pathlib import Path
 from typing import Any
 
-from searcher.arch import ACTIVATIONS, FEATURES, PADDINGS
-from searcher.budget import Budget
-from searcher.cost import conv_output_size
+from searcher.core.arch import ACTIVATIONS, FEATURES, PADDINGS
+from searcher.core.budget import Budget
+from searcher.core.cost import conv_output_size
 from searcher.errors import SearcherError, one_of
-from searcher.space import POOL_CHOICES, SECTIONS, Space
+from searcher.core.space import POOL_CHOICES, SECTIONS, Space
 
 
 class _Reader:
@@ -132,7 +132,7 @@ def read_space_text(text: str, file: str, default_name: str = "space") -> Space:
     if hidden_count[1] > 2:
         raise r.fail("head.hidden", f"allows at most 2 hidden dense layers, got {list(hidden_count)}")
     train = r.get("train", {})
-    from searcher.train_settings import TrainSettings
+    from searcher.core.train_settings import TrainSettings
 
     TrainSettings.from_dict(train, file=file)  # checked now, used later
 
@@ -223,3 +223,25 @@ def _check_shrink(space: Space) -> None:
                 f"lower `stages.count` to at most {i}, or use smaller kernels, 'same' padding or 'none' pooling",
                 file=space.file, key="stages.count",
             )
+
+
+def builtin_space(name: str) -> Path:
+    """Path of a space shipped with the package (``mcu``, ``workstation``, ``classic``).
+
+    ``searcher/spaces`` links to the repository's ``spaces/`` folder; a wheel holds copies.
+    """
+    here = Path(__file__).parent.parent / "spaces"
+    path = here / f"{name}.toml"
+    if not path.exists():
+        names = sorted(p.stem for p in here.glob("*.toml"))
+        raise SearcherError(f"no built-in space {name!r}; use {one_of(name, names)}")
+    return path
+
+
+def load_space(path: str | Path) -> Space:
+    """Read and check a space file; raises :class:`SearcherError` naming the file and key.
+
+    >>> load_space(builtin_space("classic")).padding
+    'valid'
+    """
+    return read_space(Path(path))

@@ -18,9 +18,9 @@ from typing import Any
 
 import numpy as np
 
-from searcher.arch import Arch, parse_arch
-from searcher.budget import Budget
-from searcher.cost import cost
+from searcher.core.arch import Arch, parse_arch
+from searcher.core.budget import Budget
+from searcher.core.cost import cost
 from searcher.errors import SearcherError
 from searcher.runs import RUNS
 
@@ -51,7 +51,7 @@ class ExportOutcome:
 
 def choose(frame: Any, budget: Budget, settings: ExportSettings, classes: int) -> tuple[Arch, str]:
     """The candidate to export and how it was chosen."""
-    from searcher.results import best_row
+    from searcher.results.tables import best_row
 
     if settings.arch:
         return parse_arch(settings.arch), "given on the command line"
@@ -73,12 +73,12 @@ def export(settings: ExportSettings) -> ExportOutcome:
     """Retrain on train+validation, test once on the held-out split, and write runs/<name>/export/."""
     import torch
 
-    from searcher.build import build
-    from searcher.data import load_dataset, load_split
-    from searcher.records import trials_frame
-    from searcher.runner import RunData
-    from searcher.study import open_run
-    from searcher.train import TrainSettings, evaluate, train_candidate
+    from searcher.model.build import build
+    from searcher.data.load import load_dataset, load_split
+    from searcher.results.records import trials_frame
+    from searcher.study.run import RunData
+    from searcher.study.storage import open_run
+    from searcher.model.train import TrainSettings, evaluate, train_candidate
 
     folder, study, config = open_run(settings.name, settings.storage, settings.root)
     budget = Budget(**config.budget)
@@ -121,7 +121,7 @@ def export(settings: ExportSettings) -> ExportOutcome:
 
 def _space_shape(config: Any) -> tuple[int, int, int]:
     """The input shape the run loaded its data at: the space's largest resolution."""
-    from searcher.space_file import read_space_text
+    from searcher.core.space_file import read_space_text
 
     space = read_space_text(config.space_text, f"<space of run, {config.space_name}>")
     largest = max(space.resolutions, key=lambda r: r[0] * r[1])
@@ -139,7 +139,7 @@ def _write(outcome: ExportOutcome, model: Any, extra: dict) -> None:
     """Write into a fresh folder beside export/, then swap it in, so export/ is never half-written."""
     import torch
 
-    from searcher.model_card import model_card, standalone_source
+    from searcher.ship.model_card import model_card, standalone_source
 
     target = outcome.folder
     temp = target.with_name(f".export-{int(time.time() * 1000)}")

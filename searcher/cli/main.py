@@ -7,7 +7,7 @@ import logging
 import sys
 from pathlib import Path
 
-from searcher.budget import BUDGET_KEYS, Budget, show_cost
+from searcher.core.budget import BUDGET_KEYS, Budget, show_cost
 from searcher.errors import SearcherError
 
 log = logging.getLogger("searcher")
@@ -15,7 +15,7 @@ log = logging.getLogger("searcher")
 
 def _space_path(text: str) -> Path:
     """A space is a file path or the name of a shipped space (mcu, workstation, classic)."""
-    from searcher.space import builtin_space
+    from searcher.core.space_file import builtin_space
 
     path = Path(text)
     return path if path.suffix == ".toml" or path.exists() else builtin_space(text)
@@ -39,9 +39,9 @@ def _budget(args: argparse.Namespace) -> dict:
 def cmd_cost(args: argparse.Namespace) -> int:
     import pandas as pd
 
-    from searcher.arch import parse_arch
-    from searcher.cost import cost
-    from searcher.space import load_space
+    from searcher.core.arch import parse_arch
+    from searcher.core.cost import cost
+    from searcher.core.space_file import load_space
 
     text = Path(args.arch).read_text() if args.arch.endswith(".json") else args.arch
     arch = parse_arch(text)
@@ -63,9 +63,9 @@ def cmd_cost(args: argparse.Namespace) -> int:
 
 
 def cmd_census(args: argparse.Namespace) -> int:
-    from searcher.census_report import CensusSettings, run_census, summary_lines, write_census
+    from searcher.core.census_report import CensusSettings, run_census, summary_lines, write_census
     from searcher.runs import run_folder
-    from searcher.space import load_space
+    from searcher.core.space_file import load_space
 
     space = load_space(_space_path(args.space))
     folder = run_folder(args.name or f"census-{space.name}")
@@ -100,7 +100,7 @@ def make_parser() -> argparse.ArgumentParser:
     _add_budget(p)
     p.set_defaults(run=cmd_census)
 
-    from searcher.cli_search import add_search_commands
+    from searcher.cli.run_commands import add_search_commands
 
     add_search_commands(sub, _space_path, _add_budget, _budget)
     return parser

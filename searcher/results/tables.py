@@ -7,8 +7,8 @@ from typing import Any
 
 import pandas as pd
 
-from searcher.budget import CAP_COLUMNS, Budget
-from searcher.records import TRAINED, distinct_rows
+from searcher.core.budget import CAP_COLUMNS, Budget
+from searcher.results.records import TRAINED, distinct_rows
 from searcher.runs import write_atomic
 
 
@@ -25,7 +25,7 @@ def best_row(frame: pd.DataFrame, budget: Budget) -> dict[str, Any] | None:
 
 def fronts(frame: pd.DataFrame, budget: Budget) -> pd.DataFrame:
     """The accuracy-vs-cost front for every cost, stacked, with a `cost` column naming it."""
-    from searcher.pareto import front
+    from searcher.results.pareto import front
 
     parts = []
     for column in CAP_COLUMNS:
@@ -36,7 +36,7 @@ def fronts(frame: pd.DataFrame, budget: Budget) -> pd.DataFrame:
 
 def write_results(folder: Path, frame: pd.DataFrame, budget: Budget, *, title: str, notes: list[str]) -> list[Path]:
     """trials.csv, front.csv and report.html, each written whole or not at all."""
-    from searcher.report import write_report
+    from searcher.results.report import write_report
 
     folder.mkdir(parents=True, exist_ok=True)
     written = [write_atomic(folder / "trials.csv", frame.to_csv(index=False)),

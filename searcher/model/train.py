@@ -20,7 +20,7 @@ from torch import nn
 from torch.optim.lr_scheduler import LRScheduler
 
 
-from searcher.train_settings import OPTIMIZERS, SCHEDULES, TrainSettings  # noqa: F401  (re-exported)
+from searcher.core.train_settings import OPTIMIZERS, SCHEDULES, TrainSettings  # noqa: F401  (re-exported)
 
 log = logging.getLogger(__name__)
 

@@ -17,7 +17,7 @@ import optuna
 import pandas as pd
 from optuna.trial import TrialState
 
-from searcher.arch import Arch
+from searcher.core.arch import Arch
 
 RECORD = "searcher"
 HEARTBEAT = "heartbeat"

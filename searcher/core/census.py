@@ -3,7 +3,7 @@
 Candidates are handled as a *batch*: one numpy array per named decision of
 :meth:`Space.assemble`. Small spaces are enumerated exactly; larger ones are sampled uniformly
 over configurations with a seeded generator. Costs come from the same per-layer formulas as
-:func:`searcher.cost.cost`, applied to whole arrays at once; ``tests/test_census.py`` checks the
+:func:`searcher.core.cost.cost`, applied to whole arrays at once; ``tests/test_census.py`` checks the
 two agree candidate by candidate.
 """
 
@@ -13,10 +13,10 @@ from typing import Any
 
 import numpy as np
 
-from searcher.arch import Arch
-from searcher.budget import Budget
-from searcher.cost import PRECISION_BYTES, conv_macs, conv_output_size, conv_params, dense_params, weight_bytes
-from searcher.space import Space, _span
+from searcher.core.arch import Arch
+from searcher.core.budget import Budget
+from searcher.core.cost import PRECISION_BYTES, conv_macs, conv_output_size, conv_params, dense_params, weight_bytes
+from searcher.core.space import Space, _span
 
 Batch = dict[str, np.ndarray]
 

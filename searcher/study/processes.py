@@ -2,7 +2,7 @@
 
 Each worker is a separate process (torch's threads and the GIL make processes the way to use
 several cores) that opens the same study; TPE's constant liar and the running-architecture check
-in :mod:`searcher.search` keep them from training the same candidate at once.
+in :mod:`searcher.study.worker` keep them from training the same candidate at once.
 """
 
 from __future__ import annotations
@@ -18,8 +18,8 @@ log = logging.getLogger(__name__)
 
 def _worker_main(settings: Any, budget: Any, train: Any, index: int, threads: int, deadline: float | None,
                  parent: int, queue: Any) -> None:
-    from searcher.runner import prepare, run_worker
-    from searcher.study import open_study
+    from searcher.study.run import prepare, run_worker
+    from searcher.study.storage import open_study
 
     os.setpgrp()  # out of the terminal's group: a Ctrl-C reaches the parent only, which passes it on once
     logging.basicConfig(level=logging.INFO, format="%(message)s")
@@ -34,8 +34,8 @@ def _worker_main(settings: Any, budget: Any, train: Any, index: int, threads: in
 
 def run_workers(run: Any, deadline: float | None) -> tuple[str, int, list[str]]:
     """Start ``run.settings.workers`` processes, pass signals on, and wait for all of them."""
-    from searcher.runner import _status
-    from searcher.search import exit_at_once
+    from searcher.study.run import _status
+    from searcher.study.worker import exit_at_once
 
     count = run.settings.workers
     threads = max(1, (os.cpu_count() or 1) // count)

@@ -1,15 +1,13 @@
-"""Architecture -> torch.nn.Module, layer for layer as :mod:`searcher.cost` counts it."""
+"""Architecture -> torch.nn.Module, layer for layer as :mod:`searcher.core.cost` counts it."""
 
 from __future__ import annotations
 
-import sys
-import types
 from collections import OrderedDict
 
 import torch  # noqa: F401  (used by the docstring example)
 from torch import nn
 
-from searcher.arch import Arch
+from searcher.core.arch import Arch
 
 ACTIVATION_MODULES = {
     "relu": nn.ReLU,
@@ -23,7 +21,7 @@ ACTIVATION_MODULES = {
 def build(arch: Arch) -> nn.Sequential:
     """Build the network; module names match the rows of ``cost(arch).layers``.
 
-    >>> from searcher.arch import parse_arch
+    >>> from searcher.core.arch import parse_arch
     >>> model = build(parse_arch("1x28x28_c8k3-m2_gap-o10_relu"))
     >>> model(torch.zeros(1, 1, 28, 28)).shape
     torch.Size([1, 10])
@@ -65,18 +63,7 @@ def build(arch: Arch) -> nn.Sequential:
 
 def _feature_map(arch: Arch) -> tuple[int, ...]:
     """Shape of the last stage's output, from the analytic walk (one source of truth)."""
-    from searcher.cost import cost
+    from searcher.core.cost import cost
 
     last_spatial = [layer for layer in cost(arch).layers if len(layer.output_shape) == 3]
     return last_spatial[-1].output_shape if last_spatial else arch.input_shape
-
-
-class _CallableModule(types.ModuleType):
-    """Importing this module rebinds the package attribute ``searcher.build`` from the
-    function to the module, so the module itself answers ``searcher.build(arch)``."""
-
-    def __call__(self, arch: Arch) -> nn.Sequential:
-        return build(arch)
-
-
-sys.modules[__name__].__class__ = _CallableModule

@@ -9,10 +9,10 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 
-from searcher.arch import Arch
-from searcher.budget import CAP_COLUMNS, Budget, show_cost
-from searcher.census import batch_costs, decode, enumerate_all, multiplicity, sample
-from searcher.space import Space
+from searcher.core.arch import Arch
+from searcher.core.budget import CAP_COLUMNS, Budget, show_cost
+from searcher.core.census import batch_costs, decode, enumerate_all, multiplicity, sample
+from searcher.core.space import Space
 
 
 @dataclass(frozen=True)
@@ -75,7 +75,7 @@ class Census:
 def run_census(space: Space, budget: Budget | None = None, settings: CensusSettings = CensusSettings()) -> Census:
     """Count what fits, exactly for small spaces and by a seeded sample otherwise.
 
-    >>> from searcher.space import load_space, builtin_space
+    >>> from searcher.core.space_file import load_space, builtin_space
     >>> census = run_census(load_space(builtin_space("classic")))
     >>> census.exact, census.size
     (True, 96)

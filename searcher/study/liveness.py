@@ -21,7 +21,7 @@ from pathlib import Path
 import optuna
 from optuna.trial import TrialState
 
-from searcher.records import HEARTBEAT, INTERRUPTED, NOT_STARTED, RECORD, record_of, worker_id
+from searcher.results.records import HEARTBEAT, INTERRUPTED, NOT_STARTED, RECORD, record_of, worker_id
 
 log = logging.getLogger(__name__)
 

@@ -1,6 +1,6 @@
 """Proxy-training settings: the `[train]` table of a space file, checked in one place.
 
-Kept apart from :mod:`searcher.train` so that reading a space file never imports torch.
+Kept apart from :mod:`searcher.model.train` so that reading a space file never imports torch.
 """
 
 from __future__ import annotations

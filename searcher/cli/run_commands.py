@@ -12,14 +12,14 @@ log = logging.getLogger("searcher")
 
 
 def _open_run(args: argparse.Namespace):
-    from searcher.study import open_run
+    from searcher.study.storage import open_run
 
     return open_run(args.name, args.storage)
 
 
 def cmd_search(args: argparse.Namespace, space_path, budget_of) -> int:
-    from searcher.runner import SearchSettings, search
-    from searcher.units import parse_bytes
+    from searcher.study.run import SearchSettings, search
+    from searcher.core.units import parse_bytes
 
     train = {k: v for k, v in (("epochs", args.epochs), ("train_fraction", args.train_fraction),
                                ("batch_size", args.batch_size)) if v is not None}
@@ -59,9 +59,9 @@ def _print_reasons(folder: Path) -> None:
 
 
 def cmd_report(args: argparse.Namespace) -> int:
-    from searcher.budget import Budget
-    from searcher.records import trials_frame
-    from searcher.results import write_results
+    from searcher.core.budget import Budget
+    from searcher.results.records import trials_frame
+    from searcher.results.tables import write_results
 
     folder, study, config = _open_run(args)
     frame = trials_frame(study)
@@ -73,11 +73,11 @@ def cmd_report(args: argparse.Namespace) -> int:
 
 
 def cmd_status(args: argparse.Namespace) -> int:
-    from searcher.budget import Budget
-    from searcher.liveness import Registry, is_dead
-    from searcher.records import HEARTBEAT, counts, trials_frame
-    from searcher.results import best_row
-    from searcher.study import redact
+    from searcher.core.budget import Budget
+    from searcher.study.liveness import Registry, is_dead
+    from searcher.results.records import HEARTBEAT, counts, trials_frame
+    from searcher.results.tables import best_row
+    from searcher.study.storage import redact
 
     import socket
 
@@ -107,7 +107,7 @@ def cmd_status(args: argparse.Namespace) -> int:
 
 
 def cmd_export(args: argparse.Namespace) -> int:
-    from searcher.export import ExportSettings, export
+    from searcher.ship.export import ExportSettings, export
 
     outcome = export(ExportSettings(name=args.name, trial=args.trial, arch=args.arch, epochs=args.epochs,
                                     storage=args.storage))

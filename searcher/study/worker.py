@@ -1,8 +1,8 @@
 """The search: propose a candidate, gate it on the budget, train the survivors, tell Optuna.
 
 One worker runs :func:`work` on one study; ``--workers N`` starts N of them as processes
-(see :mod:`searcher.workers`). Every trial is told to Optuna as soon as it ends, so a kill
-loses at most the candidate in flight, and :mod:`searcher.liveness` re-queues that one.
+(see :mod:`searcher.study.processes`). Every trial is told to Optuna as soon as it ends, so a kill
+loses at most the candidate in flight, and :mod:`searcher.study.liveness` re-queues that one.
 
 How each proposal ends (the ``state`` column of trials.csv):
 
@@ -35,16 +35,16 @@ from typing import Any, Callable
 import optuna
 from optuna.trial import TrialState
 
-from searcher.arch import Arch
-from searcher.budget import Budget, Violation
-from searcher.cost import cost, training_bytes
-from searcher.liveness import Registry, claim, queue_retry, recover_stale
-from searcher.records import (
+from searcher.core.arch import Arch
+from searcher.core.budget import Budget, Violation
+from searcher.core.cost import cost, training_bytes
+from searcher.study.liveness import Registry, claim, queue_retry, recover_stale
+from searcher.results.records import (
     DUPLICATE, FAILED, HEARTBEAT, INTERRUPTED, NOT_STARTED, RECORD, REJECTED, SPENT, STOPPED, TRAINED,
     counts_of, describe, finished_state, record_of,
 )
-from searcher.space import Space
-from searcher.study import OBJECTIVES, pruning_epochs
+from searcher.core.space import Space
+from searcher.study.storage import OBJECTIVES, pruning_epochs
 
 log = logging.getLogger(__name__)
 
@@ -236,8 +236,8 @@ class Search:
 
     # -- training one candidate ---------------------------------------------------------------
     def _train(self, trial: optuna.Trial, arch: Arch, totals: dict, record: dict) -> str:
-        from searcher.build import build
-        from searcher.train import Diverged, OutOfTime, TrainProgress, train_candidate
+        from searcher.model.build import build
+        from searcher.model.train import Diverged, OutOfTime, TrainProgress, train_candidate
 
         beat = _Heartbeat(self.study, trial._trial_id)
         progress = TrainProgress()
@@ -420,7 +420,7 @@ class FinishedTrials:
             self.outcomes.setdefault(record["arch"], _Outcome(number, optuna_state, values, record))
 
     def counts(self) -> dict[str, int]:
-        """As :func:`searcher.records.counts` gives for the finished trials."""
+        """As :func:`searcher.results.records.counts` gives for the finished trials."""
         return counts_of(self.by_state, self.repeats)
 
 

@@ -23,7 +23,7 @@ from __future__ import annotations
 import math
 from dataclasses import dataclass
 
-from searcher.arch import Arch
+from searcher.core.arch import Arch
 from searcher.errors import SearcherError
 
 PRECISION_BYTES = {"fp32": 4, "fp16": 2, "int8": 1}
@@ -145,7 +145,7 @@ def check_precision(precision: str, key: str = "precision") -> str:
 def cost(arch: Arch, activation_precision: str = "fp32") -> Cost:
     """Walk the architecture layer by layer and count everything exactly.
 
-    >>> from searcher.arch import parse_arch
+    >>> from searcher.core.arch import parse_arch
     >>> cost(parse_arch("1x32x32_c6k5v-a2_c16k5v-a2_flat-d120-d84-o10_tanh")).params
     61706
     """

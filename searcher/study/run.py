@@ -1,6 +1,6 @@
 """`searcher search` as a library call: check every input, open the run, run the workers, write results.
 
->>> from searcher.runner import SearchSettings, search   # doctest: +SKIP
+>>> from searcher.study.run import SearchSettings, search   # doctest: +SKIP
 >>> outcome = search(SearchSettings(name="demo", space="spaces/mcu.toml", trials=10))  # doctest: +SKIP
 """
 
@@ -16,11 +16,12 @@ from dataclasses import asdict, dataclass, field
 from pathlib import Path
 from typing import Any
 
-from searcher.budget import Budget
+from searcher.core.budget import Budget
 from searcher.errors import SearcherError, one_of
 from searcher.runs import RUNS, run_folder, write_atomic
-from searcher.space import Space, load_space
-from searcher.study import OBJECTIVES, SAMPLERS, RunConfig, disk_flush, open_study, redact, storage_kind, storage_url
+from searcher.core.space import Space
+from searcher.core.space_file import load_space
+from searcher.study.storage import OBJECTIVES, SAMPLERS, RunConfig, disk_flush, open_study, redact, storage_kind, storage_url
 
 log = logging.getLogger(__name__)
 
@@ -85,7 +86,7 @@ class RunData:
     def at(self, input_shape: tuple[int, int, int]) -> Any:
         from dataclasses import replace
 
-        from searcher.data import Split, resize_images
+        from searcher.data.load import Split, resize_images
 
         size = tuple(input_shape[1:])
         if size not in self._sizes:
@@ -114,8 +115,8 @@ def prepare(settings: SearchSettings, budget: dict | None = None, train: dict | 
 
     ``budget`` and ``train`` override keys of the space file's [budget] and [train] tables.
     """
-    from searcher.data import load_dataset, load_split
-    from searcher.train_settings import TrainSettings
+    from searcher.data.load import load_dataset, load_split
+    from searcher.core.train_settings import TrainSettings
 
     settings.check()
     space = load_space(settings.space)
@@ -142,11 +143,11 @@ def prepare(settings: SearchSettings, budget: dict | None = None, train: dict | 
 
 def _check_something_fits(space: Space, budget: Budget, classes: int) -> None:
     """Refuse a search in which nothing can fit, and say how far off the caps are."""
-    from searcher.census_report import CensusSettings, run_census
+    from searcher.core.census_report import CensusSettings, run_census
 
     census = run_census(space, budget, CensusSettings(samples=20_000, exact_limit=50_000, classes=classes))
     if not census.fits.any():
-        from searcher.budget import show_cost
+        from searcher.core.budget import show_cost
 
         lowest = "; ".join(f"{c} ≥ {show_cost(c, census.lowest[c])} (cap {show_cost(c, v)})"
                            for c, v in budget.caps().items())
@@ -169,7 +170,7 @@ def search(settings: SearchSettings, budget: dict | None = None, train: dict | N
     """Run (or continue) the search ``settings.name`` and write its results."""
     run = prepare(settings, budget, train)
     study, _ = open_study(settings.name, run.url, run.config, settings.sampler)
-    from searcher.data import save_split
+    from searcher.data.load import save_split
 
     run.folder.mkdir(parents=True, exist_ok=True)
     save_split(run.folder / "split.npz", run.data.dataset.indices, run.data.dataset.fingerprint)
@@ -184,7 +185,7 @@ def search(settings: SearchSettings, budget: dict | None = None, train: dict | N
         tally = run_worker(run, study, deadline, index=0)
         stopped_by, status, proposals = tally.stopped_by, _status(tally.stopped_by), tally.proposals
     else:
-        from searcher.workers import run_workers
+        from searcher.study.processes import run_workers
 
         stopped_by, status, proposals = run_workers(run, deadline)
     return finish(run, study, stopped_by, status, proposals, time.time() - started)
@@ -193,7 +194,7 @@ def search(settings: SearchSettings, budget: dict | None = None, train: dict | N
 def run_worker(run: PreparedRun, study: Any, deadline: float | None, index: int,
                threads: int | None = None, parent_pid: int | None = None) -> Any:
     """One worker's loop over the study, with progress lines on the log."""
-    from searcher.search import Search, WorkerPlan
+    from searcher.study.worker import Search, WorkerPlan
 
     s = run.settings
     plan = WorkerPlan(
@@ -257,8 +258,8 @@ def _status(stopped_by: str) -> int:
 def finish(run: PreparedRun, study: Any, stopped_by: str, status: int, proposals: list[str],
            seconds: float) -> SearchOutcome:
     """Write trials.csv and report.html and sum the run up."""
-    from searcher.records import counts, trials_frame
-    from searcher.results import best_row, write_results
+    from searcher.results.records import counts, trials_frame
+    from searcher.results.tables import best_row, write_results
 
     frame = trials_frame(study)
     write_results(run.folder, frame, run.budget, title=f"searcher run {run.settings.name}",

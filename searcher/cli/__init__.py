@@ -1,0 +1,1 @@
+"""The command line: a thin shell that parses, calls the library, and prints."""

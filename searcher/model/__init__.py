@@ -1,0 +1,1 @@
+"""torch: an architecture built as a module, and its short proxy training."""
