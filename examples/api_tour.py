@@ -7,9 +7,7 @@ It makes a short run named `api-tour` under runs/ (a few minutes on 2 cores).
 from pathlib import Path
 
 import searcher
-from searcher.core.census_report import run_census, summary_lines
-from searcher.ship.export import ExportSettings, export
-from searcher.study.run import SearchSettings, search
+from searcher.core.census_report import summary_lines
 
 SPACE = Path(__file__).with_name("stamp_inspection.toml")
 
@@ -23,11 +21,12 @@ print(arch, f"params {cost.params:,}, MACs {cost.macs:,}, peak activation {cost.
 print("breaks:", [str(v) for v in space.budget.check(space.budget.totals(cost))] or "nothing")
 
 # What fits, without training.
-print("\n".join(summary_lines(run_census(space))))
+print("\n".join(summary_lines(searcher.census(space))))
 
 # A short search on the built-in demo data, then the export of the best fitting candidate.
-outcome = search(SearchSettings(name="api-tour", space=str(SPACE), data="demo", trials=6, minutes=4))
+outcome = searcher.search(searcher.SearchSettings(name="api-tour", space=str(SPACE), data="demo", trials=6, minutes=4))
 print("counts:", outcome.counts, "best:", outcome.best and outcome.best["arch"])
 if outcome.best:
-    exported = export(ExportSettings(name="api-tour"))
+    exported = searcher.export(searcher.ExportSettings(name="api-tour"))
+    print("\n".join(searcher.status("api-tour").lines()))
     print(f"test accuracy {exported.test_accuracy:.4f}; files in {exported.folder}")

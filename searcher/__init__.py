@@ -27,9 +27,11 @@ from searcher.errors import SearcherError
 # public name -> the module that defines it; loaded on first use because it loads torch
 _LATE = {
     "build": "searcher.model.build",
-    "search": "searcher.study.run",
+    "search": "searcher.study.search_run",
     "SearchSettings": "searcher.study.run",
-    "SearchOutcome": "searcher.study.run",
+    "SearchOutcome": "searcher.study.search_run",
+    "status": "searcher.results.status",
+    "report": "searcher.results.status",
     "export": "searcher.ship.export",
     "ExportSettings": "searcher.ship.export",
     "ExportOutcome": "searcher.ship.export",

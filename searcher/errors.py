@@ -2,6 +2,8 @@
 
 from __future__ import annotations
 
+import difflib
+
 
 class SearcherError(ValueError):
     """A mistake in the user's input: a space file, a budget, a data set, an option.
@@ -22,8 +24,6 @@ class SearcherError(ValueError):
 
 def closest(word: str, options: list[str] | tuple[str, ...]) -> str | None:
     """The option nearest to a misspelt word, for 'did you mean' hints."""
-    import difflib
-
     found = difflib.get_close_matches(word, list(options), n=1, cutoff=0.5)
     return found[0] if found else None
 

@@ -26,7 +26,8 @@ ROOT = Path(__file__).resolve().parent.parent
 sys.path.insert(0, str(ROOT / "tests"))
 
 from searcher.core.budget import Budget  # noqa: E402
-from searcher.study.run import SearchSettings, prepare, search  # noqa: E402
+from searcher.study.run import SearchSettings, prepare  # noqa: E402
+from searcher.study.search_run import search  # noqa: E402
 from searcher.study.storage import open_study, storage_url  # noqa: E402
 
 
@@ -35,7 +36,7 @@ def overhead(folder: Path, store: str) -> None:
 
     ``store``: "sqlite" (the default store) or "journal" (Optuna's journal file), the same search on each.
     """
-    import searcher.study.run as runner
+    import searcher.study.search_run as runner
 
     spent: dict[str, float] = {}
 

@@ -2,7 +2,7 @@
 
 Run: python tests/bench_storage.py [--rejected N] [--trained N] [--rounds R]
 
-Through the real worker path (``Search._should_stop`` then ``Search._one``: ask, claim, suggest,
+Through the real worker path (``Worker.stop_reason`` then ``Worker.step``: ask, claim, suggest,
 budget gate, constraint, record, tell), on the mcu space:
 
 * rejected — a budget nothing fits, so every candidate ends at the gate;
@@ -19,7 +19,6 @@ warm-up pass on each store first keeps lazy imports and first calls out of the f
 from __future__ import annotations
 
 import argparse
-import importlib
 import logging
 import math
 import multiprocessing
@@ -30,7 +29,6 @@ import time
 import uuid
 from dataclasses import replace
 from pathlib import Path
-from types import SimpleNamespace
 
 HERE = Path(__file__).resolve().parent
 sys.path.insert(0, str(HERE.parent))  # run from a checkout without installing
@@ -40,58 +38,54 @@ import numpy as np  # noqa: E402
 import optuna  # noqa: E402
 
 from searcher.core.budget import Budget  # noqa: E402
-from searcher.study.worker import Search, WorkerPlan  # noqa: E402
+from searcher.study.early_stop import make_pruner  # noqa: E402
+from searcher.study.worker import Worker, WorkerPlan  # noqa: E402
 from searcher.core.space_file import load_space  # noqa: E402
 from searcher.study.storage import RunConfig, make_sampler, open_study  # noqa: E402
 from searcher.model.train import TrainResult, TrainSettings  # noqa: E402
 
 SPACE = HERE.parent / "spaces" / "mcu.toml"
 CLASSES = 10
+EPOCHS = 3
 NOTHING_FITS = Budget(max_params=1)
 EVERYTHING_FITS = Budget(max_params=10**12, max_macs=10**15, max_activation_bytes=10**12, max_weight_bytes=10**12)
 
 
-def stand_in_training(model, train_images, train_labels, val_images, val_labels, settings, *, seed, on_epoch=None,
-                      **_) -> TrainResult:
-    """Report made-up accuracies for each epoch at once, as the real trainer reports real ones."""
+def stand_in_training(arch, *, seed, on_epoch, deadline, progress) -> TrainResult:
+    """A Trainer (searcher.study.worker) that reports made-up accuracies for each epoch at once, as the
+    real trainer reports real ones: the loop's bookkeeping is all that is timed."""
     rng = np.random.default_rng(seed)
-    history = []
-    for epoch in range(settings.epochs):
-        history.append(float(rng.uniform(0.1, 0.9)))
-        if on_epoch is not None:
-            on_epoch(epoch, history[-1])
-    return TrainResult(val_accuracy=history[-1], history=tuple(history), epochs=settings.epochs, seconds=0.0,
-                       images_per_second=0.0, train_loss=0.0, train_size=0)
+    for epoch in range(EPOCHS):
+        progress.history.append(float(rng.uniform(0.1, 0.9)))
+        on_epoch(epoch, progress.history[-1])
+    return progress.result()
 
 
-def make_search(url: str | None, name: str, budget: Budget, worker: int = 0) -> Search:
+def make_search(url: str | None, name: str, budget: Budget, worker: int = 0) -> Worker:
     """A worker on a fresh study; ``url`` None: Optuna's in-memory storage, the baseline."""
     space = load_space(SPACE)
     budget = replace(space.budget, **{k: v for k, v in budget.__dict__.items() if k.startswith("max_")})
-    settings = TrainSettings(epochs=3)
+    settings = TrainSettings(epochs=EPOCHS)
     config = RunConfig(space_name=space.name, space_text=SPACE.read_text(), budget=budget.__dict__,
                        train=settings.__dict__, data="bench", data_fingerprint="bench", classes=CLASSES,
                        class_names=tuple(map(str, range(CLASSES))), objective="accuracy", seed=0)
     if url is None:
         study = optuna.create_study(study_name=name, sampler=make_sampler("tpe", "accuracy", worker),
-                                    pruner=optuna.pruners.SuccessiveHalvingPruner(min_resource=2, reduction_factor=3))
+                                    pruner=make_pruner(EPOCHS))
     else:
         study, _ = open_study(name, url, config, "tpe", worker=worker)
-    split = SimpleNamespace(train=SimpleNamespace(images=None, labels=np.zeros(100)),
-                            val=SimpleNamespace(images=None, labels=None))
-    data = SimpleNamespace(num_classes=CLASSES, train=split.train, at=lambda shape: split)
-    plan = WorkerPlan(trials=10**9, deadline=None, candidate_seconds=None, memory_cap=10**15, threads=None,
-                      log_path=None, seed=worker)
-    return Search(study, space, budget, settings, data, "accuracy", plan)
+    plan = WorkerPlan(trials=10**9, deadline=None, candidate_seconds=None, memory_cap=10**15, images_per_epoch=100,
+                      seed=worker)
+    return Worker(study, space, budget, settings, "accuracy", CLASSES, plan, stand_in_training)
 
 
-def timed_loop(search: Search, count: int) -> tuple[float, dict[str, int]]:
+def timed_loop(search: Worker, count: int) -> tuple[float, dict[str, int]]:
     """Seconds per candidate over ``count`` turns of the worker loop, and how the candidates ended."""
     states: dict[str, int] = {}
     started = time.perf_counter()
     for _ in range(count):
-        search._should_stop(0)
-        state = search._one()
+        search.stop_reason()
+        state = search.step()
         states[state] = states.get(state, 0) + 1
     return (time.perf_counter() - started) / count, states
 
@@ -142,10 +136,6 @@ def main() -> None:
     args = parser.parse_args()
     logging.basicConfig(level=logging.WARNING)
     optuna.logging.set_verbosity(optuna.logging.WARNING)
-    import searcher.model.train
-
-    searcher.model.train.train_candidate = stand_in_training
-    importlib.import_module("searcher.model.build").build = lambda arch: None
     print(f"{os.cpu_count()} cores; load average before: {' '.join(f'{x:.2f}' for x in os.getloadavg())}")
 
     from conftest import POSTGRES_ENV, ThrowawayPostgres

@@ -29,7 +29,7 @@ sys.path.insert(0, str(Path(__file__).resolve().parents[1]))  # run from a check
 
 from test_train import small_net  # noqa: E402  (this folder is on the path when run as a script)
 
-from searcher.model.train import TrainSettings, keep_freed_memory, train_candidate  # noqa: E402
+from searcher.model.train import TrainSettings, train_candidate  # noqa: E402
 
 CANDIDATES = {"small": (8, 16, 32), "medium": (16, 32, 64), "large": (32, 64, 128)}
 CLASSES = 10
@@ -87,9 +87,7 @@ def main() -> None:
     parser.add_argument("--rounds", type=int, default=3, help="interleaved repeats; the best of each counts")
     parser.add_argument("--images", type=int, default=2048, help="training images (32×32×1, random)")
     parser.add_argument("--epochs", type=int, default=2)
-    parser.add_argument("--keep-freed-memory", action="store_true", help="call keep_freed_memory() first (all sides)")
     args = parser.parse_args()
-    kept = args.keep_freed_memory and keep_freed_memory()
 
     torch.set_num_threads(args.threads)
     generator = torch.Generator().manual_seed(0)
@@ -118,7 +116,7 @@ def main() -> None:
         print(f"round {round_index + 1}/{args.rounds} done", flush=True)
 
     print(f"\ntorch {torch.__version__}, {args.threads} thread(s), {args.images} images 32×32×1, batch 128, "
-          f"{args.epochs} epochs, {args.rounds} interleaved rounds, freed memory kept: {kept}")
+          f"{args.epochs} epochs, {args.rounds} interleaved rounds")
     print("training images per second, best round of each; ratio = proxy / DataLoader, best rounds and median of "
           "the per-round ratios")
     header = "".join(f"{side:>{width}}" for side, width in SIDES.items())

@@ -29,7 +29,7 @@ from conftest import TINY_SPACE  # noqa: E402
 import optuna  # noqa: E402
 
 from searcher.results.records import SPENT, record_of  # noqa: E402
-from searcher.study.run import SearchSettings, search  # noqa: E402
+from searcher import SearchSettings, search  # noqa: E402
 from searcher.study.storage import open_study  # noqa: E402
 
 # The tests' tiny space made uniform: 30,720 candidates of two stages on 16x16 input, every one within

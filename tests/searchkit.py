@@ -16,7 +16,6 @@ import subprocess
 import sys
 import time
 from pathlib import Path
-from types import SimpleNamespace
 from typing import Any, Iterator
 
 import optuna
@@ -141,46 +140,69 @@ def in_process() -> Iterator[None]:
             signal.signal(s, handler)
 
 
-def search_here(folder: Path, space: Path, name: str, train: dict | None = None, **fields: Any):
-    """runner.search in this process on the demo data, runs under folder/runs; returns its outcome."""
-    from searcher.study.run import SearchSettings, search
+def search_here(folder: Path, space: Path, name: str, train: dict | None = None, trainer_for: Any = None,
+                **fields: Any):
+    """searcher.search in this process on the demo data, runs under folder/runs; returns its outcome."""
+    from searcher.study.run import SearchSettings
+    from searcher.study.search_run import search
 
     settings = SearchSettings(name=name, space=str(space), root=folder / "runs", **fields)
     with in_process():
-        return search(settings, train={"epochs": 1, "train_fraction": 0.2, **(train or {})})
+        return search(settings, train={"epochs": 1, "train_fraction": 0.2, **(train or {})}, trainer_for=trainer_for)
 
 
-def memory_worker(tmp_path: Path, *, trials: int = 100, deadline: float | None = None, data: Any = None,
-                  epochs: int = 2, study: optuna.Study | None = None):
-    """A Search on an in-memory study (or on ``study``), whose steps a test can call one by one.
+def recording_trainer(built: list[str]):
+    """A trainer_for that trains with torch and notes every architecture it was handed (that is, built)."""
+    from searcher.study.launch import TorchTrainer
 
-    Unless real data is given, only the training-set size and class count are there: enough for
-    every step but training itself (see :func:`pretend_training`).
+    def make(run, threads):
+        inner = TorchTrainer.for_run(run, threads)
+
+        def train(arch, **given):
+            built.append(arch.to_text())
+            return inner(arch, **given)
+
+        return train
+
+    return make
+
+
+class StandIn:
+    """A Trainer that trains nothing: it notes the seed of each candidate it is handed (the trial number,
+    in a run seeded 0: searcher.study.storage.trial_seed) and reports ``accuracy`` after every epoch,
+    through the loop's own early-stop callback. Having processed no images, it leaves the measured
+    throughput alone."""
+
+    def __init__(self, epochs: int, accuracy: float = 0.5, stop_early: bool = False) -> None:
+        self.epochs, self.accuracy, self.stop_early = epochs, accuracy, stop_early
+        self.started: list[int] = []
+
+    def __call__(self, arch, *, seed, on_epoch, deadline, progress):
+        self.started.append(seed)
+        for epoch in range(self.epochs):
+            progress.history.append(self.accuracy)
+            on_epoch(epoch, self.accuracy)
+            if self.stop_early:
+                raise optuna.TrialPruned()  # as the loop's own policy would after a poor epoch
+        return progress.result()
+
+
+def memory_worker(tmp_path: Path, *, trials: int = 100, deadline: float | None = None, trainer: Any = None,
+                  epochs: int = 2, study: optuna.Study | None = None, train_images: int = 1000):
+    """A Worker on an in-memory study (or on ``study``), whose steps a test can take one by one.
+
+    Unless a trainer is given, a :class:`StandIn` trains (``worker.trainer.started`` lists what it was handed).
     """
     from searcher.core.budget import Budget
-    from searcher.study.worker import Search, WorkerPlan
     from searcher.core.space_file import load_space
     from searcher.core.train_settings import TrainSettings
+    from searcher.study.worker import Worker, WorkerPlan
 
     optuna.logging.set_verbosity(optuna.logging.WARNING)
     if study is None:
         study = optuna.create_study(directions=["maximize"], sampler=optuna.samplers.RandomSampler(seed=3))
-    data = data or SimpleNamespace(num_classes=8, train=SimpleNamespace(labels=[0] * 1000))
-    plan = WorkerPlan(trials=trials, deadline=deadline, candidate_seconds=None, memory_cap=2**40, threads=1,
-                      log_path=None)
     settings = TrainSettings(epochs=epochs, train_fraction=0.5, batch_size=16)
-    return Search(study, load_space(write_space(tmp_path)), Budget(), settings, data, "accuracy", plan)
-
-
-def pretend_training(worker, started: list[int], state: str = "trained"):
-    """Stands in for Search._train: records which trials would train and tells them as ``state``
-    (trained at accuracy 0.5, or stopped early) without training."""
-    from optuna.trial import TrialState
-
-    def train(trial, arch, totals, record):
-        started.append(trial.number)
-        if state == "trained":
-            return worker._finish(trial, record, state, "stand-in", values=[0.5])
-        return worker._finish(trial, record, state, "stand-in", optuna_state=TrialState.PRUNED)
-
-    return train
+    plan = WorkerPlan(trials=trials, deadline=deadline, candidate_seconds=None, memory_cap=2**40,
+                      images_per_epoch=round(settings.train_fraction * train_images))
+    return Worker(study, load_space(write_space(tmp_path)), Budget(), settings, "accuracy", 8, plan,
+                  trainer or StandIn(epochs))

@@ -125,3 +125,32 @@ def test_monte_carlo_interval_contains_the_exact_fraction(shipped):
     exact_depth = exact.depth_width().sum(axis=1) / exact.depth_width().values.sum()
     sampled_depth = runs[0].depth_width().sum(axis=1) / runs[0].depth_width().values.sum()
     assert np.allclose(exact_depth.values, sampled_depth.reindex(exact_depth.index).values, atol=0.02)
+
+
+def test_a_new_decision_is_counted_everywhere_or_refused_loudly(write_space):
+    """The space's decisions are written once (Space.decisions): size, enumeration, random draws and the
+    census all read that list, so a new cost-free decision multiplies each alike, and a new costing one
+    the census cannot count yet stops it instead of giving wrong shares."""
+    import dataclasses
+    import functools
+
+    from searcher.core.space import Decision
+
+    base = load_space(write_space())
+
+    @dataclasses.dataclass(frozen=True)
+    class Extra(Space):
+        costs_extra: bool = False
+
+        @functools.cached_property
+        def decisions(self):
+            return (*Space.decisions.func(self), Decision("extra", (1, 2, 3), costs=self.costs_extra))
+
+    free = Extra(**{f.name: getattr(base, f.name) for f in dataclasses.fields(Space)})
+    assert free.size() == 3 * base.size()
+    assert sum(1 for _ in free.enumerate()) == free.size()
+    assert multiplicity(free) == 3 * multiplicity(base)
+    assert run_census(free).size == free.size() and run_census(free).fraction == run_census(base).fraction
+    costing = dataclasses.replace(free, costs_extra=True)
+    with pytest.raises(NotImplementedError, match="extra"):
+        run_census(costing)

@@ -19,13 +19,13 @@ import pytest
 from optuna.trial import TrialState
 
 from searchkit import (
-    SAFETY_SECONDS, child_env, db_path, finished, load, memory_worker, pretend_training, run, search_args, search_here, start,
-    stop, trial_rows, training_now, wait_until_training, write_space,
+    SAFETY_SECONDS, child_env, db_path, finished, load, memory_worker, recording_trainer, run, search_args, search_here,
+    start, stop, trial_rows, training_now, wait_until_training, write_space,
 )
 import searcher.study.liveness
 import searcher.study.worker
 from searcher.core.budget import Budget
-from searcher.results.records import INTERRUPTED, REJECTED, counts, trained_count, trials_frame
+from searcher.results.records import INTERRUPTED, REJECTED, SPENT, counts, distinct_rows, trials_frame
 from searcher.core.space_file import load_space
 
 
@@ -90,7 +90,7 @@ def test_killed_search_resumes_without_losing_work(tmp_path: Path) -> None:
     c = counts(frame)
     assert sum(c[s] for s in c if s not in ("tried", "repeats")) == len(frame), shown
     assert c["running"] <= 1, shown  # at most one unclaimed trial, from the last kill
-    assert trained_count(frame) == trials, shown  # the final run went on to the end, and one worker no further
+    assert distinct_rows(frame)["state"].isin(SPENT).sum() == trials, shown  # the final run went on to the end, and one worker no further
     by_number = {t.number: t for t in study.get_trials(deepcopy=False)}
     retries = _retries(study)
     for original, copies in retries.items():
@@ -147,7 +147,7 @@ def test_signal_stops_the_search_and_the_next_run_retrains(tmp_path: Path, signu
 
 def test_a_second_signal_ends_the_process_at_once() -> None:
     """The first signal asks for a graceful stop; a second, while that runs, ends the process now."""
-    code = ("import signal; from searcher.study.worker import _Signals; s = _Signals(); "
+    code = ("import signal; from searcher.study.ending import StopSignals; s = StopSignals(); "
             "s(signal.SIGINT, None); print('first: graceful'); s(signal.SIGINT, None); print('not reached')")
     done = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, timeout=60)
     assert done.returncode == 130 and done.stdout.split() == ["first:", "graceful"]
@@ -224,19 +224,14 @@ def test_training_memory_estimate_covers_what_autograd_saves(shipped, space_name
         assert estimate >= _measured_training_bytes(arch, batch), arch.to_text()
 
 
-def test_memory_cap_rejects_candidates_without_building_them(tmp_path: Path, monkeypatch) -> None:
-    import importlib
-
+def test_memory_cap_rejects_candidates_without_building_them(tmp_path: Path) -> None:
     from searcher.core.cost import cost, training_bytes
 
     space_file = write_space(tmp_path)
     estimates = sorted(training_bytes(cost(a), 128) for a in load_space(space_file).enumerate(8))
     cap = estimates[len(estimates) // 4]  # three quarters of the space is over it
     built: list[str] = []
-    module = importlib.import_module("searcher.model.build")
-    real_build = module.build
-    monkeypatch.setattr(module, "build", lambda arch: built.append(arch.to_text()) or real_build(arch))
-    outcome = search_here(tmp_path, space_file, "memory", trials=2, memory_cap=cap)
+    outcome = search_here(tmp_path, space_file, "memory", trials=2, memory_cap=cap, trainer_for=recording_trainer(built))
     frame = pd.read_csv(outcome.folder / "trials.csv", keep_default_na=False)
     rejected = frame[frame.state == REJECTED]
     assert len(rejected) > 0, "the seeded sampler's first proposals all fit; lower the cap"
@@ -285,7 +280,7 @@ def test_storage_password_never_printed(tmp_path: Path) -> None:
 ])
 @pytest.mark.parametrize("password", ["s3cret-word", "p%40ss:w/rd", "Q9"])
 def test_redact_hides_every_password(text: str, password: str) -> None:
-    from searcher.study.storage import redact
+    from searcher.redact import redact
 
     shown = redact(text.format(pw=password))
     assert password not in shown
@@ -407,12 +402,12 @@ def test_running_search_recovers_what_dies_later(tmp_path: Path, monkeypatch) ->
     """Not only at start: a trial whose worker died after this one started is cleaned up while it runs."""
     worker = memory_worker(tmp_path, trials=5)
     study = worker.study
-    assert worker._should_stop(0) == ""  # the first look, as at start: nothing to recover yet
+    assert worker.stop_reason() is None  # the first look, as at start: nothing to recover yet
     study.ask()  # a worker asked and was killed before it could claim the trial
     monkeypatch.setattr(searcher.study.liveness, "UNCLAIMED_SECONDS", 0.0)  # its grace period has passed
-    assert worker._should_stop(0) == "" and study.trials[0].state == TrialState.RUNNING  # not looked yet
+    assert worker.stop_reason() is None and study.trials[0].state == TrialState.RUNNING  # not looked yet
     monkeypatch.setattr(searcher.study.worker, "RECOVER_SECONDS", 0.0)  # time for the next look
-    assert worker._should_stop(0) == ""
+    assert worker.stop_reason() is None
     assert study.trials[0].state == TrialState.FAIL
 
 
@@ -420,9 +415,9 @@ def test_unclaimed_leftover_does_not_count_as_in_flight(tmp_path: Path) -> None:
     worker = memory_worker(tmp_path, trials=1)
     study = worker.study
     study.ask()  # killed before the claim: no owner, not yet called dead
-    assert worker._should_stop(0) == ""  # the one candidate asked for is still to train
+    assert worker.stop_reason() is None  # the one candidate asked for is still to train
     _running_trial(study, {"host": socket.gethostname(), "pid": os.getppid(), "started": time.time()})
-    assert worker._should_stop(0) == "1 candidates trained"  # a live worker's candidate does count
+    assert worker.stop_reason().text == "1 candidates trained"  # a live worker's candidate does count
 
 
 def test_sqlite_store_commits_without_waiting_and_flushes_after_each_spent_candidate(tmp_path: Path) -> None:
@@ -449,14 +444,12 @@ def test_sqlite_store_commits_without_waiting_and_flushes_after_each_spent_candi
     worker = memory_worker(tmp_path)
     flushes: list[int] = []
     worker.plan = dataclasses.replace(worker.plan, flush=lambda: flushes.append(len(worker.study.trials)))
-    started: list[int] = []
-    worker._train = pretend_training(worker, started)
     for _ in range(3):
-        worker._should_stop(0)
-        assert worker._one() == "trained"
-    assert flushes == [1, 2, 3] and started == [0, 1, 2]
+        worker.stop_reason()
+        assert worker.step() == "trained"
+    assert flushes == [1, 2, 3] and worker.trainer.started == [0, 1, 2]
     worker.budget = Budget(max_params=1)  # nothing fits: rejections are free to redo, so no flush
-    assert worker._one() == REJECTED and flushes == [1, 2, 3]
+    assert worker.step() == REJECTED and flushes == [1, 2, 3]
 
 
 @pytest.mark.parametrize("cut", [0.5, 0.97, None], ids=["torn half-way", "torn near the end", "zero-filled"])

@@ -1,4 +1,4 @@
-"""Pareto front, feasibility, hypervolume and accuracy-per-doubling arithmetic."""
+"""Pareto front, feasibility and accuracy-per-doubling arithmetic."""
 
 from __future__ import annotations
 
@@ -17,7 +17,6 @@ from searcher.results.pareto import (
     feasible_mask,
     front,
     front_steps,
-    hypervolume_2d,
     pareto_mask,
 )
 
@@ -99,39 +98,6 @@ def test_many_costs_in_several_blocks_match_brute_force() -> None:
     acc = rng.integers(0, 20, 600) / 20
     costs = rng.integers(1, 30, (600, 2)).astype(float)
     assert pareto_mask(acc, costs).tolist() == brute_force_mask(acc.tolist(), costs.tolist())
-
-
-def optuna_hypervolume(acc: np.ndarray, cost: np.ndarray, reference: tuple[float, float]) -> float:
-    # Source: Optuna 5.0, optuna/_hypervolume/wfg.py, compute_hypervolume(loss_vals,
-    # reference_point): it minimises every objective and needs each point <= the reference,
-    # so accuracy is negated and points outside the reference box are left out first.
-    from optuna._hypervolume import compute_hypervolume
-
-    inside = (acc >= reference[0]) & (cost <= reference[1])
-    losses = np.column_stack([-acc[inside], cost[inside]])
-    return compute_hypervolume(losses, np.array([-reference[0], reference[1]]))
-
-
-@pytest.mark.parametrize("seed", range(25))
-def test_hypervolume_matches_optuna_on_random_fronts(seed: int) -> None:
-    rng = np.random.default_rng(seed)
-    n = int(rng.integers(1, 40))
-    acc = rng.uniform(0, 1, n)
-    cost = rng.uniform(1, 100, n)
-    if seed % 3 == 0:  # coarse values: ties and duplicates
-        acc, cost = np.round(acc, 1), np.round(cost, -1) + 1
-    reference = (float(rng.uniform(0, 0.5)), float(rng.uniform(50, 120)))
-    assert hypervolume_2d(acc, cost, reference) == pytest.approx(optuna_hypervolume(acc, cost, reference))
-
-
-def test_hypervolume_by_hand_and_edges() -> None:
-    # Two points (acc .5, cost 1) and (acc .8, cost 3), reference (0, 4):
-    # strips [1,3) x .5 and [3,4) x .8 -> 1.0 + 0.8.
-    assert hypervolume_2d([0.5, 0.8], [1, 3], (0.0, 4.0)) == pytest.approx(1.8)
-    assert hypervolume_2d([], [], (0.0, 1.0)) == 0.0
-    assert hypervolume_2d([float("nan"), 0.2], [1, 9], (0.0, 4.0)) == 0.0  # one NaN, one outside
-    dominated_added = hypervolume_2d([0.5, 0.8, 0.4], [1, 3, 2], (0.0, 4.0))
-    assert dominated_added == pytest.approx(1.8)
 
 
 def test_accuracy_per_doubling() -> None:

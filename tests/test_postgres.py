@@ -16,7 +16,7 @@ import pytest
 
 from test_workers import check_study, finish, search_command, start, stored
 
-from searcher.study.storage import redact
+from searcher.redact import redact
 
 MACHINES = 3
 

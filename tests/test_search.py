@@ -18,8 +18,10 @@ import pytest
 import torch
 
 import searcher
+from searchkit import recording_trainer
 from searcher.ship.export import ExportSettings, export
-from searcher.study.run import SearchSettings, search
+from searcher.study.run import SearchSettings
+from searcher.study.search_run import search
 
 DIGITS_SPACE = (Path(__file__).parent.parent / "examples" / "digits.toml").read_text()
 
@@ -42,21 +44,9 @@ def digits_run(tmp_path_factory):
     folder = tmp_path_factory.mktemp("digits")
     npz, space_file = write_digits(folder)
     built: list[str] = []
-    import searcher.model.build as build_module
-
-    real_build = build_module.build
-
-    def recording_build(arch):
-        built.append(arch.to_text())
-        return real_build(arch)
-
-    build_module.build = recording_build
-    try:
-        settings = SearchSettings(name="digits", space=str(space_file), data=str(npz),
-                                  trials=8, seed=0, root=folder / "runs")
-        outcome = search(settings, {"max_params": 20_000})
-    finally:
-        build_module.build = real_build
+    settings = SearchSettings(name="digits", space=str(space_file), data=str(npz), trials=8, seed=0,
+                              root=folder / "runs")
+    outcome = search(settings, {"max_params": 20_000}, trainer_for=recording_trainer(built))
     exported = export(ExportSettings(name="digits", epochs=30, root=folder / "runs"))
     return outcome, exported, built, folder / "runs" / "digits"
 

@@ -119,11 +119,12 @@ def test_size_equals_enumeration_without_duplicates(write_space, name):
     texts = [arch.to_text() for arch in space.enumerate()]
     assert len(texts) == space.size()
     assert len(set(texts)) == len(texts)
-    # depth shares of the enumeration follow configs_by_depth (the rest multiplies every depth alike)
+    # depth shares of the enumeration follow the depth decision's weights (the rest multiplies every depth alike)
     depths = Counter(t.count("_") - 2 - t.endswith("_bn") for t in texts)
     lo, hi = space.stage_count
     shares = [depths[d] for d in range(lo, hi + 1)]
-    assert [s * space.configs_by_depth[0] for s in shares] == [c * shares[0] for c in space.configs_by_depth]
+    weights = space.weights(space.decision("stages"))
+    assert [s * weights[0] for s in shares] == [c * shares[0] for c in weights]
 
 
 def test_random_is_deterministic_and_inside_the_space(write_space):
@@ -182,8 +183,9 @@ def test_depth_frequencies_follow_configuration_shares(shipped):
     rng = random.Random(7)
     draws = 6_000
     seen = Counter(space.random(rng).depth for _ in range(draws))
-    total = sum(space.configs_by_depth)
-    for depth, configs in zip(range(space.stage_count[0], space.stage_count[1] + 1), space.configs_by_depth):
+    weights = space.weights(space.decision("stages"))
+    total = sum(weights)
+    for depth, configs in zip(range(space.stage_count[0], space.stage_count[1] + 1), weights):
         share = configs / total
         sd = (share * (1 - share) / draws) ** 0.5
         assert abs(seen[depth] / draws - share) < 4 * sd + 1e-9, (depth, seen[depth] / draws, share)

@@ -11,27 +11,28 @@ import pandas as pd
 import pytest
 from optuna.trial import TrialState
 
-from searchkit import load, memory_worker, pretend_training, run, search_args, search_here, write_space
+from searchkit import load, memory_worker, run, search_args, search_here, write_space
 from searcher.results.records import FAILED, INTERRUPTED, NOT_STARTED, QUEUED, STOPPED, TRAINED, record_of
 from searcher.core.space_file import load_space
+from searcher.core.train_settings import TrainSettings
+from searcher.study.launch import TorchTrainer
+from searcher.study.timebox import Throughput
 
 TRAIN_IMAGES = 1000
 
 
 def test_no_prediction_before_any_candidate_was_measured(tmp_path: Path) -> None:
     worker = memory_worker(tmp_path, deadline=time.time() + 1)
-    assert worker._predict_seconds(10**6) is None
-    started: list[int] = []
-    worker._train = pretend_training(worker, started)
-    assert worker._one() == TRAINED and started == [0]  # with nothing measured, a candidate may start
+    assert worker.predicted_seconds(10**6) is None
+    assert worker.step() == TRAINED and worker.trainer.started == [0]  # with nothing measured, a candidate may start
 
 
 def test_prediction_scales_with_macs_and_epochs(tmp_path: Path) -> None:
     short, long = memory_worker(tmp_path, epochs=1), memory_worker(tmp_path, epochs=3)
     for worker in (short, long):
-        worker.tally.train_seconds, worker.tally.mac_images = 2.0, 4e9
-    assert short._predict_seconds(2_000_000) == pytest.approx(2 * short._predict_seconds(1_000_000))
-    assert long._predict_seconds(1_000_000) == pytest.approx(3 * short._predict_seconds(1_000_000))
+        worker.tally.throughput = Throughput(mac_images=4e9, seconds=2.0)
+    assert short.predicted_seconds(2_000_000) == pytest.approx(2 * short.predicted_seconds(1_000_000))
+    assert long.predicted_seconds(1_000_000) == pytest.approx(3 * short.predicted_seconds(1_000_000))
 
 
 def test_candidate_predicted_to_overrun_is_not_started_and_queued(tmp_path: Path) -> None:
@@ -43,10 +44,9 @@ def test_candidate_predicted_to_overrun_is_not_started_and_queued(tmp_path: Path
     macs = sorted(cost(a).macs for a in space.enumerate(8))
     threshold = macs[len(macs) // 2]  # candidates above the median are predicted to need more than is left
     images = 2 * TRAIN_IMAGES * 0.5
-    worker.tally.train_seconds, worker.tally.mac_images = left, threshold * images
-    started: list[int] = []
-    worker._train = pretend_training(worker, started)
-    states = [worker._one() for _ in range(30)]
+    worker.tally.throughput = Throughput(mac_images=threshold * images, seconds=left)
+    started = worker.trainer.started
+    states = [worker.step() for _ in range(30)]
     trials = worker.study.get_trials(deepcopy=False)
     records = {t.number: record_of(t) for t in trials}
     assert NOT_STARTED in states and TRAINED in states
@@ -76,13 +76,13 @@ def test_prediction_for_a_measured_candidate_is_not_shorter_than_it_took(tmp_pat
 
     g = torch.Generator().manual_seed(0)
     split = Split(torch.rand(TRAIN_IMAGES, 1, 16, 16, generator=g), torch.randint(0, 8, (TRAIN_IMAGES,), generator=g))
-    data = SimpleNamespace(num_classes=8, train=split, val=Split(split.images[:64], split.labels[:64]))
+    data = SimpleNamespace(train=split, val=Split(split.images[:64], split.labels[:64]))
     data.at = lambda shape: data
-    worker = memory_worker(tmp_path, data=data)
-    assert worker._one() in (TRAINED, STOPPED)
+    worker = memory_worker(tmp_path, trainer=TorchTrainer(data, TrainSettings(epochs=2, train_fraction=0.5, batch_size=16)))
+    assert worker.step() in (TRAINED, STOPPED)
     trial = worker.study.trials[0]
     record = record_of(trial)
-    assert worker._predict_seconds(record["macs"]) >= record["train_seconds"] * 0.999  # seconds are rounded
+    assert worker.predicted_seconds(record["macs"]) >= record["train_seconds"] * 0.999  # seconds are rounded
 
 
 @pytest.mark.slow

@@ -18,7 +18,6 @@ from searcher.model.train import (
     TrainProgress,
     TrainSettings,
     evaluate,
-    keep_freed_memory,
     train_candidate,
 )
 
@@ -184,14 +183,6 @@ def test_every_optimizer_and_schedule_trains(toy, optimizer, schedule):
     result = train_candidate(model, *toy, settings, seed=0, threads=1)
     assert math.isfinite(result.train_loss) and result.epochs == 2
     assert all(not torch.equal(a, b) for a, b in zip(before, model.parameters(), strict=True))  # every layer moved
-
-
-def test_keep_freed_memory_on_glibc():
-    import platform
-
-    if platform.libc_ver()[0] != "glibc":
-        pytest.skip("the allocator setting exists for glibc only")
-    assert keep_freed_memory() is True
 
 
 def test_evaluate_matches_a_plain_forward_pass(toy):

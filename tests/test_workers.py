@@ -17,11 +17,11 @@ import pytest
 from optuna.trial import TrialState
 
 from searcher.results.records import (
-    DUPLICATE, FAILED, INTERRUPTED, NOT_STARTED, REJECTED, SPENT, STOPPED, TRAINED, counts, record_of, trained_count,
+    DUPLICATE, FAILED, INTERRUPTED, NOT_STARTED, REJECTED, SPENT, STOPPED, TRAINED, counts, distinct_rows, record_of,
     trials_frame,
 )
 from searcher.study.storage import open_study
-from searchkit import memory_worker, pretend_training
+from searchkit import StandIn, memory_worker
 
 TRIALS = 3  # trained candidates asked for: small, yet enough that workers overlap
 # the Optuna state each searcher state must be told with (see searcher.study.worker's module docstring)
@@ -76,7 +76,7 @@ def check_study(study: optuna.Study, csv: Path, workers: int, *, last_writer: bo
         assert drawn[row["arch"]] >= 2, f"duplicate {row['trial']} of an architecture no other trial drew"
 
     shown = frame[["trial", "arch", "state", "reason", "worker", "repeat_of"]].to_string()  # for a failure's message
-    assert TRIALS <= trained_count(frame) <= TRIALS + workers - 1, shown
+    assert TRIALS <= distinct_rows(frame)["state"].isin(SPENT).sum() <= TRIALS + workers - 1, shown
     assert frame["worker"].nunique() == workers, shown
 
     written = pd.read_csv(csv, keep_default_na=False)
@@ -99,22 +99,21 @@ def stored(name: str, url: str) -> optuna.Study:
 def test_an_architecture_another_worker_finished_meanwhile_is_reused_not_trained(tmp_path: Path, outcome) -> None:
     """Two workers, one study: the second read the study, then the first trained and finished the
     architecture the second draws next. The second takes that outcome over, whatever it was."""
-    first = memory_worker(tmp_path)
-    second = memory_worker(tmp_path, study=first.study)
-    started: list[int] = []
-    first._train, second._train = pretend_training(first, started, outcome), pretend_training(second, started, outcome)
-    assert second._should_stop(0) == ""  # the second worker's look at the study: nothing has finished
-    assert first._should_stop(0) == "" and first._one() == outcome and started == [0]
+    trainer = StandIn(epochs=2, stop_early=outcome == STOPPED)
+    first = memory_worker(tmp_path, trainer=trainer)
+    second = memory_worker(tmp_path, study=first.study, trainer=trainer)
+    assert second.stop_reason() is None  # the second worker's look at the study: nothing has finished
+    assert first.stop_reason() is None and first.step() == outcome and trainer.started == [0]
     first.study.enqueue_trial(first.study.trials[0].params)  # the second draws the same architecture
-    assert second._one() == "repeat" and started == [0]  # not trained again
+    assert second.step() == "repeat" and trainer.started == [0]  # not trained again
     repeat = first.study.trials[1]
     record = record_of(repeat)
     assert (record["repeat_of"], record["state"], record["train_seconds"]) == (0, outcome, 0.0)
     assert record["arch"] == record_of(first.study.trials[0])["arch"]
     assert repeat.state == OPTUNA_STATE[outcome]
-    for worker in (first, second):  # each worker's running digest agrees with the table read afresh
-        worker.finished.update(first.study)
-        assert worker.finished.counts() == counts(trials_frame(first.study))
+    for worker in (first, second):  # each worker's running ledger agrees with the table read afresh
+        worker.ledger.update(first.study)
+        assert worker.ledger.counts() == counts(trials_frame(first.study))
 
 
 @pytest.mark.slow

@@ -7,16 +7,22 @@ import logging
 import sys
 from pathlib import Path
 
+import pandas as pd
+
+from searcher.cli.run_commands import add_search_commands
+from searcher.core.arch import parse_arch
 from searcher.core.budget import BUDGET_KEYS, Budget, show_cost
+from searcher.core.census_report import CensusSettings, run_census, summary_lines, write_census
+from searcher.core.cost import cost
+from searcher.core.space_file import builtin_space, load_space
 from searcher.errors import SearcherError
+from searcher.runs import run_folder
 
 log = logging.getLogger("searcher")
 
 
 def _space_path(text: str) -> Path:
     """A space is a file path or the name of a shipped space (mcu, workstation, classic)."""
-    from searcher.core.space_file import builtin_space
-
     path = Path(text)
     return path if path.suffix == ".toml" or path.exists() else builtin_space(text)
 
@@ -37,12 +43,6 @@ def _budget(args: argparse.Namespace) -> dict:
 
 
 def cmd_cost(args: argparse.Namespace) -> int:
-    import pandas as pd
-
-    from searcher.core.arch import parse_arch
-    from searcher.core.cost import cost
-    from searcher.core.space_file import load_space
-
     text = Path(args.arch).read_text() if args.arch.endswith(".json") else args.arch
     arch = parse_arch(text)
     base = load_space(_space_path(args.space)).budget if args.space else Budget()
@@ -63,10 +63,6 @@ def cmd_cost(args: argparse.Namespace) -> int:
 
 
 def cmd_census(args: argparse.Namespace) -> int:
-    from searcher.core.census_report import CensusSettings, run_census, summary_lines, write_census
-    from searcher.runs import run_folder
-    from searcher.core.space_file import load_space
-
     space = load_space(_space_path(args.space))
     folder = run_folder(args.name or f"census-{space.name}")
     settings = CensusSettings(samples=args.samples, seed=args.seed, classes=args.classes)
@@ -99,8 +95,6 @@ def make_parser() -> argparse.ArgumentParser:
     p.add_argument("--classes", type=int, help="output classes (default: the space's input.classes)")
     _add_budget(p)
     p.set_defaults(run=cmd_census)
-
-    from searcher.cli.run_commands import add_search_commands
 
     add_search_commands(sub, _space_path, _add_budget, _budget)
     return parser

@@ -3,42 +3,31 @@
 from __future__ import annotations
 
 import argparse
-import logging
-import time
-from pathlib import Path
 
-
-log = logging.getLogger("searcher")
-
-
-def _open_run(args: argparse.Namespace):
-    from searcher.study.storage import open_run
-
-    return open_run(args.name, args.storage)
+import searcher
+from searcher.core.units import parse_bytes
 
 
 def cmd_search(args: argparse.Namespace, space_path, budget_of) -> int:
-    from searcher.study.run import SearchSettings, search
-    from searcher.core.units import parse_bytes
-
     train = {k: v for k, v in (("epochs", args.epochs), ("train_fraction", args.train_fraction),
                                ("batch_size", args.batch_size)) if v is not None}
-    settings = SearchSettings(
+    settings = searcher.SearchSettings(
         name=args.name, space=str(space_path(args.space)), data=args.data, trials=args.trials, minutes=args.minutes,
         objective=args.objective, sampler=args.sampler, storage=args.storage, workers=args.workers, seed=args.seed,
         candidate_minutes=args.candidate_minutes,
         memory_cap=parse_bytes(args.max_train_memory, key="--max-train-memory") if args.max_train_memory else None,
         skip_unreadable=args.skip_unreadable,
     )
-    outcome = search(settings, budget_of(args), train)
+    outcome = searcher.search(settings, budget_of(args), train)
     c = outcome.counts
-    print(f"run {args.name}: {outcome.stopped_by or 'done'} after {outcome.seconds / 60:.1f} min")
+    print(f"run {args.name}: {outcome.stop.text} after {outcome.seconds / 60:.1f} min")
     print(f"tried {c['tried']}: rejected {c['rejected']}, trained {c['trained']}, stopped early {c['stopped_early']}, "
           f"failed {c['failed']}, interrupted {c['interrupted']}"
           + (f"; {c['repeats']} of these reused a known outcome" if c["repeats"] else ""))
     if outcome.rejected_share:
         print("share of proposals rejected, per 50: " + ", ".join(f"{s:.0%}" for s in outcome.rejected_share))
-    _print_reasons(outcome.folder)
+    if outcome.rejected_by:
+        print("rejected by: " + ", ".join(f"{k} {v}" for k, v in outcome.rejected_by.items()))
     if outcome.best:
         b = outcome.best
         print(f"best fitting: trial {b['trial']} accuracy {b['val_accuracy']:.4f} params {int(b['params']):,} "
@@ -49,72 +38,24 @@ def cmd_search(args: argparse.Namespace, space_path, budget_of) -> int:
     return outcome.exit_status
 
 
-def _print_reasons(folder: Path) -> None:
-    import pandas as pd
-
-    frame = pd.read_csv(folder / "trials.csv", keep_default_na=False)
-    rejected = frame[frame["state"] == "rejected"]["rejected_by"].value_counts()
-    if len(rejected):
-        print("rejected by: " + ", ".join(f"{k} {v}" for k, v in rejected.items()))
-
-
 def cmd_report(args: argparse.Namespace) -> int:
-    from searcher.core.budget import Budget
-    from searcher.results.records import trials_frame
-    from searcher.results.tables import write_results
-
-    folder, study, config = _open_run(args)
-    frame = trials_frame(study)
-    written = write_results(folder, frame, Budget(**config.budget), title=f"searcher run {args.name}",
-                            notes=[f"space {config.space_name}; data {config.data}; objective {config.objective}",
-                                   f"rebuilt {time.strftime('%Y-%m-%d %H:%M:%S')}"])
+    written = searcher.report(args.name, args.storage)
     print("wrote " + ", ".join(str(p) for p in written))
     return 0
 
 
 def cmd_status(args: argparse.Namespace) -> int:
-    from searcher.core.budget import Budget
-    from searcher.study.liveness import Registry, is_dead
-    from searcher.results.records import HEARTBEAT, counts, trials_frame
-    from searcher.results.tables import best_row
-    from searcher.study.storage import redact
-
-    import socket
-
-    from optuna.trial import TrialState
-
-    folder, study, config = _open_run(args)
-    frame = trials_frame(study)
-    c = counts(frame)
-    budget = Budget(**config.budget)
-    print(f"run {args.name}: space {config.space_name}, data {redact(config.data)}, objective {config.objective}")
-    print(f"budget: {budget.describe()}")
-    print(f"tried {c['tried']}: rejected {c['rejected']}, trained {c['trained']}, stopped early {c['stopped_early']}, "
-          f"failed {c['failed']}, interrupted {c['interrupted']}, running {c['running']}")
-    spent = frame["train_seconds"].sum()
-    print(f"training time used: {spent / 60:.1f} min")
-    best = best_row(frame, budget)
-    print("best fitting: " + (f"trial {best['trial']} accuracy {best['val_accuracy']:.4f} {best['arch']}" if best else "none yet"))
-    now, host = time.time(), socket.gethostname()
-    alone = args.storage is None and not Registry(folder).others_alive()  # no worker of this run is alive here
-    for t in study.get_trials(deepcopy=False, states=(TrialState.RUNNING,)):
-        worker = t.user_attrs.get("worker", {})
-        beat = t.user_attrs.get(HEARTBEAT)
-        alive = "looks dead (will be retried)" if is_dead(t, now, host, alone) else "alive"
-        print(f"  running: trial {t.number} on {worker.get('host', '?')}:{worker.get('pid', '?')}, "
-              f"last heartbeat {'-' if beat is None else f'{now - beat:.0f} s ago'}, {alive}")
+    print("\n".join(searcher.status(args.name, args.storage).lines()))
     return 0
 
 
 def cmd_export(args: argparse.Namespace) -> int:
-    from searcher.ship.export import ExportSettings, export
-
-    outcome = export(ExportSettings(name=args.name, trial=args.trial, arch=args.arch, epochs=args.epochs,
-                                    storage=args.storage))
+    outcome = searcher.export(searcher.ExportSettings(name=args.name, trial=args.trial, arch=args.arch,
+                                                      epochs=args.epochs, storage=args.storage))
     print(f"exported {outcome.arch}")
     print(f"test accuracy {outcome.test_accuracy:.4f} on the held-out split; "
           + ("meets every cap" if outcome.fits else "BREAKS a cap"))
-    print(f"files in {outcome.folder}: model_state.pt, model.py, model.torchscript.pt, arch.json, metrics.json, MODEL_CARD.md")
+    print(f"files in {outcome.folder}: " + ", ".join(sorted(p.name for p in outcome.folder.iterdir())))
     return 0
 
 

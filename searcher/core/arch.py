@@ -16,6 +16,7 @@ from __future__ import annotations
 
 import json
 import re
+from decimal import Decimal
 from dataclasses import asdict, dataclass
 
 from searcher.errors import SearcherError, one_of
@@ -166,8 +167,6 @@ class Arch:
 
 def _plain_float(value: float) -> str:
     """Shortest exact decimal without an exponent: fields are split on '-', so 1e-05 would break."""
-    from decimal import Decimal
-
     return format(Decimal(repr(float(value))), "f")
 
 

@@ -13,6 +13,7 @@ from searcher.core.arch import Arch
 from searcher.core.budget import CAP_COLUMNS, Budget, show_cost
 from searcher.core.census import batch_costs, decode, enumerate_all, multiplicity, sample
 from searcher.core.space import Space
+from searcher.runs import write_atomic
 
 
 @dataclass(frozen=True)
@@ -124,8 +125,6 @@ def summary_lines(census: Census) -> list[str]:
 
 def write_census(census: Census, folder: Path) -> list[Path]:
     """census_summary.csv, census_spread.csv, census_depth_width.csv and census.html in ``folder``."""
-    from searcher.runs import write_atomic
-
     folder.mkdir(parents=True, exist_ok=True)
     low, high = census.interval
     summary = pd.DataFrame([{

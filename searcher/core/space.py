@@ -1,9 +1,12 @@
-"""Search-space files: read and check a TOML file once, then draw architectures from it.
+"""A search space: the family of conv-pool networks a space file describes, and how to draw from it.
 
-Every architecture is assembled by one function, :meth:`Space.assemble`, which asks a *picker*
-for each decision in a fixed order. Three pickers drive it: an Optuna trial (``suggest``), a
-seeded random generator (``random``) and an odometer that walks every combination
-(``enumerate``). So all three see exactly the same space.
+A space is described once, as its list of :class:`Decision` s in a fixed order
+(:attr:`Space.decisions`): each names a choice, its options, and the choice it depends on (the
+stages beyond the depth drawn, the hidden layers beyond the count drawn do not exist). Everything
+else reads that list: :meth:`Space.assemble` asks a *picker* for each active decision — an Optuna
+trial (``suggest``), a seeded random generator (``random``), an odometer that walks every
+combination (``enumerate``), or stored values (``replay``) — and :meth:`Space.size` and the
+census (:mod:`searcher.core.census`) count from it. A new decision is one entry in the list.
 """
 
 from __future__ import annotations
@@ -17,10 +20,22 @@ from typing import Any, Callable, Iterator, Sequence
 from searcher.core.arch import POOLS, Arch, Conv, Head, Pool, Stage
 from searcher.core.budget import Budget
 
-# A picker returns one of ``options`` for the decision ``name``. ``weights`` (relative counts of
-# configurations behind each option) make random draws uniform over whole configurations;
-# ``ordered`` says the options are a consecutive integer range.
-Picker = Callable[[str, Sequence[Any], Sequence[int] | None, bool], Any]
+
+
+@dataclass(frozen=True)
+class Decision:
+    """One choice the space offers; its name is also the Optuna parameter's."""
+
+    name: str  # e.g. "convs_2" (stage 2's conv count)
+    options: tuple[Any, ...]
+    ordered: bool = False  # the options are a consecutive integer range (suggested as an int)
+    needs: tuple[str, int] | None = None  # active only when decision needs[0] drew at least needs[1]
+    costs: bool = True  # changes some cost; the census enumerates only these (the rest multiply)
+
+
+# A picker returns one of ``decision.options``. ``weights`` (relative counts of configurations behind
+# each option; None when all are alike) make random draws uniform over whole configurations.
+Picker = Callable[[Decision, Sequence[int] | None], Any]
 
 SECTIONS = {
     "name": None,
@@ -74,55 +89,95 @@ class Space:
             width = min(width, self.max_width)
         return max(self.round_to, int(math.floor(width / self.round_to + 0.5)) * self.round_to)
 
+    @property
+    def data_shape(self) -> tuple[int, int, int]:
+        """(channels, height, width) at the largest input size: the run's data is held at this size,
+        and a candidate with a smaller input gets it resized from there."""
+        h, w = max(self.resolutions, key=lambda r: r[0] * r[1])
+        return self.channels, h, w
+
     def stage_convs(self, stage: int) -> tuple[int, int]:
         return self.convs[min(stage, len(self.convs) - 1)]
 
-    # -- assembly -------------------------------------------------------------------------
-    def _stage_options(self, stage: int) -> int:
-        lo, hi = self.stage_convs(stage)
-        return (hi - lo + 1) * len(self.kernels) * len(self.pools)
-
+    # -- the decisions ----------------------------------------------------------------------------
     @functools.cached_property
-    def configs_by_depth(self) -> list[int]:
-        """Number of stage configurations for each allowed depth, shallowest first."""
-        lo, hi = self.stage_count
-        return [math.prod(self._stage_options(i) for i in range(n)) for n in range(lo, hi + 1)]
+    def decisions(self) -> tuple[Decision, ...]:
+        """Every decision in the order assembly asks for it (see the module docstring)."""
+        most_stages, most_hidden = self.stage_count[1], self.hidden_count[1]
+        found = [Decision("resolution", self.resolutions),
+                 Decision("stages", tuple(_span(self.stage_count)), ordered=True),
+                 Decision("first_width", self.first_width)]
+        for i in range(1, most_stages + 1):
+            needs = ("stages", i)
+            found += [Decision(f"convs_{i}", tuple(_span(self.stage_convs(i - 1))), ordered=True, needs=needs),
+                      Decision(f"kernel_{i}", self.kernels, needs=needs),
+                      Decision(f"pool_{i}", self.pools, needs=needs)]
+        found += [Decision("activation", self.activations, costs=False),
+                  Decision("batch_norm", self.batch_norm),
+                  Decision("features", self.features),
+                  Decision("hidden", tuple(_span(self.hidden_count)), ordered=True)]
+        found += [Decision(f"hidden_width_{k}", self.hidden_widths, needs=("hidden", k)) for k in range(1, most_hidden + 1)]
+        found.append(Decision("dropout", self.dropouts, costs=False))
+        return tuple(found)
 
+    def decision(self, name: str) -> Decision:
+        return next(d for d in self.decisions if d.name == name)
+
+    def weights(self, decision: Decision) -> tuple[int, ...] | None:
+        """Configurations behind each option of ``decision``: its dependants' option counts multiplied
+        (None when every option stands for as many)."""
+        dependants = [d for d in self.decisions if d.needs and d.needs[0] == decision.name]
+        if not dependants:
+            return None
+        return tuple(math.prod(len(d.options) for d in dependants if value >= d.needs[1])
+                     for value in decision.options)
+
+    def active(self, decision: Decision, choices: dict[str, Any]) -> bool:
+        """Does ``decision`` exist, given the choices made so far?"""
+        return decision.needs is None or choices[decision.needs[0]] >= decision.needs[1]
+
+    def size(self) -> int:
+        """Exact number of configurations: free decisions multiply, each gate adds its options' weights."""
+        total = 1
+        for d in self.decisions:
+            if d.needs is None:
+                weights = self.weights(d)
+                total *= sum(weights) if weights else len(d.options)
+        return total
+
+    # -- assembly -------------------------------------------------------------------------------
     def assemble(self, pick: Picker, classes: int | None = None) -> Arch:
-        """Build one architecture from the picker's answers, in a fixed decision order."""
-        h, w = pick("resolution", self.resolutions, None, False) if len(self.resolutions) > 1 else self.resolutions[0]
-        depth = pick("stages", _span(self.stage_count), self.configs_by_depth, True)
-        first = pick("first_width", self.first_width, None, False)
+        """Build one architecture, asking ``pick`` for every active decision with more than one option."""
+        choices: dict[str, Any] = {}
+        for d in self.decisions:
+            if self.active(d, choices):
+                choices[d.name] = pick(d, self.weights(d)) if len(d.options) > 1 else d.options[0]
+        return self.arch_of(choices, classes)
+
+    def arch_of(self, choices: dict[str, Any], classes: int | None = None) -> Arch:
+        """The architecture a full set of choices names (inactive decisions may be left out)."""
+        h, w = choices["resolution"]
+        first = choices["first_width"]
         stages = []
-        for i in range(depth):
-            n_convs = pick(f"convs_{i + 1}", _span(self.stage_convs(i)), None, True)
-            kernel = pick(f"kernel_{i + 1}", self.kernels, None, False)
-            pool = pick(f"pool_{i + 1}", self.pools, None, False)
-            width = self.stage_width(i, first)
-            convs = tuple(Conv(width, kernel, self.stride, self.padding) for _ in range(n_convs))
+        for i in range(choices["stages"]):
+            kernel, pool = choices[f"kernel_{i + 1}"], choices[f"pool_{i + 1}"]
+            convs = tuple(Conv(self.stage_width(i, first), kernel, self.stride, self.padding)
+                          for _ in range(choices[f"convs_{i + 1}"]))
             stages.append(Stage(convs, None if pool == "none" else Pool(pool, self.pool_window, self.pool_stride)))
-        activation = pick("activation", self.activations, None, False)
-        batch_norm = pick("batch_norm", self.batch_norm, None, False)
-        features = pick("features", self.features, None, False)
-        counts = _span(self.hidden_count)
-        n_hidden = pick("hidden", counts, [len(self.hidden_widths) ** n for n in counts], True)
-        hidden = tuple(pick(f"hidden_width_{k + 1}", self.hidden_widths, None, False) for k in range(n_hidden))
-        dropout = pick("dropout", self.dropouts, None, False)
-        head = Head(features, hidden, dropout, classes or self.classes)
-        return Arch((self.channels, h, w), tuple(stages), head, activation, batch_norm)
+        hidden = tuple(choices[f"hidden_width_{k + 1}"] for k in range(choices["hidden"]))
+        head = Head(choices["features"], hidden, choices["dropout"], classes or self.classes)
+        return Arch((self.channels, h, w), tuple(stages), head, choices["activation"], choices["batch_norm"])
 
     def suggest(self, trial: Any, classes: int | None = None) -> Arch:
-        """Draw through an Optuna trial; decisions with one option are not suggested."""
+        """Draw through an Optuna trial; an input size goes to Optuna as text such as '32x32'."""
 
-        def pick(name, options, weights, ordered):
-            if len(options) == 1:
-                return options[0]
-            if ordered:
-                return trial.suggest_int(name, options[0], options[-1])
-            if name == "resolution":
-                text = trial.suggest_categorical(name, [f"{a}x{b}" for a, b in options])
-                return tuple(int(v) for v in text.split("x"))
-            return trial.suggest_categorical(name, list(options))
+        def pick(decision: Decision, weights: Sequence[int] | None) -> Any:
+            options = decision.options
+            if decision.ordered:
+                return trial.suggest_int(decision.name, options[0], options[-1])
+            if isinstance(options[0], tuple):
+                return _size(trial.suggest_categorical(decision.name, [_size_text(o) for o in options]))
+            return trial.suggest_categorical(decision.name, list(options))
 
         return self.assemble(pick, classes)
 
@@ -136,21 +191,20 @@ class Space:
         """
         rng = seed if isinstance(seed, random.Random) else random.Random(seed)
 
-        def pick(name, options, weights, ordered):
+        def pick(decision: Decision, weights: Sequence[int] | None) -> Any:
             if weights is None:
-                return options[rng.randrange(len(options))]
-            return rng.choices(options, weights)[0]
+                return decision.options[rng.randrange(len(decision.options))]
+            return rng.choices(decision.options, weights)[0]
 
         return self.assemble(pick, classes)
 
     def replay(self, choices: dict[str, Any], classes: int | None = None) -> Arch:
-        """The architecture behind named decisions (an Optuna trial's params, a census row)."""
+        """The architecture behind named decisions (an Optuna trial's params, a census row);
+        a decision not named takes its first option."""
 
-        def pick(name, options, weights, ordered):
-            value = choices.get(name, options[0])
-            if name == "resolution" and isinstance(value, str):
-                value = tuple(int(v) for v in value.split("x"))
-            return value
+        def pick(decision: Decision, weights: Sequence[int] | None) -> Any:
+            value = choices.get(decision.name, decision.options[0])
+            return _size(value) if isinstance(value, str) and decision.name == "resolution" else value
 
         return self.assemble(pick, classes)
 
@@ -160,10 +214,10 @@ class Space:
         while True:
             counts: list[int] = []
 
-            def pick(name, options, weights, ordered):
+            def pick(decision: Decision, weights: Sequence[int] | None) -> Any:
                 k = len(counts)
-                counts.append(len(options))
-                return options[path[k] if k < len(path) else 0]
+                counts.append(len(decision.options))
+                return decision.options[path[k] if k < len(path) else 0]
 
             yield self.assemble(pick, classes)
             path = (path + [0] * len(counts))[: len(counts)]
@@ -174,11 +228,17 @@ class Space:
                 return
             path = path[:i] + [path[i] + 1]
 
-    def size(self) -> int:
-        """Exact number of configurations."""
-        head = sum(len(self.hidden_widths) ** n for n in _span(self.hidden_count))
-        rest = len(self.resolutions) * len(self.first_width) * len(self.activations) * len(self.batch_norm)
-        return sum(self.configs_by_depth) * rest * len(self.features) * head * len(self.dropouts)
+
+def _size_text(size: tuple[int, int]) -> str:
+    return f"{size[0]}x{size[1]}"
+
+
+def _size(text: str | tuple[int, int]) -> tuple[int, int]:
+    """An input size from Optuna's text form '32x32' (or the pair itself)."""
+    if isinstance(text, str):
+        h, w = text.split("x")
+        return int(h), int(w)
+    return tuple(text)
 
 
 def _span(bounds: tuple[int, int]) -> list[int]:

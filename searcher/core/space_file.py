@@ -11,6 +11,7 @@ from searcher.core.budget import Budget
 from searcher.core.cost import conv_output_size
 from searcher.errors import SearcherError, one_of
 from searcher.core.space import POOL_CHOICES, SECTIONS, Space
+from searcher.core.train_settings import TrainSettings
 
 
 class _Reader:
@@ -132,8 +133,6 @@ def read_space_text(text: str, file: str, default_name: str = "space") -> Space:
     if hidden_count[1] > 2:
         raise r.fail("head.hidden", f"allows at most 2 hidden dense layers, got {list(hidden_count)}")
     train = r.get("train", {})
-    from searcher.core.train_settings import TrainSettings
-
     TrainSettings.from_dict(train, file=file)  # checked now, used later
 
     space = Space(

@@ -18,6 +18,7 @@ import torch
 
 from searcher.data.demo import make_demo
 from searcher.errors import SearcherError
+from searcher.runs import write_atomic
 
 log = logging.getLogger(__name__)
 
@@ -74,9 +75,6 @@ def resize_images(images: torch.Tensor, h: int, w: int) -> torch.Tensor:
     log.info("resizing images from %d×%d to %d×%d", images.shape[-2], images.shape[-1], h, w)
     out = torch.nn.functional.interpolate(images, size=(h, w), mode="bilinear", antialias=True, align_corners=False)
     return out.clamp_(0.0, 1.0)
-
-
-_resize = resize_images  # older private name, still imported by the run code
 
 
 def _to_unit(array: np.ndarray, path: Path, key: str) -> np.ndarray:
@@ -316,8 +314,6 @@ def _check_split(indices: dict[str, np.ndarray], count: int) -> dict[str, np.nda
 
 def save_split(path: str | Path, indices: dict[str, np.ndarray], fingerprint: str) -> None:
     """Store the split and the data fingerprint in one .npz file (exactly at `path`)."""
-    from searcher.runs import write_atomic
-
     parts = {p: np.asarray(indices[p], dtype=np.int64) for p in PARTS}
     buffer = io.BytesIO()
     np.savez(buffer, fingerprint=np.array(fingerprint), **parts)

@@ -8,6 +8,7 @@ import torch  # noqa: F401  (used by the docstring example)
 from torch import nn
 
 from searcher.core.arch import Arch
+from searcher.core.cost import cost
 
 ACTIVATION_MODULES = {
     "relu": nn.ReLU,
@@ -63,7 +64,5 @@ def build(arch: Arch) -> nn.Sequential:
 
 def _feature_map(arch: Arch) -> tuple[int, ...]:
     """Shape of the last stage's output, from the analytic walk (one source of truth)."""
-    from searcher.core.cost import cost
-
     last_spatial = [layer for layer in cost(arch).layers if len(layer.output_shape) == 3]
     return last_spatial[-1].output_shape if last_spatial else arch.input_shape

@@ -7,7 +7,6 @@ by index permutation, model and inputs run channels-last, and the loss is read b
 from __future__ import annotations
 
 import contextlib
-import ctypes
 import logging
 import math
 import time
@@ -25,7 +24,6 @@ from searcher.core.train_settings import OPTIMIZERS, SCHEDULES, TrainSettings  #
 log = logging.getLogger(__name__)
 
 CHECK_EVERY = 16  # steps between reads of the loss, to spot divergence without a sync each step
-_M_TRIM_THRESHOLD, _M_MMAP_THRESHOLD = -1, -3  # glibc's mallopt parameter numbers (malloc.h)
 
 
 @dataclass(frozen=True)
@@ -229,14 +227,3 @@ def _thread_count(threads: int | None) -> Iterator[None]:
         yield
     finally:
         torch.set_num_threads(before)
-
-
-def keep_freed_memory() -> bool:
-    """Keep glibc from returning large freed blocks to the OS: each training step re-allocates its
-    activations, and fresh pages cost page faults (about a tenth of step time, in tests/bench_train.py).
-    Process-wide: call once at start-up (CLI, worker), not per candidate. False where libc is not glibc."""
-    try:
-        libc = ctypes.CDLL("libc.so.6")
-    except OSError:
-        return False
-    return bool(libc.mallopt(_M_MMAP_THRESHOLD, 32 << 20)) and bool(libc.mallopt(_M_TRIM_THRESHOLD, 256 << 20))

@@ -13,11 +13,10 @@ import numpy as np
 import pandas as pd
 
 from searcher.errors import SearcherError, one_of
+from searcher.results.records import SCORED
 
 # The analytic cost columns of the trials table, in the order the report shows them.
 COST_COLUMNS: tuple[str, ...] = ("params", "macs", "peak_activation_bytes", "weight_bytes")
-# States whose rows carry a validation accuracy that can be compared.
-SCORED_STATES: tuple[str, ...] = ("trained", "stopped_early")
 
 
 def pareto_mask(accuracy: Sequence[float] | np.ndarray, cost: Sequence[float] | np.ndarray) -> np.ndarray:
@@ -112,37 +111,11 @@ def front(
     for column in columns:
         if column not in COST_COLUMNS:
             raise SearcherError(f"cost {column!r} is not a cost column; use {one_of(column, COST_COLUMNS)}")
-    scored = trials["state"].isin(SCORED_STATES).to_numpy() & feasible_mask(trials, caps)
+    scored = trials["state"].isin(SCORED).to_numpy() & feasible_mask(trials, caps)
     pool = trials[scored]
     on_front = pareto_mask(pool["val_accuracy"].to_numpy(dtype=float), pool[columns].to_numpy(dtype=float))
     chosen = pool[on_front]
     return chosen.sort_values([columns[0], "val_accuracy"], ascending=[True, False], kind="stable")
-
-
-def hypervolume_2d(
-    accuracy: Sequence[float] | np.ndarray,
-    cost: Sequence[float] | np.ndarray,
-    reference: tuple[float, float],
-) -> float:
-    """Area between the accuracy-vs-cost front and the reference point ``(acc_ref, cost_ref)``.
-
-    One number for "how good is this front": it grows when any point gets more accurate
-    or cheaper. Points no better than the reference (accuracy <= acc_ref or cost >=
-    cost_ref) and points with NaN add nothing. Pass log costs for a scale-free area.
-    """
-    acc = np.asarray(accuracy, dtype=float)
-    costs = np.asarray(cost, dtype=float)
-    acc_ref, cost_ref = (float(v) for v in reference)
-    if acc.shape != costs.shape or acc.ndim != 1:
-        raise ValueError(f"accuracy and cost must be matching 1-D arrays, got {acc.shape} and {costs.shape}")
-    useful = (acc > acc_ref) & (costs < cost_ref)  # False for NaN
-    if not useful.any():
-        return 0.0
-    order = np.argsort(costs[useful], kind="stable")
-    c = costs[useful][order]
-    best = np.maximum.accumulate(acc[useful][order])
-    widths = np.diff(np.r_[c, cost_ref])
-    return float(widths @ (best - acc_ref))
 
 
 def accuracy_per_doubling(accuracy: Sequence[float] | np.ndarray, cost: Sequence[float] | np.ndarray) -> np.ndarray:

@@ -26,12 +26,20 @@ COLUMNS = (
     "params", "macs", "peak_activation_bytes", "weight_bytes", "training_bytes",
     "stages", "convs", "first_width", "last_width", "worker", "retry_of", "repeat_of",
 )
-# states a finished trial can have in the table
-TRAINED, STOPPED, REJECTED, FAILED, INTERRUPTED, RUNNING = (
-    "trained", "stopped_early", "rejected", "failed", "interrupted", "running")
+# The trial states, one vocabulary for the loop, the tables, the report and status.
+TRAINED = "trained"  # went through its whole proxy schedule
+STOPPED = "stopped_early"  # fell behind its peers part-way (still a measured accuracy)
+REJECTED = "rejected"  # broke a cap by exact arithmetic; never built
+FAILED = "failed"  # diverged, or ran past the per-candidate limit
+INTERRUPTED = "interrupted"  # cut by a signal, the run's time limit or a crash; queued again once
+RUNNING = "running"  # in the hands of a worker now
 NOT_STARTED = "not_started"  # asked, then left for a later run: not enough time left
 DUPLICATE = "duplicate"  # the same architecture was already being trained by another worker
 QUEUED = "queued"  # queued again (a retry) and not yet asked for: no outcome yet
+TRAINING = "training"  # what a record says while its candidate trains (the trial is RUNNING)
+STATES = (TRAINED, STOPPED, REJECTED, FAILED, INTERRUPTED, RUNNING, NOT_STARTED, DUPLICATE, QUEUED)
+JUDGED = (TRAINED, STOPPED, REJECTED, FAILED, INTERRUPTED)  # 'tried': neither left for later nor yielded
+SCORED = (TRAINED, STOPPED)  # outcomes with a validation accuracy that can be compared
 SPENT = (TRAINED, STOPPED, FAILED)  # outcomes that cost training time
 
 
@@ -55,7 +63,7 @@ def record_of(trial: optuna.trial.FrozenTrial) -> dict[str, Any]:
 def finished_state(record: dict[str, Any]) -> str:
     """The state of a finished trial from its record."""
     state = record.get("state")
-    if state in (None, "training"):
+    if state in (None, TRAINING):
         return FAILED  # ended by something other than this program (another tool, a crash clean-up)
     return state
 
@@ -97,9 +105,8 @@ def counts(frame: pd.DataFrame) -> dict[str, int]:
 def counts_of(by_state: dict[str, int], repeats: int) -> dict[str, int]:
     """Every state's count, 'tried' (every proposal that was judged: neither left for later nor
     yielded to another worker) and 'repeats' (proposals that reused a known outcome)."""
-    states = (TRAINED, STOPPED, REJECTED, FAILED, INTERRUPTED, RUNNING, NOT_STARTED, DUPLICATE, QUEUED)
-    out = {s: int(by_state.get(s, 0)) for s in states}
-    out["tried"] = sum(out[s] for s in (TRAINED, STOPPED, REJECTED, FAILED, INTERRUPTED))
+    out = {s: int(by_state.get(s, 0)) for s in STATES}
+    out["tried"] = sum(out[s] for s in JUDGED)
     out["repeats"] = repeats
     return out
 
@@ -112,6 +119,14 @@ def distinct_rows(frame: pd.DataFrame) -> pd.DataFrame:
     return frame[frame["repeat_of"].isna()]
 
 
-def trained_count(frame: pd.DataFrame) -> int:
-    """Candidates that used training time (repeats of a known result do not count)."""
-    return int(distinct_rows(frame)["state"].isin(SPENT).sum())
+def best_row(frame: pd.DataFrame, caps: dict[str, int]) -> dict[str, Any] | None:
+    """The fully trained candidate with the best validation accuracy that meets every cap (fewest
+    parameters on a tie): what ``export`` takes by default and what the summary and report call best."""
+    rows = distinct_rows(frame)
+    rows = rows[(rows["state"] == TRAINED) & rows["val_accuracy"].notna()]
+    for column, limit in caps.items():
+        rows = rows[rows[column] <= limit]
+    if rows.empty:
+        return None
+    return rows.sort_values(["val_accuracy", "params"], ascending=[False, True]).iloc[0].to_dict()
+

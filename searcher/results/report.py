@@ -19,19 +19,22 @@ import plotly.io as pio
 from plotly.offline import get_plotlyjs
 
 from searcher.errors import SearcherError
-from searcher.results.records import counts as trial_counts, distinct_rows
+from searcher.results.records import (
+    DUPLICATE, FAILED, INTERRUPTED, NOT_STARTED, QUEUED, REJECTED, RUNNING, SCORED, STOPPED, TRAINED, best_row,
+    counts as trial_counts, distinct_rows,
+)
 from searcher.runs import write_atomic
-from searcher.results.pareto import COST_COLUMNS, SCORED_STATES, check_caps, feasible_mask, front, front_steps
+from searcher.results.pareto import COST_COLUMNS, check_caps, feasible_mask, front, front_steps
 from searcher.core.units import format_bytes, format_count
 
 log = logging.getLogger(__name__)
 
 # Trial states in the order the header counts them, with the words shown for each.
-STATE_LABELS: dict[str, str] = {"trained": "trained", "stopped_early": "stopped early", "rejected": "rejected",
-                                "failed": "failed", "interrupted": "interrupted", "running": "running",
-                                "queued": "queued again", "not_started": "not started (time)",
-                                "duplicate": "left to another worker"}
-_SHOWN_WHEN_ANY = ("queued", "not_started", "duplicate")  # header tiles only when some exist
+STATE_LABELS: dict[str, str] = {TRAINED: "trained", STOPPED: "stopped early", REJECTED: "rejected",
+                                FAILED: "failed", INTERRUPTED: "interrupted", RUNNING: "running",
+                                QUEUED: "queued again", NOT_STARTED: "not started (time)",
+                                DUPLICATE: "left to another worker"}
+_SHOWN_WHEN_ANY = (QUEUED, NOT_STARTED, DUPLICATE)  # header tiles only when some exist
 # Each cost column: the words for it and how its numbers are written.
 COST_LABELS: dict[str, tuple[str, Callable[[float], str]]] = {
     "params": ("parameters", format_count), "macs": ("MACs", format_count),
@@ -39,7 +42,7 @@ COST_LABELS: dict[str, tuple[str, Callable[[float], str]]] = {
 }
 _TEXT_COLUMNS = ("arch", "state", "reason", "rejected_by")
 _NUMBER_COLUMNS = ("trial", "val_accuracy", *COST_COLUMNS, "stages", "first_width")
-_COLOURS = {"trained": "#3b6ea8", "stopped_early": "#d08b2c", "front": "#222222", "cap": "#b03a3a", "bar": "#7a7f87"}
+_COLOURS = {TRAINED: "#3b6ea8", STOPPED: "#d08b2c", "front": "#222222", "cap": "#b03a3a", "bar": "#7a7f87"}
 _CONFIG = {"displaylogo": False, "responsive": True}
 _AXIS = {"gridcolor": "#e6e6e6", "linecolor": "#999", "zeroline": False}
 _TEMPLATE = go.layout.Template(layout=go.Layout(
@@ -87,7 +90,7 @@ def _hover(rows: pd.DataFrame) -> list[str]:
 
 
 def _scored(table: pd.DataFrame) -> pd.DataFrame:
-    return table[table["state"].isin(SCORED_STATES) & table["val_accuracy"].notna()]
+    return table[table["state"].isin(SCORED) & table["val_accuracy"].notna()]
 
 
 def _empty_note(fig: go.Figure, text: str, empty: bool) -> go.Figure:
@@ -116,7 +119,7 @@ def _cost_figure(table: pd.DataFrame, cost: str, caps: dict[str, float]) -> go.F
     scored = _scored(table)
     fits = feasible_mask(scored, caps)
     fig = go.Figure(layout={"template": _TEMPLATE, "title": f"Accuracy against {COST_LABELS[cost][0]}"})
-    for state in SCORED_STATES:
+    for state in SCORED:
         rows = scored[scored["state"] == state]
         fig.add_scatter(
             x=rows[cost], y=rows["val_accuracy"], mode="markers", name=STATE_LABELS[state],
@@ -150,7 +153,7 @@ def _group_figure(table: pd.DataFrame, column: str, label: str) -> go.Figure:
     fig = go.Figure(layout={"template": _TEMPLATE, "title": f"Accuracy by {label}", "showlegend": False})
     fig.add_box(
         x=groups, y=scored["val_accuracy"],
-        boxpoints="all", jitter=0.4, pointpos=0, hoveron="points", marker={"color": _COLOURS["trained"], "size": 6},
+        boxpoints="all", jitter=0.4, pointpos=0, hoveron="points", marker={"color": _COLOURS[TRAINED], "size": 6},
         line={"color": "#555"}, fillcolor="rgba(59,110,168,0.12)",
         text=_hover(scored), hovertemplate="%{text}<extra></extra>",
     )
@@ -167,7 +170,7 @@ def broken_caps_label(rejected_by: str) -> str:
 
 def _rejected_figure(table: pd.DataFrame) -> go.Figure:
     """How many candidates each combination of broken caps turned away before training."""
-    counts = table.loc[table["state"] == "rejected", "rejected_by"].map(broken_caps_label).value_counts().sort_values()
+    counts = table.loc[table["state"] == REJECTED, "rejected_by"].map(broken_caps_label).value_counts().sort_values()
     fig = go.Figure(layout={"template": _TEMPLATE, "title": "Rejected before training, by broken cap",
                             "showlegend": False, "height": max(260, 120 + 28 * len(counts))})
     fig.add_bar(x=counts.to_numpy(), y=counts.index.tolist(), orientation="h", marker={"color": _COLOURS["bar"]},
@@ -214,7 +217,7 @@ def _table(heads: list[str], rows: list[list[str]], css: str) -> str:
 
 def _failures_html(table: pd.DataFrame, most: int = 30) -> str:
     """Failed and interrupted trials with their reasons, newest first, so problems show."""
-    bad = table[table["state"].isin(["failed", "interrupted"])].sort_values("trial", ascending=False)
+    bad = table[table["state"].isin([FAILED, INTERRUPTED])].sort_values("trial", ascending=False)
     if bad.empty:
         return ""
     rows = [[str(int(r.trial)), STATE_LABELS[r.state], f"<code>{html.escape(r.arch)}</code>",
@@ -232,12 +235,10 @@ def _header_html(table: pd.DataFrame, caps: dict[str, float], title: str, notes:
     if counts["repeats"]:
         tiles.append(("reused a known outcome", counts["repeats"]))
     tile_html = "".join(f'<div class="tile"><b>{n}</b><span>{html.escape(w)}</span></div>' for w, n in tiles)
-    scored = _scored(distinct_rows(table))  # the best is fully trained, as exported; fewest params wins a tie
-    done = scored[feasible_mask(scored, caps) & (scored["state"] == "trained").to_numpy()]
-    best = "No candidate within the caps has been fully trained yet."
-    for top in done.sort_values(["val_accuracy", "params"], ascending=[False, True]).head(1).itertuples(index=False):
-        best = (f"Best fully trained within the caps: <b>{_percent(top.val_accuracy)}</b> by "
-                f"<code>{html.escape(top.arch)}</code> (trial {int(top.trial)}).")
+    top = best_row(table, caps)  # the best is fully trained, as exported; fewest params wins a tie
+    best = "No candidate within the caps has been fully trained yet." if top is None else (
+        f"Best fully trained within the caps: <b>{_percent(top['val_accuracy'])}</b> by "
+        f"<code>{html.escape(top['arch'])}</code> (trial {int(top['trial'])}).")
     cap_words = ", ".join(f"{COST_LABELS[c][0]} ≤ {_cost_text(c, v)}" for c, v in caps.items()) or "none set"
     note_html = "".join(f"<li>{html.escape(line)}</li>" for line in notes)
     return (f"<header><h1>{html.escape(title)}</h1><div class='tiles'>{tile_html}</div><p>{best}</p>"

@@ -17,12 +17,21 @@ from pathlib import Path
 from typing import Any
 
 import numpy as np
+import torch
 
 from searcher.core.arch import Arch, parse_arch
 from searcher.core.budget import Budget
 from searcher.core.cost import cost
 from searcher.errors import SearcherError
+from searcher.core.space_file import read_space_text
+from searcher.data.load import load_dataset, load_split
+from searcher.model.build import build
+from searcher.model.train import TrainSettings, evaluate, train_candidate
+from searcher.results.records import best_row, trials_frame
 from searcher.runs import RUNS
+from searcher.ship.model_card import model_card, standalone_source
+from searcher.study.run import RunData
+from searcher.study.storage import open_run
 
 log = logging.getLogger(__name__)
 
@@ -49,10 +58,8 @@ class ExportOutcome:
     model: Any = None  # the retrained torch module, in eval mode
 
 
-def choose(frame: Any, budget: Budget, settings: ExportSettings, classes: int) -> tuple[Arch, str]:
+def choose(frame: Any, budget: Budget, settings: ExportSettings) -> tuple[Arch, str]:
     """The candidate to export and how it was chosen."""
-    from searcher.results.tables import best_row
-
     if settings.arch:
         return parse_arch(settings.arch), "given on the command line"
     if settings.trial is not None:
@@ -62,7 +69,7 @@ def choose(frame: Any, budget: Budget, settings: ExportSettings, classes: int) -
                                 f"(trials 0-{len(frame) - 1})", key="--trial")
         row = rows.iloc[0]
         return parse_arch(row["arch"]), f"trial {settings.trial} ({row['state']}, validation accuracy {row['val_accuracy']:.4f})"
-    best = best_row(frame, budget)
+    best = best_row(frame, budget.caps())
     if best is None:
         raise SearcherError(f"run {settings.name!r} has no fully trained candidate that fits the budget yet; "
                             f"let the search run longer, or name one with --trial or --arch", key="--name")
@@ -71,24 +78,15 @@ def choose(frame: Any, budget: Budget, settings: ExportSettings, classes: int) -
 
 def export(settings: ExportSettings) -> ExportOutcome:
     """Retrain on train+validation, test once on the held-out split, and write runs/<name>/export/."""
-    import torch
-
-    from searcher.model.build import build
-    from searcher.data.load import load_dataset, load_split
-    from searcher.results.records import trials_frame
-    from searcher.study.run import RunData
-    from searcher.study.storage import open_run
-    from searcher.model.train import TrainSettings, evaluate, train_candidate
-
     folder, study, config = open_run(settings.name, settings.storage, settings.root)
     budget = Budget(**config.budget)
     frame = trials_frame(study)
-    arch, how = choose(frame, budget, settings, config.classes)
+    arch, how = choose(frame, budget, settings)
     if arch.head.classes != config.classes:
         raise SearcherError(f"architecture has {arch.head.classes} outputs but the run's data has {config.classes} classes")
     split_file = folder / "split.npz"
     stored = load_split(split_file)[0] if split_file.exists() else None
-    space_shape = _space_shape(config)
+    space_shape = read_space_text(config.space_text, f"<space of run {config.space_name}>").data_shape
     dataset = load_dataset(config.data, space_shape, seed=config.seed, split=stored)
     if dataset.fingerprint != config.data_fingerprint:
         raise SearcherError(f"the data at {config.data} changed since run {settings.name!r} searched it "
@@ -119,15 +117,6 @@ def export(settings: ExportSettings) -> ExportOutcome:
     return outcome
 
 
-def _space_shape(config: Any) -> tuple[int, int, int]:
-    """The input shape the run loaded its data at: the space's largest resolution."""
-    from searcher.core.space_file import read_space_text
-
-    space = read_space_text(config.space_text, f"<space of run, {config.space_name}>")
-    largest = max(space.resolutions, key=lambda r: r[0] * r[1])
-    return (space.channels, *largest)
-
-
 def _confusion(truth: np.ndarray, predicted: np.ndarray, classes: int) -> np.ndarray:
     """Rows: true class; columns: predicted class."""
     table = np.zeros((classes, classes), dtype=np.int64)
@@ -137,10 +126,6 @@ def _confusion(truth: np.ndarray, predicted: np.ndarray, classes: int) -> np.nda
 
 def _write(outcome: ExportOutcome, model: Any, extra: dict) -> None:
     """Write into a fresh folder beside export/, then swap it in, so export/ is never half-written."""
-    import torch
-
-    from searcher.ship.model_card import model_card, standalone_source
-
     target = outcome.folder
     temp = target.with_name(f".export-{int(time.time() * 1000)}")
     temp.mkdir(parents=True)

@@ -9,7 +9,7 @@ from torch import nn
 from searcher.core.arch import Arch
 from searcher.core.budget import CAP_COLUMNS, show_cost
 from searcher.core.cost import cost
-from searcher.study.storage import redact
+from searcher.redact import redact
 
 CAUTIONS = """\
 ## Cautions

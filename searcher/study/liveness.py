@@ -15,17 +15,21 @@ from __future__ import annotations
 import logging
 import os
 import socket
+import threading
 import time
 from pathlib import Path
+from types import TracebackType
 
 import optuna
 from optuna.trial import TrialState
 
 from searcher.results.records import HEARTBEAT, INTERRUPTED, NOT_STARTED, RECORD, record_of, worker_id
+from searcher.study.optuna_private import set_trial_attr
 
 log = logging.getLogger(__name__)
 
 WORKER = "worker"
+HEARTBEAT_SECONDS = 20.0  # how often a training worker says it is alive
 STALE_SECONDS = 120.0  # no heartbeat for this long: the worker on another host is gone
 UNCLAIMED_SECONDS = 60.0  # asked but never claimed for this long: the worker died at once
 
@@ -110,9 +114,9 @@ def recover_stale(study: optuna.Study, registry: Registry | None = None) -> list
             continue
         record = record_of(trial) | {"state": INTERRUPTED, "reason": "its worker died; queued again"}
         try:
-            study._storage.set_trial_user_attr(trial._trial_id, RECORD, record)
+            set_trial_attr(study, trial, RECORD, record)
             study.tell(trial.number, state=TrialState.FAIL)
-        except (RuntimeError, ValueError, optuna.exceptions.UpdateFinishedTrialError):
+        except (ValueError, optuna.exceptions.UpdateFinishedTrialError):
             continue  # another worker recovered it first
         recovered.append(trial.number)
         log.info("trial %d was left running by a worker that died: marked interrupted, queued again", trial.number)
@@ -133,3 +137,30 @@ def queue_retry(study: optuna.Study, trial: optuna.trial.FrozenTrial | optuna.Tr
     """
     if trial.user_attrs.get("retry_of") is None:
         study.enqueue_trial(dict(trial.params), user_attrs={"retry_of": trial.number})
+
+
+class Heartbeat:
+    """While training runs, a thread stamps the trial every few seconds so others can tell it is alive.
+
+    The first stamp comes after HEARTBEAT_SECONDS: until then the claim's time stands.
+    """
+
+    def __init__(self, study: optuna.Study, trial: optuna.Trial) -> None:
+        self.study, self.trial = study, trial
+        self._stop = threading.Event()
+        self._thread = threading.Thread(target=self._run, daemon=True, name="searcher-heartbeat")
+
+    def _run(self) -> None:
+        while not self._stop.wait(HEARTBEAT_SECONDS):
+            try:
+                set_trial_attr(self.study, self.trial, HEARTBEAT, time.time())
+            except (OSError, ConnectionError, optuna.exceptions.StorageInternalError) as exc:
+                log.debug("heartbeat failed (the next one retries): %s", exc)  # must not stop training
+
+    def __enter__(self) -> Heartbeat:
+        self._thread.start()
+        return self
+
+    def __exit__(self, kind: type[BaseException] | None, exc: BaseException | None, tb: TracebackType | None) -> None:
+        self._stop.set()
+

@@ -1,8 +1,9 @@
 """Several worker processes on one machine, each with its share of the CPU threads.
 
 Each worker is a separate process (torch's threads and the GIL make processes the way to use
-several cores) that opens the same study; TPE's constant liar and the running-architecture check
-in :mod:`searcher.study.worker` keep them from training the same candidate at once.
+several cores) that prepares the run and opens the same study; TPE's constant liar and the
+running-architecture check in :mod:`searcher.study.worker` keep them from training the same
+candidate at once. The parent passes Ctrl-C and SIGTERM on to each worker once.
 """
 
 from __future__ import annotations
@@ -10,41 +11,45 @@ from __future__ import annotations
 import logging
 import multiprocessing
 import os
+import queue
 import signal
 from typing import Any
+
+import torch
+
+from searcher.study.ending import Ending, StopReason, exit_at_once, first_of
+from searcher.study.launch import run_worker
+from searcher.study.run import PreparedRun, SearchSettings, prepare
+from searcher.study.storage import open_study
 
 log = logging.getLogger(__name__)
 
 
-def _worker_main(settings: Any, budget: Any, train: Any, index: int, threads: int, deadline: float | None,
-                 parent: int, queue: Any) -> None:
-    from searcher.study.run import prepare, run_worker
-    from searcher.study.storage import open_study
-
+def _worker_main(settings: SearchSettings, budget: dict, train: dict, index: int, threads: int,
+                 deadline: float | None, parent: int, results: Any) -> None:
     os.setpgrp()  # out of the terminal's group: a Ctrl-C reaches the parent only, which passes it on once
     logging.basicConfig(level=logging.INFO, format="%(message)s")
-    import torch
-
     torch.set_num_threads(threads)
     run = prepare(settings, budget, train)
     study, _ = open_study(settings.name, run.url, run.config, settings.sampler, worker=index)
     tally = run_worker(run, study, deadline, index=index, threads=threads, parent_pid=parent)
-    queue.put((index, tally.stopped_by, tally.proposals))
+    results.put((index, tally.stop, tally.proposals))
 
 
-def run_workers(run: Any, deadline: float | None) -> tuple[str, int, list[str]]:
-    """Start ``run.settings.workers`` processes, pass signals on, and wait for all of them."""
-    from searcher.study.run import _status
-    from searcher.study.worker import exit_at_once
+def run_workers(run: PreparedRun, deadline: float | None) -> tuple[StopReason, list[str]]:
+    """Start ``run.settings.workers`` processes, pass signals on, and collect what each did.
 
+    Results are read while the workers run (a worker blocks on a full queue until it is read),
+    and each process is joined after its result came in or it ended without one.
+    """
     count = run.settings.workers
     threads = max(1, (os.cpu_count() or 1) // count)
     context = multiprocessing.get_context("spawn")
-    queue = context.Queue()
+    results = context.Queue()
     budget, train = run.budget.to_table(), dict(run.config.train)
     processes = [
         context.Process(target=_worker_main, name=f"searcher-worker-{i}",
-                        args=(run.settings, budget, train, i, threads, deadline, os.getpid(), queue))
+                        args=(run.settings, budget, train, i, threads, deadline, os.getpid(), results))
         for i in range(count)
     ]
     received: list[int] = []
@@ -58,23 +63,35 @@ def run_workers(run: Any, deadline: float | None) -> tuple[str, int, list[str]]:
             exit_at_once(signum)
 
     previous = {s: signal.signal(s, forward) for s in (signal.SIGINT, signal.SIGTERM)}
+    collected: dict[int, tuple[StopReason, list[str]]] = {}
     try:
         for p in processes:
             p.start()
-        results = []
+        while len(collected) < count and any(p.is_alive() for p in processes):
+            try:
+                index, stop, proposals = results.get(timeout=0.5)
+                collected[index] = (stop, proposals)
+            except queue.Empty:
+                continue
+        while True:  # results put just before a process ended
+            try:
+                index, stop, proposals = results.get(timeout=0.1)
+                collected[index] = (stop, proposals)
+            except queue.Empty:
+                break
         for p in processes:
             p.join()
-        while not queue.empty():
-            results.append(queue.get())
     finally:
         for s, handler in previous.items():
             signal.signal(s, handler)
+    reasons = [stop for stop, _ in collected.values()]
     failed = [p.name for p in processes if p.exitcode not in (0, None)]
     if failed:
         log.warning("worker(s) %s ended with an error; see the messages above", ", ".join(failed))
-    stops = sorted({stop for _, stop, _ in results if stop})
-    stopped_by = "; ".join(stops)
+        reasons.append(StopReason(Ending.WORKER_FAILED, f"worker(s) {', '.join(failed)} ended with an error"))
     if received:
-        stopped_by = f"stopped by {signal.Signals(received[0]).name}" + (f"; {stopped_by}" if stopped_by else "")
-    proposals = [p for _, _, props in sorted(results) for p in props]
-    return stopped_by, _status(stopped_by), proposals
+        reasons.append(StopReason.by_signal(received[0]))
+    stop = first_of(reasons) if reasons else StopReason(Ending.WORKER_FAILED, "no worker reported back")
+    words = "; ".join(dict.fromkeys([stop.text, *(r.text for r in reasons)]))
+    proposals = [p for index in sorted(collected) for p in collected[index][1]]
+    return StopReason(stop.kind, words, stop.signum), proposals

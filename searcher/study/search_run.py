@@ -1,0 +1,88 @@
+"""``searcher search`` as a library call: prepare the run, run its workers, write the results.
+
+>>> import searcher                                                            # doctest: +SKIP
+>>> outcome = searcher.search(searcher.SearchSettings(name="demo", space="spaces/mcu.toml", trials=10))  # doctest: +SKIP
+>>> outcome.exit_status, outcome.best["arch"]                                   # doctest: +SKIP
+"""
+
+from __future__ import annotations
+
+import json
+import logging
+import time
+from dataclasses import asdict, dataclass, field
+from pathlib import Path
+from typing import Any
+
+import optuna
+
+from searcher.data.load import save_split
+from searcher.redact import redact
+from searcher.results.records import REJECTED, best_row, counts, trials_frame
+from searcher.results.tables import write_results
+from searcher.runs import write_atomic
+from searcher.study.ending import StopReason
+from searcher.study.launch import TrainerFor, run_worker
+from searcher.study.processes import run_workers
+from searcher.study.run import PreparedRun, SearchSettings, prepare
+from searcher.study.storage import open_study
+
+log = logging.getLogger(__name__)
+
+
+@dataclass
+class SearchOutcome:
+    """What a search invocation did; ``exit_status`` is what the command returns."""
+
+    folder: Path
+    counts: dict[str, int]
+    best: dict[str, Any] | None
+    stop: StopReason
+    rejected_share: list[float] = field(default_factory=list)  # share rejected per block of 50 proposals
+    rejected_by: dict[str, int] = field(default_factory=dict)  # rejections by the caps they broke
+    seconds: float = 0.0
+
+    @property
+    def exit_status(self) -> int:
+        return self.stop.exit_status
+
+
+def search(settings: SearchSettings, budget: dict | None = None, train: dict | None = None, *,
+           trainer_for: TrainerFor | None = None) -> SearchOutcome:
+    """Run (or continue) the search ``settings.name`` and write its results.
+
+    ``budget`` and ``train`` override keys of the space file's [budget] and [train] tables (as the
+    command line's options do). ``trainer_for(run, threads)`` makes the trainer of a single-worker
+search in place of the torch one (see :func:`searcher.study.launch.run_worker`).
+    """
+    run = prepare(settings, budget, train)
+    study, _ = open_study(settings.name, run.url, run.config, settings.sampler)
+    run.folder.mkdir(parents=True, exist_ok=True)
+    save_split(run.folder / "split.npz", run.data.dataset.indices, run.data.dataset.fingerprint)
+    write_atomic(run.folder / "run.json", json.dumps(
+        {"settings": {k: str(v) if isinstance(v, Path) else v for k, v in asdict(settings).items()}
+         | {"storage": redact(run.url)}, "config": run.config.to_dict()}, indent=2))
+    started = time.time()
+    deadline = None if settings.minutes is None else started + settings.minutes * 60
+    log.info("run %s: space %s, budget %s, %d classes, data %s; storage %s", settings.name, run.space.name,
+             run.budget.describe(), run.config.classes, settings.data, redact(run.url))
+    if settings.workers == 1:
+        tally = run_worker(run, study, deadline, index=0, trainer_for=trainer_for)
+        stop, proposals = tally.stop, tally.proposals
+    else:
+        stop, proposals = run_workers(run, deadline)
+    return finish(run, study, stop, proposals, time.time() - started)
+
+
+def finish(run: PreparedRun, study: optuna.Study, stop: StopReason, proposals: list[str],
+           seconds: float) -> SearchOutcome:
+    """Write trials.csv, front.csv and report.html, and sum the run up."""
+    frame = trials_frame(study)
+    write_results(run.folder, frame, run.budget, title=f"searcher run {run.settings.name}",
+                  notes=[f"space {run.space.name}; data {run.settings.data}; objective {run.settings.objective}",
+                         f"stopped: {stop.text}"])
+    blocks = [proposals[i:i + 50] for i in range(0, len(proposals), 50)]
+    share = [sum(p == REJECTED for p in b) / len(b) for b in blocks if b]
+    rejected_by = frame.loc[frame["state"] == REJECTED, "rejected_by"].value_counts().to_dict()
+    return SearchOutcome(run.folder, counts(frame), best_row(frame, run.budget.caps()), stop, share,
+                         {str(k): int(v) for k, v in rejected_by.items()}, seconds)

@@ -1,0 +1,98 @@
+"""The package's shape: imports at the top of modules, no import cycles, a torch-free core.
+
+Read from the source with Python's own parser (the standard library's ``ast``), so the rules hold
+for every module, including ones added later.
+"""
+
+from __future__ import annotations
+
+import ast
+from pathlib import Path
+
+import pytest
+
+PACKAGE = Path(__file__).parent.parent / "searcher"
+LATE_ALLOWED = ("torch", "plotly", "PIL", "onnx", "onnxruntime")  # heavy libraries a command may never need
+
+
+def _modules() -> dict[str, ast.Module]:
+    found = {}
+    for path in sorted(PACKAGE.rglob("*.py")):
+        if "spaces" in path.parts:
+            continue
+        parts = path.relative_to(PACKAGE.parent).with_suffix("").parts
+        name = ".".join(parts[:-1] if parts[-1] == "__init__" else parts)
+        found[name] = ast.parse(path.read_text(encoding="utf-8"), str(path))
+    return found
+
+
+MODULES = _modules()
+
+
+def _imported(node: ast.Import | ast.ImportFrom, module: str) -> list[str]:
+    if isinstance(node, ast.Import):
+        return [alias.name for alias in node.names]
+    if node.level:  # relative import
+        base = module.split(".")[: -node.level] if not module.endswith("__init__") else module.split(".")
+        return [".".join([*base, node.module or ""]).rstrip(".")]
+    return [node.module or ""]
+
+
+def _top_level_imports(tree: ast.Module) -> list[ast.Import | ast.ImportFrom]:
+    return [node for node in tree.body if isinstance(node, (ast.Import, ast.ImportFrom))]
+
+
+@pytest.mark.parametrize("module", sorted(MODULES))
+def test_imports_sit_at_the_top_except_heavy_libraries(module: str) -> None:
+    late = []
+    top = set(map(id, _top_level_imports(MODULES[module])))
+    for node in ast.walk(MODULES[module]):
+        if isinstance(node, (ast.Import, ast.ImportFrom)) and id(node) not in top:
+            names = _imported(node, module)
+            late += [n for n in names if n.split(".")[0] not in LATE_ALLOWED]
+    assert not late, f"{module} imports {late} inside a function or block; import them at the top"
+
+
+def test_no_import_cycles_inside_the_package() -> None:
+    graph: dict[str, set[str]] = {}
+    for module, tree in MODULES.items():
+        targets = set()
+        for node in _top_level_imports(tree):
+            for name in _imported(node, module):
+                if isinstance(node, ast.ImportFrom) and name in MODULES:
+                    # `from package import name`: the name may be a submodule
+                    targets |= {f"{name}.{a.name}" for a in node.names if f"{name}.{a.name}" in MODULES}
+                while name and name not in MODULES:
+                    name = name.rpartition(".")[0]
+                if name:
+                    targets.add(name)
+        graph[module] = targets - {module}
+    # a package's __init__ importing its own modules is how packages work; leave those edges out
+    for module in graph:
+        graph[module] = {t for t in graph[module] if not module.startswith(t + ".")}
+
+    state: dict[str, int] = {}
+    path: list[str] = []
+
+    def visit(node: str) -> None:
+        state[node] = 1
+        path.append(node)
+        for nxt in sorted(graph[node]):
+            if state.get(nxt) == 1:
+                cycle = path[path.index(nxt):] + [nxt]
+                raise AssertionError("import cycle: " + " -> ".join(cycle))
+            if nxt not in state:
+                visit(nxt)
+        path.pop()
+        state[node] = 2
+
+    for module in sorted(graph):
+        if module not in state:
+            visit(module)
+
+
+@pytest.mark.parametrize("module", sorted(m for m in MODULES if m.startswith("searcher.core")))
+def test_the_core_never_imports_torch(module: str) -> None:
+    for node in ast.walk(MODULES[module]):
+        if isinstance(node, (ast.Import, ast.ImportFrom)):
+            assert not any(n.split(".")[0] == "torch" for n in _imported(node, module)), module
