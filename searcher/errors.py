@@ -33,3 +33,10 @@ def one_of(value: object, options: list[str] | tuple[str, ...]) -> str:
     listed = ", ".join(repr(o) for o in options)
     hint = closest(str(value), options)
     return f"one of {listed}" + (f" (did you mean {hint!r}?)" if hint else "")
+
+
+def shorten(text: str, most: int = 80) -> str:
+    """A value cut to a readable length for a message: its start, '…', and how long it was."""
+    text = str(text)
+    return text if len(text) <= most else f"{text[: most - 20]}… ({len(text):,} characters)"
+

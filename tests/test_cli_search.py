@@ -102,7 +102,7 @@ def test_search_continues_under_the_same_name_and_refuses_a_changed_budget(capsy
     assert len(trained) == 3
     capsys.readouterr()
     assert run("search", "--space", "tiny.toml", "--name", "go", "--max-params", "2k") == 2
-    assert "different budget" in capsys.readouterr().err
+    assert "budget.max_params: 3000 -> 2000" in capsys.readouterr().err  # old against new
 
     assert run("status", "--name", "go") == 0
     out = capsys.readouterr().out
@@ -124,3 +124,40 @@ def test_two_objective_search_records_accuracy_and_cost(capsys, workdir):
         assert t.values[1] == t.user_attrs["searcher"]["params"]
     front = pd.read_csv(workdir / "runs" / "two" / "front.csv")
     assert len(front) >= 1 and (front.params <= 3000).all()
+
+
+@pytest.mark.slow
+def test_a_run_whose_study_is_gone_is_not_overwritten_and_status_writes_nothing(capsys, workdir):
+    """The study file removed: status and report refuse without creating one, a search under the same
+    name refuses to start a new study over the old results, and --force keeps them aside."""
+    folder = workdir / "runs" / "gone"
+    assert run("search", "--space", "tiny.toml", "--name", "gone", "--trials", "1") == 0
+    before = (folder / "trials.csv").read_bytes()
+    for suffix in ("", "-wal", "-shm"):
+        (folder / f"study.db{suffix}").unlink(missing_ok=True)
+    capsys.readouterr()
+    for command in ("status", "report"):
+        assert run(command, "--name", "gone") == 2
+        assert "study.db" in capsys.readouterr().err
+        assert not (folder / "study.db").exists()  # a command that reads never creates a store
+    assert run("search", "--space", "tiny.toml", "--name", "gone", "--trials", "1") == 2
+    err = capsys.readouterr().err
+    assert "--force" in err and "another --name" in err and "Traceback" not in err
+    assert (folder / "trials.csv").read_bytes() == before and not (folder / "study.db").exists()
+
+    assert run("search", "--space", "tiny.toml", "--name", "gone", "--trials", "1", "--force") == 0
+    kept, = folder.glob("replaced-*")
+    assert (kept / "trials.csv").read_bytes() == before  # the earlier results, moved aside whole
+    assert len(pd.read_csv(folder / "trials.csv")) >= 1
+
+
+def test_status_of_a_store_that_vanished_creates_nothing(tmp_path):
+    """Between the look for the file and the open, the store can go: opening to read never creates it."""
+    from searcher.errors import SearcherError
+    from searcher.study.storage import open_storage
+
+    for url in (f"sqlite:///{tmp_path / 'none.db'}", str(tmp_path / "none.journal")):
+        with pytest.raises(SearcherError, match="does not exist"):
+            open_storage(url, create=False)
+    assert list(tmp_path.iterdir()) == []
+

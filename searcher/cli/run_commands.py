@@ -16,7 +16,7 @@ def cmd_search(args: argparse.Namespace, space_path, budget_of) -> int:
         objective=args.objective, sampler=args.sampler, storage=args.storage, workers=args.workers, seed=args.seed,
         candidate_minutes=args.candidate_minutes,
         memory_cap=parse_bytes(args.max_train_memory, key="--max-train-memory") if args.max_train_memory else None,
-        skip_unreadable=args.skip_unreadable,
+        skip_unreadable=args.skip_unreadable, force=args.force,
     )
     outcome = searcher.search(settings, budget_of(args), train)
     c = outcome.counts
@@ -79,6 +79,8 @@ def add_search_commands(sub, space_path, add_budget, budget_of) -> None:
     p.add_argument("--candidate-minutes", type=float, help="per-candidate training limit")
     p.add_argument("--max-train-memory", metavar="BYTES", help="training-memory guard (default: half of free RAM)")
     p.add_argument("--skip-unreadable", action="store_true", help="skip and count image files that cannot be read")
+    p.add_argument("--force", action="store_true", help="start afresh where runs/NAME/ holds results but its study "
+                   "is gone (the earlier files are moved to runs/NAME/replaced-<time>/)")
     add_budget(p)
     p.set_defaults(run=lambda a: cmd_search(a, space_path, budget_of))
 

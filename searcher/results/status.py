@@ -71,7 +71,7 @@ def status(name: str, storage: str | None = None, root: Path = RUNS) -> RunStatu
     folder, study, config = open_run(name, storage, root)
     frame = trials_frame(study)
     now, host = time.time(), socket.gethostname()
-    alone = storage is None and not Registry(folder).others_alive()  # no worker of this run is alive here
+    alone = storage is None and not Registry(folder).others_alive(prune=False)  # no worker of this run is alive here
     running = []
     for t in study.get_trials(deepcopy=False, states=(TrialState.RUNNING,)):
         worker = t.user_attrs.get("worker", {})

@@ -68,8 +68,9 @@ class Registry:
     def __exit__(self, *exc: object) -> None:
         self.path.unlink(missing_ok=True)
 
-    def others_alive(self) -> bool:
-        """Is another registered worker of this run alive on this machine? Prunes dead entries."""
+    def others_alive(self, prune: bool = True) -> bool:
+        """Is another registered worker of this run alive on this machine? Prunes dead entries unless
+        told not to (a command that only reads writes nothing)."""
         host = socket.gethostname()
         alive = False
         for entry in self.folder.glob(f"{host}-*"):
@@ -78,7 +79,7 @@ class Registry:
                 continue
             if pid_alive(pid):
                 alive = True
-            else:
+            elif prune:
                 entry.unlink(missing_ok=True)
         return alive
 

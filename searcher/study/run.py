@@ -41,6 +41,7 @@ class SearchSettings:
     candidate_minutes: float | None = None  # per-candidate training limit
     memory_cap: int | None = None  # bytes for the training-memory guard; default half of free RAM
     skip_unreadable: bool = False  # skip (and count) images that cannot be decoded
+    force: bool = False  # start afresh where the run's results exist but its study is gone (old files kept aside)
     root: Path = RUNS  # where run folders live
 
     def check(self) -> None:

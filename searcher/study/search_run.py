@@ -17,6 +17,7 @@ from typing import Any
 import optuna
 
 from searcher.data.load import save_split
+from searcher.errors import SearcherError
 from searcher.redact import redact
 from searcher.results.records import REJECTED, best_row, counts, trials_frame
 from searcher.results.tables import write_results
@@ -25,7 +26,7 @@ from searcher.study.ending import StopReason
 from searcher.study.launch import TrainerFor, run_worker
 from searcher.study.processes import run_workers
 from searcher.study.run import PreparedRun, SearchSettings, prepare
-from searcher.study.storage import open_study
+from searcher.study.storage import open_study, study_exists
 
 log = logging.getLogger(__name__)
 
@@ -56,6 +57,7 @@ def search(settings: SearchSettings, budget: dict | None = None, train: dict | N
 search in place of the torch one (see :func:`searcher.study.launch.run_worker`).
     """
     run = prepare(settings, budget, train)
+    _keep_earlier_results(run)
     study, _ = open_study(settings.name, run.url, run.config, settings.sampler)
     run.folder.mkdir(parents=True, exist_ok=True)
     save_split(run.folder / "split.npz", run.data.dataset.indices, run.data.dataset.fingerprint)
@@ -72,6 +74,30 @@ search in place of the torch one (see :func:`searcher.study.launch.run_worker`).
     else:
         stop, proposals = run_workers(run, deadline)
     return finish(run, study, stop, proposals, time.time() - started)
+
+
+RESULT_FILES = ("trials.csv", "front.csv", "report.html", "run.json", "search.log", "split.npz", "export")
+
+
+def _keep_earlier_results(run: PreparedRun) -> None:
+    """Refuse to start a new study over a run folder whose results came from a study that is gone.
+
+    With ``force``, the earlier files are moved into ``runs/NAME/replaced-TIME/`` first: nothing the
+    user has is overwritten either way.
+    """
+    present = [name for name in RESULT_FILES if (run.folder / name).exists()]
+    if not present or study_exists(run.settings.name, run.url):
+        return
+    if not run.settings.force:
+        raise SearcherError(
+            f"{run.folder} holds results of an earlier search ({', '.join(present)}) but its study is not in "
+            f"{redact(run.url)}; restore the study, use another --name, or give --force to start afresh "
+            f"(the earlier files are then moved to {run.folder}/replaced-<time>/)", key="--name")
+    aside = run.folder / time.strftime("replaced-%Y%m%d-%H%M%S")
+    aside.mkdir(parents=True)
+    for name in present:
+        (run.folder / name).rename(aside / name)
+    log.warning("run %s: started afresh; the earlier results are in %s", run.settings.name, aside)
 
 
 def finish(run: PreparedRun, study: optuna.Study, stop: StopReason, proposals: list[str],

@@ -22,7 +22,7 @@ from typing import Any, Callable
 import optuna
 import sqlalchemy
 
-from searcher.errors import SearcherError, one_of
+from searcher.errors import SearcherError, one_of, shorten
 from searcher.redact import redact
 from searcher.runs import RUNS, run_folder
 from searcher.study.early_stop import make_pruner
@@ -57,17 +57,29 @@ def storage_kind(url: str) -> str:
     )
 
 
-def open_storage(url: str) -> optuna.storages.BaseStorage:
-    """An Optuna storage for a URL (sqlite:///, postgresql://) or a ``.journal`` file path."""
+def open_storage(url: str, *, create: bool = True) -> optuna.storages.BaseStorage:
+    """An Optuna storage for a URL (sqlite:///, postgresql://) or a ``.journal`` file path.
+
+    ``create=False`` is for commands that only read (status, report, export): a store file that
+    does not exist is refused instead of created, and nothing is repaired or converted.
+    """
     kind = storage_kind(url)
+    if not create and kind in ("sqlite", "journal"):
+        path = Path(url.removeprefix("sqlite:///"))
+        if not path.is_file():
+            raise SearcherError(f"the run's store {path} does not exist (give --storage for a run kept elsewhere)",
+                                key="--storage")
     try:
         if kind == "journal":
-            Path(url).parent.mkdir(parents=True, exist_ok=True)
-            repair_journal(Path(url))
+            if create:
+                Path(url).parent.mkdir(parents=True, exist_ok=True)
+                repair_journal(Path(url))
             backend = optuna.storages.journal.JournalFileBackend(url)
             return optuna.storages.JournalStorage(backend)
         if kind == "sqlite":
             path = Path(url.removeprefix("sqlite:///"))
+            if not create:  # mode=rw: SQLite opens the file only if it exists, never makes a new one
+                return _rdb_storage(f"sqlite:///file:{path}?mode=rw&uri=true", {"connect_args": {"timeout": 120}})
             path.parent.mkdir(parents=True, exist_ok=True)
             with sqlite3.connect(path) as connection:  # WAL lets readers (status, report) not block writers
                 connection.execute("PRAGMA journal_mode=WAL")
@@ -260,10 +272,11 @@ def open_study(name: str, url: str, config: RunConfig | None, sampler: str = "tp
                worker: int = 0) -> tuple[optuna.Study, RunConfig]:
     """Create the run's study or load it; refuse to continue a study that searched something else.
 
-    ``config`` None means read-only use (report, status, export): the stored one is returned.
+    ``config`` None means read-only use (report, status, export): the stored one is returned, and a
+    store that does not exist is refused rather than created.
     """
     optuna.logging.set_verbosity(optuna.logging.WARNING)
-    storage = open_storage(url)
+    storage = open_storage(url, create=config is not None)
     existing = {s.study_name: s for s in optuna.get_all_study_summaries(storage)}
     # another worker may have created the study a moment ago and not yet stored its configuration
     stored_config = existing[name].user_attrs.get("config") if name in existing else None
@@ -282,12 +295,10 @@ def open_study(name: str, url: str, config: RunConfig | None, sampler: str = "tp
     if stored_config is not None:
         stored = RunConfig.from_dict(stored_config)
         if stored.digest() != config.digest():
-            changed = [k for k in config.__dict__ if getattr(config, k) != getattr(stored, k)]
+            changes = "; ".join(config_changes(stored, config))
             raise SearcherError(
-                f"run {name!r} was started with a different {', '.join(changed)}; "
-                f"continue it with the same settings, or start a new run with another --name",
-                key="--name",
-            )
+                f"run {name!r} was started with other settings ({changes}); continue it with the same "
+                f"settings, or start a new run with another --name", key="--name")
     pruner = make_pruner(int(config.train.get("epochs", 6)))
     study = optuna.create_study(study_name=name, storage=storage, directions=directions, load_if_exists=True,
                                 sampler=make_sampler(sampler, config.objective, config.seed + worker), pruner=pruner)
@@ -296,8 +307,34 @@ def open_study(name: str, url: str, config: RunConfig | None, sampler: str = "tp
     return study, config
 
 
+def config_changes(old: RunConfig, new: RunConfig) -> list[str]:
+    """What differs between a run's stored configuration and the one asked for, as 'key: old -> new'."""
+    changes = []
+    for key in old.__dict__:
+        before, after = getattr(old, key), getattr(new, key)
+        if before == after:
+            continue
+        if isinstance(before, dict):
+            keys = sorted(set(before) | set(after), key=str)
+            changes += [f"{key}.{k}: {before.get(k)!r} -> {after.get(k)!r}" for k in keys if before.get(k) != after.get(k)]
+        elif key == "space_text":
+            changes.append("the space file's text")
+        else:
+            changes.append(f"{key}: {shorten(repr(before))} -> {shorten(repr(after))}")
+    return changes
+
+
+def study_exists(name: str, url: str) -> bool:
+    """Is there a study ``name`` in the store at ``url``? Never creates the store."""
+    try:
+        storage = open_storage(url, create=False)
+    except SearcherError:
+        return False
+    return name in {s.study_name for s in optuna.get_all_study_summaries(storage)}
+
+
 def open_run(name: str, storage: str | None = None, root: Path | None = None) -> tuple[Path, optuna.Study, RunConfig]:
-    """A stored run for reading (report, status, export): its folder, study and configuration."""
+    """A stored run for reading (report, status, export): its folder, study and configuration; writes nothing."""
     folder = run_folder(name, root or RUNS)
     if storage is None and not (folder / "study.db").exists():
         raise SearcherError(f"no run {name!r}: {folder / 'study.db'} does not exist "
