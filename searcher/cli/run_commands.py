@@ -17,10 +17,12 @@ def cmd_search(args: argparse.Namespace, space_path, budget_of) -> int:
         candidate_minutes=args.candidate_minutes,
         memory_cap=parse_bytes(args.max_train_memory, key="--max-train-memory") if args.max_train_memory else None,
         skip_unreadable=args.skip_unreadable, force=args.force,
+        confirm=searcher.ConfirmSettings(seeds=args.confirm, most=args.confirm_candidates, extra=args.confirm_random),
     )
     outcome = searcher.search(settings, budget_of(args), train)
     c = outcome.counts
-    print(f"run {args.name}: {outcome.stop.text} after {outcome.seconds / 60:.1f} min")
+    print(f"run {args.name}: {outcome.stop.text} after {outcome.seconds / 60:.1f} min "
+          f"(proxy search {outcome.proxy_seconds / 60:.1f} min, confirmation {outcome.confirm_seconds / 60:.1f} min)")
     print(f"tried {c['tried']}: rejected {c['rejected']}, trained {c['trained']}, stopped early {c['stopped_early']}, "
           f"failed {c['failed']}, interrupted {c['interrupted']}"
           + (f"; {c['repeats']} of these reused a known outcome" if c["repeats"] else ""))
@@ -34,7 +36,15 @@ def cmd_search(args: argparse.Namespace, space_path, budget_of) -> int:
               f"macs {int(b['macs']):,}  {b['arch']}")
     else:
         print("no fully trained candidate fits the budget yet")
-    print(f"results: {outcome.folder / 'trials.csv'}, {outcome.folder / 'report.html'}")
+    confirmed = outcome.confirmation
+    if confirmed is not None:
+        print(f"confirmed {int((confirmed.table['seeds'] > 0).sum())} candidate(s) with the export's schedule; "
+              + confirmed.advice())
+        if confirmed.pick is not None:
+            print(f"export will take: {confirmed.pick.reason}")
+        if confirmed.queued:
+            print(f"{confirmed.queued} confirmation job(s) left for the next run with this --name")
+    print(f"results: {outcome.folder / 'trials.csv'}, {outcome.folder / 'report.html'}, {outcome.folder / 'summary.json'}")
     return outcome.exit_status
 
 
@@ -51,7 +61,8 @@ def cmd_status(args: argparse.Namespace) -> int:
 
 def cmd_export(args: argparse.Namespace) -> int:
     outcome = searcher.export(searcher.ExportSettings(name=args.name, trial=args.trial, arch=args.arch,
-                                                      epochs=args.epochs, storage=args.storage))
+                                                      epochs=args.epochs, storage=args.storage,
+                                                      tolerance=args.tolerance, force=args.force))
     print(f"exported {outcome.arch}")
     print(f"test accuracy {outcome.test_accuracy:.4f} on the held-out split; "
           + ("meets every cap" if outcome.fits else "BREAKS a cap"))
@@ -79,6 +90,13 @@ def add_search_commands(sub, space_path, add_budget, budget_of) -> None:
     p.add_argument("--candidate-minutes", type=float, help="per-candidate training limit")
     p.add_argument("--max-train-memory", metavar="BYTES", help="training-memory guard (default: half of free RAM)")
     p.add_argument("--skip-unreadable", action="store_true", help="skip and count image files that cannot be read")
+    p.add_argument("--confirm", type=int, default=3, metavar="SEEDS",
+                   help="after the proxy search, retrain the front with the export's schedule over this many seeds "
+                        "(default 3; 0 turns confirmation off)")
+    p.add_argument("--confirm-candidates", type=int, default=8, metavar="N",
+                   help="at most this many candidates from on or near the fronts (default 8)")
+    p.add_argument("--confirm-random", type=int, default=2, metavar="N",
+                   help="plus this many trained candidates from elsewhere, to check the ranking lower down (default 2)")
     p.add_argument("--force", action="store_true", help="start afresh where runs/NAME/ holds results but its study "
                    "is gone (the earlier files are moved to runs/NAME/replaced-<time>/)")
     add_budget(p)
@@ -97,4 +115,9 @@ def add_search_commands(sub, space_path, add_budget, budget_of) -> None:
     p.add_argument("--arch", help="export this architecture (text or JSON) instead")
     p.add_argument("--epochs", type=int, help="training epochs (default 3x the search's, at least 10)")
     p.add_argument("--storage", help="the run's storage URL when it is not runs/NAME/study.db")
+    p.add_argument("--tolerance", type=float, metavar="ACCURACY",
+                   help="the default pick may be this much less accurate than the best confirmed candidate "
+                        "(0.01 = one point; default: two standard errors from the seeds' spread)")
+    p.add_argument("--force", action="store_true",
+                   help="replace an existing export with a candidate that breaks a cap or failed")
     p.set_defaults(run=cmd_export)

@@ -2,7 +2,6 @@
 
 from __future__ import annotations
 
-import math
 from dataclasses import dataclass, field
 from pathlib import Path
 
@@ -13,6 +12,7 @@ from searcher.core.arch import Arch
 from searcher.core.budget import CAP_COLUMNS, Budget, show_cost
 from searcher.core.census import batch_costs, decode, enumerate_all, multiplicity, sample
 from searcher.core.space import Space
+from searcher.core.stats import wilson_interval
 from searcher.runs import write_atomic
 
 
@@ -48,10 +48,7 @@ class Census:
         """95% Wilson score interval of the fraction (a point when exact)."""
         if self.exact:
             return self.fraction, self.fraction
-        n, p, z = self.evaluated, self.fraction, 1.959964
-        centre = (p + z * z / (2 * n)) / (1 + z * z / n)
-        half = z * math.sqrt(p * (1 - p) / n + z * z / (4 * n * n)) / (1 + z * z / n)
-        return max(0.0, centre - half), min(1.0, centre + half)
+        return wilson_interval(int(self.fits.sum()), self.evaluated)
 
     def spread(self) -> pd.DataFrame:
         """Quantiles of every cost over the fitting candidates."""

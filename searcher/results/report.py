@@ -9,7 +9,7 @@ from __future__ import annotations
 import html
 import logging
 import math
-from collections.abc import Callable, Mapping
+from collections.abc import Mapping
 from pathlib import Path
 
 import numpy as np
@@ -20,38 +20,22 @@ from plotly.offline import get_plotlyjs
 
 from searcher.errors import SearcherError
 from searcher.results.records import (
-    DUPLICATE, FAILED, INTERRUPTED, NOT_STARTED, QUEUED, REJECTED, RUNNING, SCORED, STOPPED, TRAINED, best_row,
+    FAILED, INTERRUPTED, REJECTED, SCORED, TRAINED, best_row,
     counts as trial_counts, distinct_rows,
 )
-from searcher.runs import write_atomic
+from searcher.results.confirmed import Confirmation
 from searcher.results.pareto import COST_COLUMNS, check_caps, feasible_mask, front, front_steps
-from searcher.core.units import format_bytes, format_count
+from searcher.results.report_parts import (
+    COLOURS, CONFIG, COST_LABELS, SHOWN_WHEN_ANY, STATE_LABELS, TEMPLATE, cost_text, empty_note, log_axis, percent,
+    table_html,
+)
+from searcher.results.report_confirmed import add_confirmed, confirmation_html, confirmed_front_html, proxy_figure
+from searcher.runs import write_atomic
 
 log = logging.getLogger(__name__)
 
-# Trial states in the order the header counts them, with the words shown for each.
-STATE_LABELS: dict[str, str] = {TRAINED: "trained", STOPPED: "stopped early", REJECTED: "rejected",
-                                FAILED: "failed", INTERRUPTED: "interrupted", RUNNING: "running",
-                                QUEUED: "queued again", NOT_STARTED: "not started (time)",
-                                DUPLICATE: "left to another worker"}
-_SHOWN_WHEN_ANY = (QUEUED, NOT_STARTED, DUPLICATE)  # header tiles only when some exist
-# Each cost column: the words for it and how its numbers are written.
-COST_LABELS: dict[str, tuple[str, Callable[[float], str]]] = {
-    "params": ("parameters", format_count), "macs": ("MACs", format_count),
-    "peak_activation_bytes": ("peak activation RAM", format_bytes), "weight_bytes": ("weight size", format_bytes),
-}
 _TEXT_COLUMNS = ("arch", "state", "reason", "rejected_by")
 _NUMBER_COLUMNS = ("trial", "val_accuracy", *COST_COLUMNS, "stages", "first_width")
-_COLOURS = {TRAINED: "#3b6ea8", STOPPED: "#d08b2c", "front": "#222222", "cap": "#b03a3a", "bar": "#7a7f87"}
-_CONFIG = {"displaylogo": False, "responsive": True}
-_AXIS = {"gridcolor": "#e6e6e6", "linecolor": "#999", "zeroline": False}
-_TEMPLATE = go.layout.Template(layout=go.Layout(
-    font={"family": "system-ui, -apple-system, 'Segoe UI', sans-serif", "size": 13, "color": "#222"},
-    paper_bgcolor="white", plot_bgcolor="#fbfbfb", height=420, xaxis=_AXIS, yaxis=_AXIS,
-    hoverlabel={"bgcolor": "white", "font": {"size": 12}}, title={"x": 0.01, "xanchor": "left"},
-    margin={"l": 60, "r": 20, "t": 70, "b": 50},
-    legend={"orientation": "h", "x": 1, "xanchor": "right", "y": 1.02, "yanchor": "bottom"},
-))
 
 
 def prepare(trials: pd.DataFrame) -> pd.DataFrame:
@@ -70,22 +54,14 @@ def prepare(trials: pd.DataFrame) -> pd.DataFrame:
     return table
 
 
-def _percent(value: float) -> str:
-    return "—" if value is None or math.isnan(value) else f"{value:.1%}"
-
-
-def _cost_text(column: str, value: float) -> str:
-    return "—" if math.isnan(value) else COST_LABELS[column][1](value)
-
-
 def _hover(rows: pd.DataFrame) -> list[str]:
     """Hover lines: the architecture verbatim, then accuracy and every cost."""
     lines = []
     for row in rows.itertuples(index=False):
-        costs = " · ".join(f"{COST_LABELS[c][0]} {_cost_text(c, getattr(row, c))}" for c in COST_COLUMNS)
+        costs = " · ".join(f"{COST_LABELS[c][0]} {cost_text(c, getattr(row, c))}" for c in COST_COLUMNS)
         trial, state = "?" if math.isnan(row.trial) else int(row.trial), STATE_LABELS.get(row.state, row.state)
         lines.append(f"<b>{html.escape(row.arch, quote=False)}</b><br>trial {trial} · {state} · "
-                     f"accuracy {_percent(row.val_accuracy)}<br>{costs}")
+                     f"accuracy {percent(row.val_accuracy)}<br>{costs}")
     return lines
 
 
@@ -93,56 +69,35 @@ def _scored(table: pd.DataFrame) -> pd.DataFrame:
     return table[table["state"].isin(SCORED) & table["val_accuracy"].notna()]
 
 
-def _empty_note(fig: go.Figure, text: str, empty: bool) -> go.Figure:
-    if empty:
-        fig.add_annotation(text=text, showarrow=False, xref="paper", yref="paper", x=0.5, y=0.5, font={"size": 15})
-    return fig
-
-
-def _log_axis(fig: go.Figure, cost: str, values: list[float]) -> None:
-    """A log x axis over the values, ticked at round numbers written for people (20k, 64 KiB)."""
-    label, write = COST_LABELS[cost]
-    fig.update_xaxes(type="log", title=f"{label} (log scale)")
-    positive = [v for v in values if v > 0 and math.isfinite(v)]
-    if not positive:
-        return
-    low, high = math.log10(min(positive)) - 0.15, math.log10(max(positive)) + 0.15
-    binary = write is format_bytes  # bytes tick at powers of two, counts at 1-2-5 steps
-    candidates = [2.0**k for k in range(64)] if binary else [m * 10.0**k for k in range(19) for m in (1, 2, 5)]
-    ticks = [t for t in candidates if low <= math.log10(t) <= high]
-    ticks = ticks[:: max(1, math.ceil(len(ticks) / 9))]
-    fig.update_xaxes(range=[low, high], tickvals=ticks, ticktext=[write(t) for t in ticks])
-
-
 def _cost_figure(table: pd.DataFrame, cost: str, caps: dict[str, float]) -> go.Figure:
     """Accuracy against one cost: every scored point, the feasible front, the cap line."""
     scored = _scored(table)
     fits = feasible_mask(scored, caps)
-    fig = go.Figure(layout={"template": _TEMPLATE, "title": f"Accuracy against {COST_LABELS[cost][0]}"})
+    fig = go.Figure(layout={"template": TEMPLATE, "title": f"Accuracy against {COST_LABELS[cost][0]}"})
     for state in SCORED:
         rows = scored[scored["state"] == state]
         fig.add_scatter(
             x=rows[cost], y=rows["val_accuracy"], mode="markers", name=STATE_LABELS[state],
-            marker={"color": _COLOURS[state], "size": 8, "opacity": 0.8,
+            marker={"color": COLOURS[state], "size": 8, "opacity": 0.8,
                     "symbol": np.where(fits[(scored["state"] == state).to_numpy()], "circle", "circle-open")},
             text=_hover(rows), hovertemplate="%{text}<extra></extra>",
         )
     best = front(table, cost, caps=caps)
     fig.add_scatter(
         x=best[cost], y=best["val_accuracy"], mode="lines+markers", name="Pareto front (within caps)",
-        line={"color": _COLOURS["front"], "width": 2, "shape": "hv"},
-        marker={"color": _COLOURS["front"], "size": 11, "symbol": "diamond"},
+        line={"color": COLOURS["front"], "width": 2, "shape": "hv"},
+        marker={"color": COLOURS["front"], "size": 11, "symbol": "diamond"},
         text=_hover(best), hovertemplate="%{text}<extra></extra>",
     )
     for limit in [caps[cost]] if cost in caps else []:
         fig.add_shape(type="line", x0=limit, x1=limit, y0=0, y1=1, xref="x", yref="paper",
-                      line={"color": _COLOURS["cap"], "dash": "dash", "width": 2})
+                      line={"color": COLOURS["cap"], "dash": "dash", "width": 2})
         fig.add_annotation(x=math.log10(limit), y=1, xref="x", yref="paper", yanchor="top", xanchor="left",
                            xshift=4, showarrow=False, bgcolor="rgba(255,255,255,0.8)",
-                           text=f"cap {_cost_text(cost, limit)}", font={"color": _COLOURS["cap"]})
-    _log_axis(fig, cost, [*scored[cost].tolist(), *([caps[cost]] if cost in caps else [])])
+                           text=f"cap {cost_text(cost, limit)}", font={"color": COLOURS["cap"]})
+    log_axis(fig, cost, [*scored[cost].tolist(), *([caps[cost]] if cost in caps else [])])
     fig.update_yaxes(title="validation accuracy", tickformat=".0%", range=[0, 1] if scored.empty else None)
-    return _empty_note(fig, "no trained candidates yet", scored.empty)
+    return empty_note(fig, "no trained candidates yet", scored.empty)
 
 
 def _group_figure(table: pd.DataFrame, column: str, label: str) -> go.Figure:
@@ -150,16 +105,16 @@ def _group_figure(table: pd.DataFrame, column: str, label: str) -> go.Figure:
     scored = _scored(table)
     groups = ["?" if math.isnan(v) else f"{v:g}" for v in scored[column]]  # '?' where the table has no value
     names = sorted(set(groups) - {"?"}, key=float) + (["?"] if "?" in groups else [])
-    fig = go.Figure(layout={"template": _TEMPLATE, "title": f"Accuracy by {label}", "showlegend": False})
+    fig = go.Figure(layout={"template": TEMPLATE, "title": f"Accuracy by {label}", "showlegend": False})
     fig.add_box(
         x=groups, y=scored["val_accuracy"],
-        boxpoints="all", jitter=0.4, pointpos=0, hoveron="points", marker={"color": _COLOURS[TRAINED], "size": 6},
+        boxpoints="all", jitter=0.4, pointpos=0, hoveron="points", marker={"color": COLOURS[TRAINED], "size": 6},
         line={"color": "#555"}, fillcolor="rgba(59,110,168,0.12)",
         text=_hover(scored), hovertemplate="%{text}<extra></extra>",
     )
     fig.update_xaxes(title=label, type="category", categoryorder="array", categoryarray=names)
     fig.update_yaxes(title="validation accuracy", tickformat=".0%", range=[0, 1] if scored.empty else None)
-    return _empty_note(fig, "no trained candidates yet", scored.empty)
+    return empty_note(fig, "no trained candidates yet", scored.empty)
 
 
 def broken_caps_label(rejected_by: str) -> str:
@@ -171,19 +126,23 @@ def broken_caps_label(rejected_by: str) -> str:
 def _rejected_figure(table: pd.DataFrame) -> go.Figure:
     """How many candidates each combination of broken caps turned away before training."""
     counts = table.loc[table["state"] == REJECTED, "rejected_by"].map(broken_caps_label).value_counts().sort_values()
-    fig = go.Figure(layout={"template": _TEMPLATE, "title": "Rejected before training, by broken cap",
+    fig = go.Figure(layout={"template": TEMPLATE, "title": "Rejected before training, by broken cap",
                             "showlegend": False, "height": max(260, 120 + 28 * len(counts))})
-    fig.add_bar(x=counts.to_numpy(), y=counts.index.tolist(), orientation="h", marker={"color": _COLOURS["bar"]},
+    fig.add_bar(x=counts.to_numpy(), y=counts.index.tolist(), orientation="h", marker={"color": COLOURS["bar"]},
                 text=counts.to_numpy(), textposition="auto", hovertemplate="%{y}: %{x}<extra></extra>")
     fig.update_xaxes(title="candidates", rangemode="tozero")
     fig.update_yaxes(type="category", automargin=True)
-    return _empty_note(fig, "no candidates rejected", counts.empty)
+    return empty_note(fig, "no candidates rejected", counts.empty)
 
 
-def build_figures(trials: pd.DataFrame, caps: Mapping[str, float | None] | None = None) -> dict[str, go.Figure]:
+def build_figures(trials: pd.DataFrame, caps: Mapping[str, float | None] | None = None,
+                  confirmation: Confirmation | None = None) -> dict[str, go.Figure]:
     """Every chart of the report, keyed by the column it is about, in page order."""
     table, set_caps = prepare(trials), check_caps(caps)
     figures = {cost: _cost_figure(table, cost, set_caps) for cost in COST_COLUMNS}
+    for cost in COST_COLUMNS:
+        add_confirmed(figures[cost], confirmation, cost)
+    figures["proxy"] = proxy_figure(confirmation)
     figures["stages"] = _group_figure(table, "stages", "depth (stages)")
     figures["first_width"] = _group_figure(table, "first_width", "first width (channels)")
     figures["rejected_by"] = _rejected_figure(table)
@@ -199,20 +158,13 @@ def front_table_html(trials: pd.DataFrame, cost: str, caps: Mapping[str, float |
     heads = ["trial", "architecture", "accuracy", *(COST_LABELS[c][0] for c in COST_COLUMNS),
              "step from the row above", f"accuracy per 2× {COST_LABELS[cost][0]}"]
     rows = [
-        [str(int(row.trial)), f"<code>{html.escape(row.arch)}</code>", _percent(row.val_accuracy),
-         *(_cost_text(c, getattr(row, c)) for c in COST_COLUMNS),
+        [str(int(row.trial)), f"<code>{html.escape(row.arch)}</code>", percent(row.val_accuracy),
+         *(cost_text(c, getattr(row, c)) for c in COST_COLUMNS),
          "—" if math.isnan(step) else f"{step * 100:+.1f} pts for ×{ratio:.2f} cost",
          "—" if math.isnan(gain) else f"{gain * 100:+.1f} pts"]
         for (step, ratio, gain), row in zip(steps.itertuples(index=False), best.itertuples(index=False))
     ]
-    return _table(heads, rows, "numbers")
-
-
-def _table(heads: list[str], rows: list[list[str]], css: str) -> str:
-    """An HTML table; heads are plain text, cells are HTML already escaped by the caller."""
-    head = "".join(f"<th>{html.escape(h)}</th>" for h in heads)
-    body = "".join("<tr>" + "".join(f"<td>{cell}</td>" for cell in row) + "</tr>" for row in rows)
-    return f'<table class="{css}"><thead><tr>{head}</tr></thead><tbody>{body}</tbody></table>'
+    return table_html(heads, rows, "numbers")
 
 
 def _failures_html(table: pd.DataFrame, most: int = 30) -> str:
@@ -223,26 +175,27 @@ def _failures_html(table: pd.DataFrame, most: int = 30) -> str:
     rows = [[str(int(r.trial)), STATE_LABELS[r.state], f"<code>{html.escape(r.arch)}</code>",
              html.escape(r.reason) or "—"] for r in bad.head(most).itertuples(index=False)]
     more = f"<p class='quiet'>and {len(bad) - most} more.</p>" if len(bad) > most else ""
-    return f"<h2>Failed or interrupted</h2>{_table(['trial', 'state', 'architecture', 'reason'], rows, 'text')}{more}"
+    return f"<h2>Failed or interrupted</h2>{table_html(['trial', 'state', 'architecture', 'reason'], rows, 'text')}{more}"
 
 
-def _header_html(table: pd.DataFrame, caps: dict[str, float], title: str, notes: list[str]) -> str:
+def _header_html(table: pd.DataFrame, caps: dict[str, float], title: str, notes: list[str],
+                 confirmation: Confirmation | None, sizes: dict[str, int]) -> str:
     """Counts over every trial, as the search command's summary gives them; the best among distinct ones."""
     counts = trial_counts(table)
     tiles = [("tried", counts["tried"])]
     tiles += [(label, counts[state]) for state, label in STATE_LABELS.items()
-              if state not in _SHOWN_WHEN_ANY or counts[state]]
+              if state not in SHOWN_WHEN_ANY or counts[state]]
     if counts["repeats"]:
         tiles.append(("reused a known outcome", counts["repeats"]))
     tile_html = "".join(f'<div class="tile"><b>{n}</b><span>{html.escape(w)}</span></div>' for w, n in tiles)
     top = best_row(table, caps)  # the best is fully trained, as exported; fewest params wins a tie
     best = "No candidate within the caps has been fully trained yet." if top is None else (
-        f"Best fully trained within the caps: <b>{_percent(top['val_accuracy'])}</b> by "
+        f"Best fully trained within the caps: <b>{percent(top['val_accuracy'])}</b> by "
         f"<code>{html.escape(top['arch'])}</code> (trial {int(top['trial'])}).")
-    cap_words = ", ".join(f"{COST_LABELS[c][0]} ≤ {_cost_text(c, v)}" for c, v in caps.items()) or "none set"
+    cap_words = ", ".join(f"{COST_LABELS[c][0]} ≤ {cost_text(c, v)}" for c, v in caps.items()) or "none set"
     note_html = "".join(f"<li>{html.escape(line)}</li>" for line in notes)
     return (f"<header><h1>{html.escape(title)}</h1><div class='tiles'>{tile_html}</div><p>{best}</p>"
-            f"<p class='quiet'>Caps: {html.escape(cap_words)}.</p>"
+            f"{confirmation_html(confirmation, sizes)}<p class='quiet'>Caps: {html.escape(cap_words)}.</p>"
             + (f"<ul class='notes'>{note_html}</ul>" if notes else "") + "</header>")
 
 
@@ -258,24 +211,28 @@ h1 { font-size: 24px; margin: 0 0 12px; } h2 { font-size: 18px; margin: 4px 0 8p
 th, td { border-bottom: 1px solid #e4e4e4; padding: 4px 8px; text-align: left; }
 tbody tr:nth-child(odd) { background: #fafafa; } .numbers td, .numbers th { text-align: right; }
 .numbers td:nth-child(2), .numbers th:nth-child(2) { text-align: left; }
+.warn { color: #8a3b00; font-weight: 600; } h3 { font-size: 15px; margin: 14px 0 4px; }
 @media (min-width: 900px) { .pair { grid-template-columns: 1fr 1fr; } }"""
 
 
 def render_html(trials: pd.DataFrame, *, caps: Mapping[str, float | None] | None, title: str,
-                notes: list[str] | None = None) -> str:
-    """The whole page as text: header, one section per cost with its front, then the rest."""
+                notes: list[str] | None = None, confirmation: Confirmation | None = None,
+                sizes: dict[str, int] | None = None) -> str:
+    """The whole page as text: header, one section per cost with its fronts, then the rest."""
     everything, set_caps = prepare(trials), check_caps(caps)
     table = distinct_rows(everything)  # a repeat of a known outcome is shown once, where it was trained
-    figures = build_figures(table, set_caps)
+    figures = build_figures(table, set_caps, confirmation)
 
     def div(key: str) -> str:
-        return pio.to_html(figures[key], config=_CONFIG, include_plotlyjs=False, full_html=False, div_id=f"fig-{key}")
+        return pio.to_html(figures[key], config=CONFIG, include_plotlyjs=False, full_html=False, div_id=f"fig-{key}")
 
     sections = [
         f"<section>{div(c)}<h2>Pareto front by {html.escape(COST_LABELS[c][0])}</h2>"
+        f"{confirmed_front_html(confirmation, c, set_caps)}<h3>Proxy front by {html.escape(COST_LABELS[c][0])}</h3>"
         f"{front_table_html(table, c, set_caps)}</section>"
         for c in COST_COLUMNS
     ]
+    sections.insert(0, f"<section>{div('proxy')}</section>")
     sections.append(f"<section><h2>Shape</h2><div class='pair'>{div('stages')}{div('first_width')}</div></section>")
     sections.append(
         f"<section><h2>Rejected, failed or interrupted</h2>{div('rejected_by')}{_failures_html(table)}</section>"
@@ -284,15 +241,17 @@ def render_html(trials: pd.DataFrame, *, caps: Mapping[str, float | None] | None
         f"<!doctype html>\n<html lang='en'><head><meta charset='utf-8'><title>{html.escape(title)}</title>"
         f"<style>{_STYLE}</style><script>window.PlotlyConfig = {{MathJaxConfig: 'local'}};</script>"
         f"<script>{get_plotlyjs()}</script></head>\n<body><main>"
-        f"{_header_html(everything, set_caps, title, list(notes or []))}{''.join(sections)}</main></body></html>\n"
+        f"{_header_html(everything, set_caps, title, list(notes or []), confirmation, sizes or {})}"
+        f"{''.join(sections)}</main></body></html>\n"
     )
 
 
 def write_report(trials: pd.DataFrame, path: Path, *, caps: dict[str, float], title: str,
-                 notes: list[str] | None = None) -> Path:
+                 notes: list[str] | None = None, confirmation: Confirmation | None = None,
+                 sizes: dict[str, int] | None = None) -> Path:
     """Write the report to ``path`` atomically, so a reader never sees half a page."""
     path = Path(path)
-    text = render_html(trials, caps=caps, title=title, notes=notes)
+    text = render_html(trials, caps=caps, title=title, notes=notes, confirmation=confirmation, sizes=sizes)
     write_atomic(path, text)
     log.info("wrote report %s (%d trials)", path, len(trials))
     return path

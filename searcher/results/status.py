@@ -17,10 +17,10 @@ from optuna.trial import TrialState
 from searcher.core.budget import Budget
 from searcher.redact import redact
 from searcher.results.records import HEARTBEAT, best_row, counts, trials_frame
-from searcher.results.tables import write_results
+from searcher.results.tables import gather, write_results
 from searcher.runs import RUNS
 from searcher.study.liveness import Registry, is_dead
-from searcher.study.storage import RunConfig, open_run
+from searcher.study.storage import RunConfig, open_run, storage_url
 
 
 @dataclass(frozen=True)
@@ -83,8 +83,10 @@ def status(name: str, storage: str | None = None, root: Path = RUNS) -> RunStatu
 
 
 def report(name: str, storage: str | None = None, root: Path = RUNS) -> list[Path]:
-    """Rebuild trials.csv, front.csv and report.html of run ``name`` from its stored study."""
+    """Rebuild the result files of run ``name`` (trials.csv, front.csv, confirmed.csv, summary.json,
+    report.html) from its stored studies."""
     folder, study, config = open_run(name, storage, root)
-    return write_results(folder, trials_frame(study), Budget(**config.budget), title=f"searcher run {name}",
+    results = gather(name, study, storage_url(storage, folder), config, folder)
+    return write_results(folder, results, title=f"searcher run {name}",
                          notes=[f"space {config.space_name}; data {config.data}; objective {config.objective}",
                                 f"rebuilt {time.strftime('%Y-%m-%d %H:%M:%S')}"])

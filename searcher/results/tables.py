@@ -1,15 +1,65 @@
-"""Results of a run on disk: trials.csv, front.csv and report.html."""
+"""Results of a run on disk: trials.csv, front.csv, confirmed.csv, summary.json and report.html.
+
+:func:`gather` reads everything a run has stored (its trials and its confirmation jobs) and
+:func:`write_results` writes every result file from that, each whole or not at all, so the search,
+``searcher report`` and ``export`` all see the same numbers.
+"""
 
 from __future__ import annotations
 
+import json
+import math
+from dataclasses import dataclass
 from pathlib import Path
+
+import optuna
 import pandas as pd
 
 from searcher.core.budget import CAP_COLUMNS, Budget
+from searcher.core.stats import accuracy_se
+from searcher.core.train_settings import TrainSettings
+from searcher.data.load import load_split
+from searcher.results.confirmed import Confirmation, confirmation
 from searcher.results.pareto import front
-from searcher.results.records import distinct_rows
+from searcher.results.records import best_row, counts, distinct_rows, trials_frame
 from searcher.results.report import write_report
 from searcher.runs import write_atomic
+from searcher.study.confirm import full_schedule, read_jobs
+from searcher.study.storage import OBJECTIVES, RunConfig
+
+
+@dataclass(frozen=True)
+class RunResults:
+    """What a run has found so far, read from its store."""
+
+    name: str
+    config: RunConfig
+    frame: pd.DataFrame  # the trials table
+    confirmation: Confirmation | None  # None before any job was queued
+    sizes: dict[str, int]  # images in the train, val and test splits (empty when unknown)
+
+    @property
+    def budget(self) -> Budget:
+        return Budget(**self.config.budget)
+
+    @property
+    def cost(self) -> str:
+        """The cost the default pick is cheapest in: the objective's, or parameters."""
+        return OBJECTIVES[self.config.objective] or "params"
+
+
+def gather(name: str, study: optuna.Study, url: str, config: RunConfig, folder: Path,
+           tolerance: float | None = None) -> RunResults:
+    """Read the run's trials and confirmation jobs; nothing is written."""
+    frame = trials_frame(study)
+    jobs = read_jobs(name, url)
+    proxy = TrainSettings(**config.train)
+    confirmed = None if jobs.empty else confirmation(frame, jobs, Budget(**config.budget).caps(),
+                                                     OBJECTIVES[config.objective] or "params", tolerance,
+                                                     proxy.epochs, full_schedule(proxy).epochs)
+    split = folder / "split.npz"
+    sizes = {part: len(indices) for part, indices in load_split(split)[0].items()} if split.exists() else {}
+    return RunResults(name, config, frame, confirmed, sizes)
 
 
 def fronts(frame: pd.DataFrame, budget: Budget) -> pd.DataFrame:
@@ -21,11 +71,44 @@ def fronts(frame: pd.DataFrame, budget: Budget) -> pd.DataFrame:
     return pd.concat(parts, ignore_index=True) if parts else pd.DataFrame()
 
 
-def write_results(folder: Path, frame: pd.DataFrame, budget: Budget, *, title: str, notes: list[str]) -> list[Path]:
-    """trials.csv, front.csv and report.html, each written whole or not at all."""
+def summary(results: RunResults, extra: dict | None = None) -> dict:
+    """summary.json: counts, the best proxy candidate, the split sizes with the noise of an accuracy on
+    each, and what confirmation found (``proxy_spearman`` is null below 3 confirmed candidates)."""
+    best = best_row(results.frame, results.budget.caps())
+    noise = {part: {"images": n, "accuracy_se_at_0.9": round(accuracy_se(0.9, n), 4)} for part, n in results.sizes.items()}
+    data = {"run": results.name, "counts": counts(results.frame),
+            "best_proxy": None if best is None else {"trial": int(best["trial"]), "arch": best["arch"],
+                                                     "val_accuracy": float(best["val_accuracy"])},
+            "splits": noise, "proxy_spearman": None}
+    if results.confirmation is not None:
+        data |= results.confirmation.summary()
+    return data | (extra or {})
+
+
+def write_results(folder: Path, results: RunResults, *, title: str, notes: list[str],
+                  extra: dict | None = None) -> list[Path]:
+    """trials.csv, front.csv, confirmed.csv (once confirmation began), summary.json and report.html."""
     folder.mkdir(parents=True, exist_ok=True)
+    frame, budget = results.frame, results.budget
     written = [write_atomic(folder / "trials.csv", frame.to_csv(index=False)),
                write_atomic(folder / "front.csv", fronts(frame, budget).to_csv(index=False))]
+    if results.confirmation is not None:
+        written.append(write_atomic(folder / "confirmed.csv", results.confirmation.table.to_csv(index=False)))
+    written.append(write_atomic(folder / "summary.json", json.dumps(_plain(summary(results, extra)), indent=2)))
     notes = [f"budget: {budget.describe()}", *notes]
-    written.append(write_report(frame, folder / "report.html", caps=budget.caps(), title=title, notes=notes))
+    written.append(write_report(frame, folder / "report.html", caps=budget.caps(), title=title, notes=notes,
+                                confirmation=results.confirmation, sizes=results.sizes))
     return written
+
+
+def _plain(value):
+    """JSON-ready: numpy numbers as Python ones, NaN as null."""
+    if isinstance(value, dict):
+        return {str(k): _plain(v) for k, v in value.items()}
+    if isinstance(value, (list, tuple)):
+        return [_plain(v) for v in value]
+    if hasattr(value, "item"):
+        value = value.item()
+    if isinstance(value, float) and not math.isfinite(value):
+        return None
+    return value

@@ -24,14 +24,17 @@ from searcher.core.budget import Budget
 from searcher.core.cost import cost
 from searcher.errors import SearcherError
 from searcher.core.space_file import read_space_text
+from searcher.core.stats import wilson_interval
 from searcher.data.load import load_dataset, load_split
 from searcher.model.build import build
 from searcher.model.train import TrainSettings, evaluate, train_candidate
-from searcher.results.records import best_row, trials_frame
+from searcher.results.confirmed import default_pick
+from searcher.results.records import FAILED, REJECTED, TRAINED, best_row
+from searcher.results.tables import RunResults, gather
 from searcher.runs import RUNS
 from searcher.ship.model_card import model_card, standalone_source
 from searcher.study.run import RunData
-from searcher.study.storage import open_run
+from searcher.study.storage import open_run, storage_url
 
 log = logging.getLogger(__name__)
 
@@ -43,6 +46,8 @@ class ExportSettings:
     arch: str | None = None  # or this architecture (text or JSON)
     epochs: int | None = None  # training epochs; default 3x the search's, at least 10
     storage: str | None = None  # the run's storage, when it is not the run folder's SQLite
+    tolerance: float | None = None  # accuracy the default pick may give up against the best confirmed one
+    force: bool = False  # replace an existing export with a candidate that breaks a cap or failed
     root: Path = RUNS
 
 
@@ -58,30 +63,71 @@ class ExportOutcome:
     model: Any = None  # the retrained torch module, in eval mode
 
 
-def choose(frame: Any, budget: Budget, settings: ExportSettings) -> tuple[Arch, str]:
-    """The candidate to export and how it was chosen."""
+@dataclass(frozen=True)
+class Choice:
+    """The candidate to export and why."""
+
+    arch: Arch
+    trial: int | None  # None for an architecture given on the command line
+    how: str  # one sentence
+    state: str = TRAINED  # the trial's state, or "given"
+    confirmed: dict | None = None  # the confirmed mean, sd and seeds, when it was confirmed
+
+
+def choose(results: RunResults, settings: ExportSettings) -> Choice:
+    """The candidate to export: one named by --arch or --trial, else the cheapest confirmed candidate within
+    noise of the best (see searcher.results.confirmed.default_pick), else the best by the proxy."""
+    frame = results.frame
     if settings.arch:
-        return parse_arch(settings.arch), "given on the command line"
+        return Choice(parse_arch(settings.arch), None, "given on the command line", "given")
+    confirmed = results.confirmation.table.set_index("trial") if results.confirmation is not None else None
+
+    def facts(trial: int) -> dict | None:
+        if confirmed is None or trial not in confirmed.index:
+            return None
+        row = confirmed.loc[trial]
+        return {"mean": float(row["accuracy_mean"]), "sd": float(row["accuracy_sd"]), "seeds": int(row["seeds"])}
+
     if settings.trial is not None:
         rows = frame[frame["trial"] == settings.trial]
         if rows.empty or not rows.iloc[0]["arch"]:
             raise SearcherError(f"`--trial` {settings.trial} is not a trial of run {settings.name!r} with an architecture "
                                 f"(trials 0-{len(frame) - 1})", key="--trial")
         row = rows.iloc[0]
-        return parse_arch(row["arch"]), f"trial {settings.trial} ({row['state']}, validation accuracy {row['val_accuracy']:.4f})"
-    best = best_row(frame, budget.caps())
+        how = f"trial {settings.trial} ({row['state']}, proxy validation accuracy {row['val_accuracy']:.4f}), named with --trial"
+        return Choice(parse_arch(row["arch"]), settings.trial, how, str(row["state"]), facts(settings.trial))
+    pick = None
+    if results.confirmation is not None:
+        pick = default_pick(results.confirmation.table, results.budget.caps(), results.cost, settings.tolerance)
+    if pick is not None:
+        return Choice(parse_arch(pick.arch), pick.trial, pick.reason, TRAINED, facts(pick.trial))
+    best = best_row(frame, results.budget.caps())
     if best is None:
         raise SearcherError(f"run {settings.name!r} has no fully trained candidate that fits the budget yet; "
                             f"let the search run longer, or name one with --trial or --arch", key="--name")
-    return parse_arch(best["arch"]), f"best validation accuracy among fitting candidates: trial {best['trial']} ({best['val_accuracy']:.4f})"
+    how = (f"trial {int(best['trial'])} has the best proxy validation accuracy among fitting candidates "
+           f"({best['val_accuracy']:.4f}); no candidate has two confirmed seeds yet, so this rests on one short training")
+    return Choice(parse_arch(best["arch"]), int(best["trial"]), how, TRAINED, facts(int(best["trial"])))
+
+
+def _refuse_replacing(choice: Choice, fits: bool, folder: Path, settings: ExportSettings) -> None:
+    """An export of a candidate that breaks a cap or failed must not replace an export the user has."""
+    bad = not fits or choice.state in (REJECTED, FAILED)
+    if bad and (folder / "export").exists() and not settings.force:
+        what = "breaks a cap of the budget" if not fits else f"was {choice.state}"
+        raise SearcherError(f"the candidate {what}; exporting it would replace {folder / 'export'} — give --force "
+                            f"to replace it anyway, or choose another --trial", key="--trial" if settings.trial
+                            is not None else "--arch")
 
 
 def export(settings: ExportSettings) -> ExportOutcome:
     """Retrain on train+validation, test once on the held-out split, and write runs/<name>/export/."""
     folder, study, config = open_run(settings.name, settings.storage, settings.root)
     budget = Budget(**config.budget)
-    frame = trials_frame(study)
-    arch, how = choose(frame, budget, settings)
+    results = gather(settings.name, study, storage_url(settings.storage, folder), config, folder, settings.tolerance)
+    choice = choose(results, settings)
+    arch, how = choice.arch, choice.how
+    _refuse_replacing(choice, not budget.check(budget.totals(cost(arch, budget.activation_precision))), folder, settings)
     if arch.head.classes != config.classes:
         raise SearcherError(f"architecture has {arch.head.classes} outputs but the run's data has {config.classes} classes")
     split_file = folder / "split.npz"
@@ -108,13 +154,19 @@ def export(settings: ExportSettings) -> ExportOutcome:
     totals = budget.totals(cost(arch, budget.activation_precision))
     fits = not budget.check(totals)
     outcome = ExportOutcome(folder / "export", arch, accuracy, per_class, confusion.tolist(), totals, fits, model)
-    extra = {"run": settings.name, "how": how, "epochs": epochs, "train_seconds": result.seconds, "train_size": len(labels),
+    extra = {"run": settings.name, "how": how, "trial": choice.trial, "confirmed": choice.confirmed, "epochs": epochs, "train_seconds": result.seconds, "train_size": len(labels),
              "sizes": {p: len(getattr(data, p).labels) for p in ("train", "val", "test")},
              "settings": asdict(train_settings), "budget": budget, "config": config}
     _write(outcome, model, extra)
     log.info("exported %s: test accuracy %.4f on %d held-out images (%.0f s of training)", arch, accuracy,
              len(data.test.labels), time.time() - started)
     return outcome
+
+
+def test_interval(outcome: ExportOutcome) -> tuple[float, float]:
+    """Wilson's 95% interval of the test accuracy at the test split's size."""
+    correct = int(np.trace(np.asarray(outcome.confusion)))
+    return wilson_interval(correct, int(np.asarray(outcome.confusion).sum()))
 
 
 def _confusion(truth: np.ndarray, predicted: np.ndarray, classes: int) -> np.ndarray:
@@ -140,7 +192,8 @@ def _write(outcome: ExportOutcome, model: Any, extra: dict) -> None:
             torch.jit.trace(model.eval(), example).save(str(temp / "model.torchscript.pt"))
         metrics = {"arch": arch.to_text(), "test_accuracy": outcome.test_accuracy, "per_class": outcome.per_class,
                    "confusion": outcome.confusion, "costs": outcome.costs, "fits_budget": outcome.fits,
-                   "sizes": extra["sizes"], "epochs": extra["epochs"], "chosen": extra["how"]}
+                   "sizes": extra["sizes"], "epochs": extra["epochs"], "chosen": extra["how"], "trial": extra["trial"],
+                   "confirmed": extra["confirmed"], "test_accuracy_interval95": list(test_interval(outcome))}
         (temp / "metrics.json").write_text(json.dumps(metrics, indent=2), encoding="utf-8")
         (temp / "MODEL_CARD.md").write_text(model_card(outcome, extra), encoding="utf-8")
         if target.exists():

@@ -9,6 +9,7 @@ from torch import nn
 from searcher.core.arch import Arch
 from searcher.core.budget import CAP_COLUMNS, show_cost
 from searcher.core.cost import cost
+from searcher.core.stats import wilson_interval
 from searcher.redact import redact
 
 CAUTIONS = """\
@@ -87,6 +88,12 @@ def model_card(outcome: Any, extra: dict) -> str:
         f"| {c} | {show_cost(c, outcome.costs[c])} ({outcome.costs[c]:,}) | "
         f"{show_cost(c, caps[c]) if c in caps else 'no cap'} |" for c in CAP_COLUMNS)
     sizes = extra["sizes"]
+    low, high = wilson_interval(int(sum(row[i] for i, row in enumerate(outcome.confusion))),
+                                int(sum(map(sum, outcome.confusion))))
+    facts = extra.get("confirmed")
+    confirmed = ("\nNot confirmed: its validation accuracy comes from one short proxy training." if not facts else
+                 f"\nConfirmed before export: validation accuracy {facts['mean']:.4f} ± {facts['sd']:.4f} (mean ± sd) "
+                 f"over {facts['seeds']} seeds of the full schedule on the training split.")
     return f"""# Model card: `{arch.to_text()}`
 
 ## What it is
@@ -109,7 +116,8 @@ stratified by class: {sizes['train']} training, {sizes['val']} validation, {size
 The test split was not used by the search or by this training.
 
 ## Test accuracy (held-out split, {sizes['test']} images)
-**{outcome.test_accuracy:.4f}**
+**{outcome.test_accuracy:.4f}** (95% interval {low:.4f}–{high:.4f}, Wilson's score interval at {sizes['test']} images)
+{confirmed}
 
 | class | accuracy |
 |---|---|

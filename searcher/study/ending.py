@@ -49,6 +49,16 @@ class StopReason:
         return cls(Ending.SIGNAL, f"stopped by {signal.Signals(signum).name}", signum)
 
 
+@dataclass
+class Phases:
+    """What a worker's search did: why it stopped, each proposal's state, and how its time split."""
+
+    stop: StopReason
+    proposals: list[str]
+    proxy_seconds: float = 0.0  # the proxy search
+    confirm_seconds: float = 0.0  # the confirmation after it
+
+
 def first_of(reasons: list[StopReason]) -> StopReason:
     """The reason that sets a multi-worker search's exit status: a signal first, then a failure."""
     order = [Ending.SIGNAL, Ending.WORKER_FAILED]

@@ -9,19 +9,24 @@ from __future__ import annotations
 import logging
 import math
 import time
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 from typing import Callable
 
 import optuna
+import pandas as pd
 
-from searcher.core.arch import Arch
+from searcher.core.arch import Arch, parse_arch
 from searcher.core.train_settings import TrainSettings
 from searcher.model.build import build
 from searcher.model.train import TrainProgress, TrainResult, train_candidate
-from searcher.results.records import REJECTED
+from searcher.results.confirmed import ConfirmSettings, cost_columns, select
+from searcher.results.records import REJECTED, TRAINED, trials_frame
+from searcher.study.confirm import ConfirmPlan, Confirmer, ConfirmTally, full_schedule, open_confirm_study, plan
+from searcher.study.ending import Ending, Phases, StopReason
 from searcher.study.ledger import Ledger
 from searcher.study.run import PreparedRun, RunData, default_memory_cap
-from searcher.study.storage import disk_flush, storage_kind
+from searcher.study.storage import OBJECTIVES, disk_flush, storage_kind
+from searcher.study.timebox import Throughput
 from searcher.study.worker import Trainer, Worker, WorkerPlan, WorkerTally
 
 log = logging.getLogger(__name__)
@@ -52,14 +57,15 @@ TrainerFor = Callable[[PreparedRun, "int | None"], Trainer]  # (prepared run, to
 
 def run_worker(run: PreparedRun, study: optuna.Study, deadline: float | None, index: int, *,
                threads: int | None = None, parent_pid: int | None = None,
-               trainer_for: TrainerFor | None = None) -> WorkerTally:
+               trainer_for: TrainerFor | None = None, confirm: ConfirmSettings | None = None) -> WorkerTally:
     """One worker's loop over the study, with progress lines on the log.
 
     ``trainer_for(run, threads)`` makes the trainer in place of :class:`TorchTrainer` (a notebook's
-    own training loop, or a test that records what was built).
+    own training loop, or a test that records what was built). With ``confirm``, the time box keeps
+    what the confirmation of the current front is predicted to need.
     """
     s = run.settings
-    local = storage_kind(run.url) in ("sqlite", "journal")  # a store on this machine: every worker runs here
+    local = _local(run)
     plan = WorkerPlan(
         trials=s.trials, deadline=deadline,
         candidate_seconds=None if s.candidate_minutes is None else s.candidate_minutes * 60,
@@ -67,11 +73,81 @@ def run_worker(run: PreparedRun, study: optuna.Study, deadline: float | None, in
         images_per_epoch=max(2, round(run.train.train_fraction * len(run.data.train.labels))),
         log_path=run.folder / "search.log", seed=s.seed + index, parent_pid=parent_pid,
         run_folder=run.folder if local else None, flush=disk_flush(run.url),
+        reserve=confirmation_reserve(run, confirm) if confirm and confirm.on and deadline is not None else None,
     )
     trainer = (trainer_for or TorchTrainer.for_run)(run, threads)
     worker = Worker(study, run.space, run.budget, run.train, s.objective, run.data.num_classes, plan, trainer)
     worker.on_proposal = progress_printer(deadline, prefix=f"[worker {index}] " if s.workers > 1 else "")
     return worker.run()
+
+
+def _local(run: PreparedRun) -> bool:
+    """A store on this machine: every worker of the run runs here."""
+    return storage_kind(run.url) in ("sqlite", "journal")
+
+
+def confirmation_reserve(run: PreparedRun, confirm: ConfirmSettings) -> Callable[[Ledger, Throughput], float]:
+    """Seconds the confirmation of the current selection is predicted to take, this worker's share.
+
+    Recomputed only when a candidate was added to the ledger, from the throughput measured so far.
+    """
+    caps = run.budget.caps()
+    columns = cost_columns(caps, OBJECTIVES[run.settings.objective])
+    epochs_images = full_schedule(run.train).epochs * len(run.data.train.labels)
+    val_images = len(run.data.dataset.val.labels)
+    seen: dict[str, float] = {"count": -1, "seconds": 0.0}
+
+    def reserve(ledger: Ledger, throughput: Throughput) -> float:
+        if len(ledger.trained) != seen["count"]:
+            rows = [record | {"trial": number, "state": TRAINED} for number, record in ledger.trained.items()]
+            frame = pd.DataFrame(rows) if rows else pd.DataFrame(columns=["trial", "state", "val_accuracy", "params"])
+            chosen = select(frame, caps, columns, val_images, confirm, run.settings.seed) if rows else []
+            predicted = [throughput.predict(ledger.trained[t]["macs"], epochs_images) for t, _ in chosen
+                         if t in ledger.trained]
+            seen["count"] = len(ledger.trained)
+            seen["seconds"] = sum(p or 0.0 for p in predicted) * confirm.seeds / run.settings.workers
+        return seen["seconds"]
+
+    return reserve
+
+
+def run_confirmation(run: PreparedRun, main: optuna.Study, deadline: float | None, confirm: ConfirmSettings,
+                     throughput: Throughput, *, threads: int | None = None,
+                     trainer_for: TrainerFor | None = None) -> ConfirmTally:
+    """Queue the jobs the current front calls for (if not queued yet) and work through the queue."""
+    study = open_confirm_study(run.settings.name, run.url)
+    queued = plan(study, main, run.budget, run.settings.objective, len(run.data.dataset.val.labels), confirm,
+                  run.settings.seed)
+    log.info("confirmation: %d job(s) queued now; each candidate retrained %d times with the export's schedule",
+             queued, confirm.seeds)
+    frame = trials_frame(main)
+    archs = {int(row.trial): parse_arch(row.arch) for row in frame.itertuples(index=False) if row.arch}
+    full = replace(run, train=full_schedule(run.train))
+    trainer = (trainer_for or TorchTrainer.for_run)(full, threads)
+    settings = ConfirmPlan(deadline=deadline, run_seed=run.settings.seed, images=len(run.data.train.labels),
+                           log_path=run.folder / "search.log", run_folder=run.folder if _local(run) else None,
+                           flush=disk_flush(run.url))
+    return Confirmer(study, archs, full.train, settings, trainer, throughput).run()
+
+
+def run_phases(run: PreparedRun, study: optuna.Study, deadline: float | None, *, index: int = 0,
+               threads: int | None = None, parent_pid: int | None = None,
+               trainer_for: TrainerFor | None = None) -> Phases:
+    """One worker's proxy search, then its share of the confirmation (when on, and when the proxy phase
+    ended by itself rather than by a signal or the time running out)."""
+    confirm = run.settings.confirm
+    started = time.time()
+    tally = run_worker(run, study, deadline, index, threads=threads, parent_pid=parent_pid,
+                       trainer_for=trainer_for, confirm=confirm)
+    phases = Phases(tally.stop, tally.proposals, time.time() - started)
+    if confirm.on and tally.stop.kind in (Ending.DONE, Ending.TIME_NEAR, Ending.EXHAUSTED):
+        confirmed = run_confirmation(run, study, deadline, confirm, tally.throughput, threads=threads,
+                                     trainer_for=trainer_for)
+        phases.confirm_seconds = confirmed.seconds
+        phases.stop = StopReason(confirmed.stop.kind if confirmed.stop.kind is Ending.SIGNAL else tally.stop.kind,
+                                 f"proxy search: {tally.stop.text}; confirmation: {confirmed.stop.text}",
+                                 confirmed.stop.signum)
+    return phases
 
 
 def progress_printer(deadline: float | None, prefix: str) -> Callable[[str, WorkerTally, Ledger], None]:

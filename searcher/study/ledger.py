@@ -40,7 +40,7 @@ class Ledger:
         self.spent = 0  # candidates that used training time (trained, stopped early, failed; repeats excluded)
         self.best = math.nan  # best validation accuracy of a trained candidate
         self.outcomes: dict[str, Outcome] = {}  # arch text -> its first spent trial's outcome
-        self._trained: list[tuple[dict, tuple[float, ...]]] = []  # (record, accuracy per epoch) of trained ones
+        self.trained: dict[int, dict] = {}  # trial number -> record, of fully trained candidates (repeats excluded)
 
     def update(self, study: optuna.Study) -> list[optuna.trial.FrozenTrial]:
         """Read trials finished since the last call; return the running ones."""
@@ -68,11 +68,11 @@ class Ledger:
         accuracy = record.get("val_accuracy")
         if state == TRAINED and accuracy is not None:
             self.best = accuracy if math.isnan(self.best) else max(accuracy, self.best)
-            self._trained.append((record, tuple(record.get("history") or ())))
+            self.trained[number] = record
 
     def histories_within(self, column: str, limit: float) -> list[tuple[float, ...]]:
         """Per-epoch accuracy of every fully trained candidate whose ``column`` cost is at most ``limit``."""
-        return [history for record, history in self._trained if record.get(column, math.inf) <= limit]
+        return [tuple(r.get("history") or ()) for r in self.trained.values() if r.get(column, math.inf) <= limit]
 
     def counts(self) -> dict[str, int]:
         """As :func:`searcher.results.records.counts` gives for the finished trials."""

@@ -68,3 +68,15 @@ def pruner_rungs(pruner: optuna.pruners.SuccessiveHalvingPruner, count: int) -> 
     except AttributeError:
         raise OptunaChanged("SuccessiveHalvingPruner keeps no `_min_resource`/`_reduction_factor`") from None
     return [first * factor**k for k in range(count)]
+
+
+def queued_params(trial: optuna.Trial | optuna.trial.FrozenTrial) -> dict[str, Any] | None:
+    """The parameters a trial was queued with (``study.enqueue_trial``), or None for a sampled trial.
+
+    Optuna keeps them in the trial's system attribute ``fixed_params``; a live ``Trial`` shows them
+    through its cached frozen copy.
+    """
+    frozen = trial if isinstance(trial, optuna.trial.FrozenTrial) else getattr(trial, "_cached_frozen_trial", None)
+    if frozen is None:
+        raise OptunaChanged("optuna.Trial keeps no `_cached_frozen_trial` any more")
+    return frozen.system_attrs.get("fixed_params")

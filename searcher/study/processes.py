@@ -17,8 +17,8 @@ from typing import Any
 
 import torch
 
-from searcher.study.ending import Ending, StopReason, exit_at_once, first_of
-from searcher.study.launch import run_worker
+from searcher.study.ending import Ending, Phases, StopReason, exit_at_once, first_of
+from searcher.study.launch import run_phases
 from searcher.study.run import PreparedRun, SearchSettings, prepare
 from searcher.study.storage import open_study
 
@@ -32,11 +32,10 @@ def _worker_main(settings: SearchSettings, budget: dict, train: dict, index: int
     torch.set_num_threads(threads)
     run = prepare(settings, budget, train)
     study, _ = open_study(settings.name, run.url, run.config, settings.sampler, worker=index)
-    tally = run_worker(run, study, deadline, index=index, threads=threads, parent_pid=parent)
-    results.put((index, tally.stop, tally.proposals))
+    results.put((index, run_phases(run, study, deadline, index=index, threads=threads, parent_pid=parent)))
 
 
-def run_workers(run: PreparedRun, deadline: float | None) -> tuple[StopReason, list[str]]:
+def run_workers(run: PreparedRun, deadline: float | None) -> Phases:
     """Start ``run.settings.workers`` processes, pass signals on, and collect what each did.
 
     Results are read while the workers run (a worker blocks on a full queue until it is read),
@@ -63,20 +62,20 @@ def run_workers(run: PreparedRun, deadline: float | None) -> tuple[StopReason, l
             exit_at_once(signum)
 
     previous = {s: signal.signal(s, forward) for s in (signal.SIGINT, signal.SIGTERM)}
-    collected: dict[int, tuple[StopReason, list[str]]] = {}
+    collected: dict[int, Phases] = {}
     try:
         for p in processes:
             p.start()
         while len(collected) < count and any(p.is_alive() for p in processes):
             try:
-                index, stop, proposals = results.get(timeout=0.5)
-                collected[index] = (stop, proposals)
+                index, phases = results.get(timeout=0.5)
+                collected[index] = phases
             except queue.Empty:
                 continue
         while True:  # results put just before a process ended
             try:
-                index, stop, proposals = results.get(timeout=0.1)
-                collected[index] = (stop, proposals)
+                index, phases = results.get(timeout=0.1)
+                collected[index] = phases
             except queue.Empty:
                 break
         for p in processes:
@@ -84,7 +83,7 @@ def run_workers(run: PreparedRun, deadline: float | None) -> tuple[StopReason, l
     finally:
         for s, handler in previous.items():
             signal.signal(s, handler)
-    reasons = [stop for stop, _ in collected.values()]
+    reasons = [phases.stop for phases in collected.values()]
     failed = [p.name for p in processes if p.exitcode not in (0, None)]
     if failed:
         log.warning("worker(s) %s ended with an error; see the messages above", ", ".join(failed))
@@ -93,5 +92,7 @@ def run_workers(run: PreparedRun, deadline: float | None) -> tuple[StopReason, l
         reasons.append(StopReason.by_signal(received[0]))
     stop = first_of(reasons) if reasons else StopReason(Ending.WORKER_FAILED, "no worker reported back")
     words = "; ".join(dict.fromkeys([stop.text, *(r.text for r in reasons)]))
-    proposals = [p for index in sorted(collected) for p in collected[index][1]]
-    return StopReason(stop.kind, words, stop.signum), proposals
+    proposals = [p for index in sorted(collected) for p in collected[index].proposals]
+    return Phases(StopReason(stop.kind, words, stop.signum), proposals,
+                  max((p.proxy_seconds for p in collected.values()), default=0.0),
+                  max((p.confirm_seconds for p in collected.values()), default=0.0))

@@ -18,6 +18,7 @@ from searcher.core.space_file import load_space
 from searcher.core.train_settings import TrainSettings
 from searcher.data.load import Dataset, Split, load_dataset, load_split, resize_images
 from searcher.errors import SearcherError, one_of
+from searcher.results.confirmed import ConfirmSettings
 from searcher.runs import RUNS, run_folder
 from searcher.study.storage import OBJECTIVES, SAMPLERS, RunConfig, storage_kind, storage_url
 
@@ -42,6 +43,7 @@ class SearchSettings:
     memory_cap: int | None = None  # bytes for the training-memory guard; default half of free RAM
     skip_unreadable: bool = False  # skip (and count) images that cannot be decoded
     force: bool = False  # start afresh where the run's results exist but its study is gone (old files kept aside)
+    confirm: ConfirmSettings = ConfirmSettings()  # retraining the front over several seeds once the proxy search ends
     root: Path = RUNS  # where run folders live
 
     def check(self) -> None:
@@ -58,6 +60,7 @@ class SearchSettings:
                 raise SearcherError(f"`{key}` must be a number of minutes > 0, got {value!r}", key=key)
         if self.storage is not None:
             storage_kind(self.storage)
+        self.confirm.check()
 
 
 class RunData:

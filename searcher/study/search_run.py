@@ -19,11 +19,12 @@ import optuna
 from searcher.data.load import save_split
 from searcher.errors import SearcherError
 from searcher.redact import redact
-from searcher.results.records import REJECTED, best_row, counts, trials_frame
-from searcher.results.tables import write_results
+from searcher.results.confirmed import Confirmation
+from searcher.results.records import REJECTED, best_row, counts
+from searcher.results.tables import gather, write_results
 from searcher.runs import write_atomic
-from searcher.study.ending import StopReason
-from searcher.study.launch import TrainerFor, run_worker
+from searcher.study.ending import Phases, StopReason
+from searcher.study.launch import TrainerFor, run_phases
 from searcher.study.processes import run_workers
 from searcher.study.run import PreparedRun, SearchSettings, prepare
 from searcher.study.storage import open_study, study_exists
@@ -37,11 +38,14 @@ class SearchOutcome:
 
     folder: Path
     counts: dict[str, int]
-    best: dict[str, Any] | None
+    best: dict[str, Any] | None  # the best fully trained candidate by its proxy accuracy
     stop: StopReason
     rejected_share: list[float] = field(default_factory=list)  # share rejected per block of 50 proposals
     rejected_by: dict[str, int] = field(default_factory=dict)  # rejections by the caps they broke
     seconds: float = 0.0
+    proxy_seconds: float = 0.0  # wall time of the proxy search (the slowest worker's)
+    confirm_seconds: float = 0.0  # wall time of the confirmation that followed
+    confirmation: Confirmation | None = None  # what confirmation found (None when it is off or nothing ran)
 
     @property
     def exit_status(self) -> int:
@@ -50,11 +54,11 @@ class SearchOutcome:
 
 def search(settings: SearchSettings, budget: dict | None = None, train: dict | None = None, *,
            trainer_for: TrainerFor | None = None) -> SearchOutcome:
-    """Run (or continue) the search ``settings.name`` and write its results.
+    """Run (or continue) the search ``settings.name``, confirm its front, and write its results.
 
     ``budget`` and ``train`` override keys of the space file's [budget] and [train] tables (as the
     command line's options do). ``trainer_for(run, threads)`` makes the trainer of a single-worker
-search in place of the torch one (see :func:`searcher.study.launch.run_worker`).
+    search in place of the torch one (see :func:`searcher.study.launch.run_worker`).
     """
     run = prepare(settings, budget, train)
     _keep_earlier_results(run)
@@ -63,20 +67,37 @@ search in place of the torch one (see :func:`searcher.study.launch.run_worker`).
     save_split(run.folder / "split.npz", run.data.dataset.indices, run.data.dataset.fingerprint)
     write_atomic(run.folder / "run.json", json.dumps(
         {"settings": {k: str(v) if isinstance(v, Path) else v for k, v in asdict(settings).items()}
-         | {"storage": redact(run.url)}, "config": run.config.to_dict()}, indent=2))
+         | {"storage": redact(run.url)}, "config": run.config.to_dict()}, indent=2, default=str))
     started = time.time()
     deadline = None if settings.minutes is None else started + settings.minutes * 60
     log.info("run %s: space %s, budget %s, %d classes, data %s; storage %s", settings.name, run.space.name,
              run.budget.describe(), run.config.classes, settings.data, redact(run.url))
     if settings.workers == 1:
-        tally = run_worker(run, study, deadline, index=0, trainer_for=trainer_for)
-        stop, proposals = tally.stop, tally.proposals
+        phases = run_phases(run, study, deadline, trainer_for=trainer_for)
     else:
-        stop, proposals = run_workers(run, deadline)
-    return finish(run, study, stop, proposals, time.time() - started)
+        phases = run_workers(run, deadline)
+    return finish(run, study, phases, time.time() - started)
 
 
-RESULT_FILES = ("trials.csv", "front.csv", "report.html", "run.json", "search.log", "split.npz", "export")
+def finish(run: PreparedRun, study: optuna.Study, phases: Phases, seconds: float) -> SearchOutcome:
+    """Write the result files and sum the run up."""
+    results = gather(run.settings.name, study, run.url, run.config, run.folder, run.settings.confirm.tolerance)
+    times = {"seconds": round(seconds, 1), "proxy_seconds": round(phases.proxy_seconds, 1),
+             "confirm_seconds": round(phases.confirm_seconds, 1)}
+    write_results(run.folder, results, title=f"searcher run {run.settings.name}",
+                  notes=[f"space {run.space.name}; data {run.settings.data}; objective {run.settings.objective}",
+                         f"stopped: {phases.stop.text}"], extra={"time": times, "stopped": phases.stop.text})
+    frame, proposals = results.frame, phases.proposals
+    blocks = [proposals[i:i + 50] for i in range(0, len(proposals), 50)]
+    share = [sum(p == REJECTED for p in b) / len(b) for b in blocks if b]
+    rejected_by = frame.loc[frame["state"] == REJECTED, "rejected_by"].value_counts().to_dict()
+    return SearchOutcome(run.folder, counts(frame), best_row(frame, run.budget.caps()), phases.stop, share,
+                         {str(k): int(v) for k, v in rejected_by.items()}, seconds, phases.proxy_seconds,
+                         phases.confirm_seconds, results.confirmation)
+
+
+RESULT_FILES = ("trials.csv", "front.csv", "confirmed.csv", "summary.json", "report.html", "run.json", "search.log",
+                "split.npz", "export")
 
 
 def _keep_earlier_results(run: PreparedRun) -> None:
@@ -98,17 +119,3 @@ def _keep_earlier_results(run: PreparedRun) -> None:
     for name in present:
         (run.folder / name).rename(aside / name)
     log.warning("run %s: started afresh; the earlier results are in %s", run.settings.name, aside)
-
-
-def finish(run: PreparedRun, study: optuna.Study, stop: StopReason, proposals: list[str],
-           seconds: float) -> SearchOutcome:
-    """Write trials.csv, front.csv and report.html, and sum the run up."""
-    frame = trials_frame(study)
-    write_results(run.folder, frame, run.budget, title=f"searcher run {run.settings.name}",
-                  notes=[f"space {run.space.name}; data {run.settings.data}; objective {run.settings.objective}",
-                         f"stopped: {stop.text}"])
-    blocks = [proposals[i:i + 50] for i in range(0, len(proposals), 50)]
-    share = [sum(p == REJECTED for p in b) / len(b) for b in blocks if b]
-    rejected_by = frame.loc[frame["state"] == REJECTED, "rejected_by"].value_counts().to_dict()
-    return SearchOutcome(run.folder, counts(frame), best_row(frame, run.budget.caps()), stop, share,
-                         {str(k): int(v) for k, v in rejected_by.items()}, seconds)

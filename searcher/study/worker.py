@@ -83,6 +83,7 @@ class WorkerPlan:
     parent_pid: int | None = None  # stop when the parent process is gone
     run_folder: Path | None = None  # given when every worker of the study runs on this machine
     flush: Callable[[], None] | None = None  # puts what the store has committed on disk (storage.disk_flush)
+    reserve: Callable[[Ledger, Throughput], float] | None = None  # seconds of the time box kept for confirmation
 
 
 @dataclass
@@ -138,6 +139,8 @@ class Worker:
             return StopReason.by_signal(self.signals.received)
         if self.plan.deadline is not None and time.time() >= self.plan.deadline:
             return StopReason(Ending.TIME_LIMIT, "time limit reached")
+        if self.plan.deadline is not None and time.time() >= self.plan.deadline - self._reserve():
+            return StopReason(Ending.TIME_NEAR, "the rest of the time box is kept for confirming the front")
         if self.plan.parent_pid is not None and os.getppid() != self.plan.parent_pid:
             return StopReason(Ending.PARENT_GONE, "parent process gone")
         if idle >= MAX_IDLE_PROPOSALS:
@@ -178,7 +181,7 @@ class Worker:
         known = self.ledger.outcomes.get(record["arch"])
         if known is not None:
             return self._repeat(trial, record, known)
-        left = None if self.plan.deadline is None else self.plan.deadline - time.time()
+        left = None if self.plan.deadline is None else self.plan.deadline - self._reserve() - time.time()
         predicted = self.predicted_seconds(verdict.totals["macs"])
         if left is not None and predicted is not None and predicted > left:
             queue_retry(self.study, trial)
@@ -186,6 +189,9 @@ class Worker:
                              f"predicted {predicted:.0f} s of training but {left:.0f} s left; queued for the next run",
                              optuna_state=TrialState.FAIL)
         return self._train(trial, arch, verdict.totals, record)
+
+    def _reserve(self) -> float:
+        return 0.0 if self.plan.reserve is None else self.plan.reserve(self.ledger, self.tally.throughput)
 
     def predicted_seconds(self, macs: int) -> float | None:
         """Training seconds predicted for a candidate of ``macs`` (None until one was measured)."""

@@ -1,0 +1,220 @@
+"""Confirmed numbers: which candidates to retrain with the full schedule, what their seeds say, how
+well the short proxy ranked them, and the candidate to ship by default.
+
+Pure pandas and numpy over the trials table and the confirmation records, so the search, the
+report, ``export`` and the tests all read the same rules.
+"""
+
+from __future__ import annotations
+
+import math
+import random
+from collections.abc import Sequence
+from dataclasses import dataclass
+
+import numpy as np
+import pandas as pd
+
+from searcher.core.stats import accuracy_se, spearman
+from searcher.errors import SearcherError, shorten
+from searcher.results.pareto import COST_COLUMNS, feasible_mask
+from searcher.results.records import SCORED, TRAINED, distinct_rows
+
+RELIABLE_SPEARMAN = 0.6  # below this the proxy's ranking is called unreliable
+CONFIRMED_COLUMNS = ("trial", "arch", "seeds", "accuracy_mean", "accuracy_sd", "proxy_accuracy", "params", "macs",
+                     "peak_activation_bytes", "weight_bytes", "chosen_because")
+
+
+@dataclass(frozen=True)
+class ConfirmSettings:
+    """How the front is confirmed after the proxy search; the search command's --confirm options."""
+
+    seeds: int = 3  # full-schedule trainings per confirmed candidate, each with its own seed; 0: no confirmation
+    most: int = 8  # at most this many candidates from on or near the fronts
+    extra: int = 2  # plus this many trained candidates from elsewhere, drawn at random (checks the ranking lower down)
+    tolerance: float | None = None  # accuracy the default pick may give up against the best; None: 2 standard errors
+
+    @property
+    def on(self) -> bool:
+        return self.seeds > 0
+
+    def check(self) -> None:
+        """Each option within its bounds, named as the command line spells it."""
+        for flag, value, low, high in (("--confirm", self.seeds, 0, 20), ("--confirm-candidates", self.most, 1, 100),
+                                       ("--confirm-random", self.extra, 0, 100)):
+            if isinstance(value, bool) or not isinstance(value, int) or not low <= value <= high:
+                raise SearcherError(f"`{flag}` must be a whole number from {low} to {high}, got {shorten(repr(value))}",
+                                    key=flag)
+        if self.tolerance is not None and not (isinstance(self.tolerance, (int, float)) and 0 <= self.tolerance < 1):
+            raise SearcherError(f"`--tolerance` must be an accuracy difference from 0 to below 1 (0.01 is one point), "
+                                f"got {shorten(repr(self.tolerance))}", key="--tolerance")
+
+
+def cost_columns(caps: dict[str, float], objective_cost: str | None) -> list[str]:
+    """The costs a candidate is judged against: parameters, the objective's cost and every capped cost."""
+    wanted = ["params", *([objective_cost] if objective_cost else []), *caps]
+    return [c for c in COST_COLUMNS if c in wanted]
+
+
+def select(frame: pd.DataFrame, caps: dict[str, float], columns: Sequence[str], val_images: int,
+           settings: ConfirmSettings, seed: int) -> list[tuple[int, str]]:
+    """Trial numbers to confirm, most important first, each with why it was chosen.
+
+    On or near a front: a fully trained candidate within the caps that no candidate costing no more
+    (on any of ``columns``) beats by more than two standard errors of a validation accuracy at this
+    validation size — the sampling noise every proxy score carries. Front members come first (most
+    accurate first), then the nearest. Then ``settings.extra`` other trained candidates at random.
+    """
+    rows = distinct_rows(frame)
+    trained = rows[(rows["state"] == TRAINED) & rows["val_accuracy"].notna()]
+    trained = trained[feasible_mask(trained, caps)]
+    gaps = np.full(len(trained), -np.inf)
+    acc = trained["val_accuracy"].to_numpy(dtype=float)
+    noise = np.array([2 * accuracy_se(a, val_images) for a in acc])
+    for column in columns:
+        cost = trained[column].to_numpy(dtype=float)
+        for i in range(len(trained)):
+            cheaper = cost <= cost[i]
+            gaps[i] = max(gaps[i], (acc[cheaper].max() - acc[i]) / max(noise[i], 1e-9))
+    order = sorted(range(len(trained)), key=lambda i: (gaps[i] > 0, gaps[i] if gaps[i] > 0 else -acc[i]))
+    chosen = [(int(trained.iloc[i]["trial"]), "on a front" if gaps[i] <= 0 else "within noise of a front")
+              for i in order if gaps[i] <= 1.0][: settings.most]
+    taken = {t for t, _ in chosen}
+    others = sorted(int(t) for t in rows.loc[rows["state"].isin(SCORED) & rows["val_accuracy"].notna(), "trial"]
+                    if int(t) not in taken)
+    chosen += [(t, "drawn at random") for t in random.Random(seed).sample(others, min(settings.extra, len(others)))]
+    return chosen
+
+
+def confirmed_table(jobs: pd.DataFrame, frame: pd.DataFrame) -> pd.DataFrame:
+    """One row per confirmed candidate: its seeds' mean and sd, beside its proxy accuracy and costs.
+
+    ``jobs`` has one row per finished confirmation training: ``trial``, ``seed_index``,
+    ``val_accuracy`` and ``reason`` (why it was chosen); failed seeds carry a NaN accuracy and are
+    left out of the mean.
+    """
+    if jobs.empty:
+        return pd.DataFrame(columns=list(CONFIRMED_COLUMNS))
+    done = jobs[jobs["val_accuracy"].notna()]
+    grouped = done.groupby("trial")["val_accuracy"]
+    table = pd.DataFrame({"seeds": grouped.size(), "accuracy_mean": grouped.mean(), "accuracy_sd": grouped.std(ddof=1)})
+    table["chosen_because"] = jobs.groupby("trial")["reason"].first()
+    trials = frame.set_index("trial")
+    table = table.join(trials[["arch", "val_accuracy", *COST_COLUMNS]].rename(columns={"val_accuracy": "proxy_accuracy"}))
+    table = table.reset_index().rename(columns={"index": "trial"})
+    return table[list(CONFIRMED_COLUMNS)].sort_values("params", kind="stable").reset_index(drop=True)
+
+
+def proxy_spearman(table: pd.DataFrame) -> float:
+    """Spearman's rho between proxy accuracy and confirmed mean over the confirmed set (NaN below 3)."""
+    usable = table[table["accuracy_mean"].notna() & table["proxy_accuracy"].notna()]
+    return spearman(usable["proxy_accuracy"], usable["accuracy_mean"]) if len(usable) >= 3 else math.nan
+
+
+@dataclass(frozen=True)
+class Pick:
+    """The candidate export takes by default, and why, in one sentence."""
+
+    trial: int
+    arch: str
+    best_trial: int  # the most accurate confirmed candidate
+    reason: str
+
+
+def within_noise(best: pd.Series, other: pd.Series, tolerance: float | None) -> bool:
+    """Is ``other``'s confirmed mean not credibly below ``best``'s?
+
+    Credibly below: behind by more than ``tolerance``, or without one, by more than two standard
+    errors of the difference of the two means, from the seeds' spread of each.
+    """
+    behind = best["accuracy_mean"] - other["accuracy_mean"]
+    if tolerance is not None:
+        return behind <= tolerance
+    spread = (best["accuracy_sd"] ** 2 / best["seeds"]) + (other["accuracy_sd"] ** 2 / other["seeds"])
+    return behind <= 2 * math.sqrt(spread)
+
+
+def default_pick(table: pd.DataFrame, caps: dict[str, float], cost: str, tolerance: float | None) -> Pick | None:
+    """The cheapest confirmed candidate (by ``cost``) within the caps whose confirmed mean is not credibly
+    below the best confirmed mean; None when no candidate has two confirmed seeds."""
+    usable = table[(table["seeds"] >= 2) & table["accuracy_mean"].notna()]
+    usable = usable[feasible_mask(usable, caps)]
+    if usable.empty:
+        return None
+    best = usable.sort_values(["accuracy_mean", cost], ascending=[False, True]).iloc[0]
+    for _, row in usable.sort_values([cost, "accuracy_mean"], ascending=[True, False]).iterrows():
+        if within_noise(best, row, tolerance):
+            break
+    rule = f"within {tolerance:.3f} of" if tolerance is not None else "within noise (2 standard errors) of"
+    if int(row["trial"]) == int(best["trial"]):
+        reason = (f"trial {int(row['trial'])} has the best confirmed accuracy ({_mean(row)}) and no cheaper "
+                  f"candidate comes {rule} it")
+    else:
+        reason = (f"trial {int(row['trial'])} is the cheapest candidate {rule} the best: {_mean(row)} at "
+                  f"{int(row[cost]):,} {cost}, against trial {int(best['trial'])}'s {_mean(best)} at "
+                  f"{int(best[cost]):,} ({best[cost] / row[cost]:.1f}x the {cost})")
+    return Pick(int(row["trial"]), str(row["arch"]), int(best["trial"]), reason)
+
+
+def _mean(row: pd.Series) -> str:
+    sd = row["accuracy_sd"]
+    return f"{row['accuracy_mean']:.4f} ± {sd:.4f} over {int(row['seeds'])} seeds" if math.isfinite(sd) else \
+        f"{row['accuracy_mean']:.4f} (1 seed)"
+
+
+def ranking_after(jobs: pd.DataFrame, table: pd.DataFrame, epochs: int) -> float:
+    """How the confirmation runs' own accuracy after ``epochs`` epochs ranks the candidates, against their
+    final confirmed means (Spearman's rho): what a proxy of that length on this schedule would give."""
+    done = jobs[jobs["val_accuracy"].notna()]
+    early = done.assign(early=[h[epochs - 1] if len(h) >= epochs else math.nan for h in done["history"]])
+    means = early.groupby("trial")["early"].mean()
+    joined = table.set_index("trial")[["accuracy_mean"]].join(means, how="inner").dropna()
+    return spearman(joined["early"], joined["accuracy_mean"]) if len(joined) >= 3 else math.nan
+
+
+@dataclass(frozen=True)
+class Confirmation:
+    """Everything confirmation found, for the summary, the report, summary.json and export."""
+
+    table: pd.DataFrame  # confirmed.csv
+    spearman: float  # proxy accuracy against confirmed mean, over the confirmed set
+    early: dict[int, float]  # epochs of the full schedule -> Spearman of the runs' accuracy then
+    pick: Pick | None
+    queued: int  # jobs still waiting (a time box cut them) or running
+    proxy_epochs: int
+
+    @property
+    def reliable(self) -> bool:
+        return not math.isfinite(self.spearman) or self.spearman >= RELIABLE_SPEARMAN
+
+    def advice(self) -> str:
+        """One plain sentence on the proxy's ranking, with what to change when it is poor."""
+        if not math.isfinite(self.spearman):
+            return "proxy ranking not measured: fewer than 3 candidates were confirmed"
+        words = f"the proxy's ranking agrees with the confirmed one at Spearman's rho {self.spearman:.2f}"
+        if self.reliable:
+            return words
+        longer = ", ".join(f"{rho:.2f} after {e} epochs" for e, rho in sorted(self.early.items()) if math.isfinite(rho))
+        return (f"{words}, below {RELIABLE_SPEARMAN}: the proxy is unreliable for this data; give it more epochs "
+                f"(--epochs) or all of the training split (--train-fraction 1)"
+                + (f"; the confirmation runs' own accuracy ranks at {longer}" if longer else ""))
+
+    def summary(self) -> dict:
+        return {"proxy_spearman": None if not math.isfinite(self.spearman) else round(self.spearman, 4),
+                "proxy_reliable": self.reliable, "proxy_epochs": self.proxy_epochs,
+                "ranking_after_epochs": {str(e): (None if not math.isfinite(r) else round(r, 4))
+                                         for e, r in self.early.items()},
+                "confirmed": int((self.table["seeds"] > 0).sum()) if len(self.table) else 0,
+                "jobs_waiting": self.queued,
+                "pick": None if self.pick is None else {"trial": self.pick.trial, "arch": self.pick.arch,
+                                                        "best_trial": self.pick.best_trial, "why": self.pick.reason}}
+
+
+def confirmation(frame: pd.DataFrame, jobs: pd.DataFrame, caps: dict[str, float], cost: str, tolerance: float | None,
+                 proxy_epochs: int, full_epochs: int) -> Confirmation:
+    """The confirmed table, the proxy's ranking quality and the default pick, from the stored jobs."""
+    table = confirmed_table(jobs, frame)
+    early = {e: ranking_after(jobs, table, e) for e in sorted({proxy_epochs, 2 * proxy_epochs}) if e < full_epochs}
+    waiting = int(jobs["state"].isin(["queued", "running"]).sum()) if len(jobs) else 0
+    return Confirmation(table, proxy_spearman(table), early, default_pick(table, caps, cost, tolerance), waiting,
+                        proxy_epochs)

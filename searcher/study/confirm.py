@@ -1,0 +1,248 @@
+"""Confirmation: after the proxy search, the candidates on or near the front (and a few others) are
+retrained with the export's full schedule over several seeds and scored on the validation split.
+
+Each (candidate, seed) is a *job*: a trial of a second study, ``<run>.confirm``, in the run's own
+storage, queued with the parameters ``trial`` (the candidate's trial in the search) and
+``seed_index``. Optuna hands each queued trial to one worker only, so workers and machines on one
+PostgreSQL study share the jobs; the claim, heartbeat and recovery of :mod:`searcher.study.liveness`
+apply as in the search, so a killed run resumes without redoing a finished seed. The test split is
+never touched.
+"""
+
+from __future__ import annotations
+
+import logging
+import math
+import time
+from dataclasses import dataclass, replace
+from pathlib import Path
+from typing import Callable
+
+import optuna
+import pandas as pd
+from optuna.trial import TrialState
+
+from searcher.core.arch import Arch
+from searcher.core.budget import Budget
+from searcher.core.cost import cost
+from searcher.core.train_settings import TrainSettings
+from searcher.model.train import Diverged, OutOfTime, TrainProgress
+from searcher.results.confirmed import ConfirmSettings, cost_columns, select
+from searcher.results.records import (
+    DUPLICATE, FAILED, INTERRUPTED, NOT_STARTED, RECORD, TRAINED, TRAINING, record_of, trials_frame,
+)
+from searcher.study.ending import Ending, StopReason, StopRequested, StopSignals
+from searcher.study.liveness import Heartbeat, Registry, claim, queue_retry, recover_stale
+from searcher.study.optuna_private import queued_params
+from searcher.study.storage import OBJECTIVES, open_storage, trial_seed
+from searcher.study.timebox import Throughput
+from searcher.study.worker import Trainer
+
+log = logging.getLogger(__name__)
+
+EMPTY = "empty"  # a trial asked when another worker had just taken the last queued job: nothing to do
+
+
+def confirm_name(name: str) -> str:
+    return f"{name}.confirm"
+
+
+def full_schedule(settings: TrainSettings) -> TrainSettings:
+    """The export's schedule: three times the proxy's epochs (at least 10) on the whole training split."""
+    return replace(settings, epochs=max(10, 3 * settings.epochs), train_fraction=1.0)
+
+
+def job_seed(run_seed: int, trial: int, seed_index: int) -> int:
+    """The training seed of one job: its own for each seed, and none equal to the proxy's for that trial."""
+    return trial_seed(run_seed, (seed_index + 1) * 10**7 + trial)
+
+
+def open_confirm_study(name: str, url: str) -> optuna.Study:
+    """The run's confirmation study, created on first use in the run's own storage."""
+    storage = open_storage(url)
+    return optuna.create_study(study_name=confirm_name(name), storage=storage, direction="maximize",
+                               load_if_exists=True, sampler=optuna.samplers.RandomSampler(seed=0))
+
+
+def read_jobs(name: str, url: str) -> pd.DataFrame:
+    """The confirmation jobs of run ``name`` as :func:`jobs_frame` gives them; empty when there are none.
+    Reads only: never creates the store or the study."""
+    storage = open_storage(url, create=False)
+    if confirm_name(name) not in {s.study_name for s in optuna.get_all_study_summaries(storage)}:
+        return jobs_frame(None)
+    return jobs_frame(optuna.load_study(study_name=confirm_name(name), storage=storage))
+
+
+def jobs_frame(study: optuna.Study | None) -> pd.DataFrame:
+    """One row per job trial: its candidate, seed, state and accuracy (what confirmed_table reads)."""
+    rows = []
+    for t in study.get_trials(deepcopy=False) if study is not None else []:
+        record = record_of(t)
+        if "trial" not in record:
+            continue
+        state = "running" if t.state == TrialState.RUNNING else "queued" if t.state == TrialState.WAITING \
+            else record.get("state", FAILED)
+        accuracy = record.get("val_accuracy") if state == TRAINED else None
+        rows.append({"job": t.number, "trial": record["trial"], "seed_index": record["seed_index"], "state": state,
+                     "val_accuracy": math.nan if accuracy is None else accuracy, "reason": record.get("chosen", ""),
+                     "train_seconds": record.get("train_seconds", 0.0), "history": record.get("history", [])})
+    return pd.DataFrame(rows, columns=["job", "trial", "seed_index", "state", "val_accuracy", "reason",
+                                       "train_seconds", "history"])
+
+
+def plan(study: optuna.Study, main: optuna.Study, budget: Budget, objective: str, val_images: int,
+         settings: ConfirmSettings, seed: int) -> int:
+    """Queue every job of the current selection that has no trial yet (seed-major, most important first,
+    so a time box cut leaves every candidate with as many seeds as possible); the number queued."""
+    frame = trials_frame(main)
+    chosen = select(frame, budget.caps(), cost_columns(budget.caps(), OBJECTIVES[objective]), val_images,
+                    settings, seed)
+    have = set()
+    for t in study.get_trials(deepcopy=False):
+        params = t.params or queued_params(t) or {}
+        if "trial" in params and not (t.state == TrialState.FAIL and record_of(t).get("state") in (INTERRUPTED, NOT_STARTED)):
+            have.add((params["trial"], params["seed_index"]))
+    queued = 0
+    for index in range(settings.seeds):
+        for trial, why in chosen:
+            if (trial, index) not in have:
+                study.enqueue_trial({"trial": trial, "seed_index": index}, user_attrs={"chosen": why})
+                queued += 1
+    return queued
+
+
+@dataclass
+class ConfirmTally:
+    trained: int = 0  # jobs this worker trained
+    seconds: float = 0.0  # wall time of this worker's confirmation
+    stop: StopReason | None = None
+
+
+@dataclass(frozen=True)
+class ConfirmPlan:
+    """What a confirming worker needs beyond the studies."""
+
+    deadline: float | None  # time.time() after which nothing new starts and training stops
+    run_seed: int
+    images: int  # training images a job sees per epoch
+    log_path: Path | None = None
+    run_folder: Path | None = None  # given when every worker of the study runs on this machine
+    flush: Callable[[], None] | None = None
+
+
+class Confirmer:
+    """Takes queued jobs one at a time and trains each with the full schedule until none is left."""
+
+    def __init__(self, study: optuna.Study, archs: dict[int, Arch], settings: TrainSettings, plan: ConfirmPlan,
+                 trainer: Trainer, throughput: Throughput) -> None:
+        self.study, self.archs, self.settings, self.plan = study, archs, settings, plan
+        self.trainer, self.throughput = trainer, throughput
+        self.signals = StopSignals()
+        self.tally = ConfirmTally()
+
+    def run(self) -> ConfirmTally:
+        started = time.time()
+        self.signals.install()
+        registry = Registry(self.plan.run_folder) if self.plan.run_folder else None
+        if registry is not None:
+            registry.__enter__()
+        try:
+            recover_stale(self.study, registry)
+            while (stop := self.stop_reason()) is None:
+                state = self.step()
+                if state == NOT_STARTED:
+                    stop = StopReason(Ending.TIME_NEAR, "time limit near: the next confirmation would not finish "
+                                                        "in time (queued for the next run)")
+                    break
+                if state == INTERRUPTED:
+                    stop = self.stop_reason() or StopReason(Ending.TIME_LIMIT, "time limit reached")
+                    break
+        finally:
+            if registry is not None:
+                registry.__exit__(None, None, None)
+        self.tally.stop, self.tally.seconds = stop, time.time() - started
+        return self.tally
+
+    def stop_reason(self) -> StopReason | None:
+        if self.signals.received:
+            return StopReason.by_signal(self.signals.received)
+        if self.plan.deadline is not None and time.time() >= self.plan.deadline:
+            return StopReason(Ending.TIME_LIMIT, "time limit reached")
+        if not self.study.get_trials(deepcopy=False, states=(TrialState.WAITING,)):
+            return StopReason(Ending.DONE, "confirmation done")
+        return None
+
+    def step(self) -> str:
+        """Take one queued job and settle it; its state."""
+        trial = self.study.ask()
+        claim(trial)
+        if queued_params(trial) is None:  # another worker took the last queued job meanwhile
+            return self._end(trial, {"state": EMPTY}, EMPTY, "no queued job left", TrialState.FAIL)
+        source, index = trial.suggest_int("trial", 0, 2**31 - 1), trial.suggest_int("seed_index", 0, 10**6)
+        arch = self.archs[source]
+        record = {"trial": source, "seed_index": index, "arch": arch.to_text(), "chosen": trial.user_attrs.get("chosen", ""),
+                  "retry_of": trial.user_attrs.get("retry_of"), "state": TRAINING}
+        trial.set_user_attr(RECORD, record)
+        for other in self.study.get_trials(deepcopy=False):  # one read after the write, as in the search
+            r = record_of(other)
+            if other.number != trial.number and (r.get("trial"), r.get("seed_index")) == (source, index) and (
+                    other.state == TrialState.RUNNING or r.get("state") in (TRAINED, FAILED)):
+                return self._end(trial, record, DUPLICATE, f"job done or running as trial {other.number}", TrialState.FAIL)
+        images = self.settings.epochs * self.plan.images
+        predicted = self.throughput.predict(self._macs(arch), images)
+        left = None if self.plan.deadline is None else self.plan.deadline - time.time()
+        if left is not None and predicted is not None and predicted > left:
+            queue_retry(self.study, trial)
+            return self._end(trial, record, NOT_STARTED, f"predicted {predicted:.0f} s but {left:.0f} s left",
+                             TrialState.FAIL)
+        return self._train(trial, arch, record, job_seed(self.plan.run_seed, source, index))
+
+    def _macs(self, arch: Arch) -> int:
+        return cost(arch).macs
+
+    def _train(self, trial: optuna.Trial, arch: Arch, record: dict, seed: int) -> str:
+        progress = TrainProgress()
+        deadline = None if self.plan.deadline is None else time.monotonic() + (self.plan.deadline - time.time())
+        with Heartbeat(self.study, trial):
+            try:
+                with self.signals.raising():
+                    result = self.trainer(arch, seed=seed, on_epoch=_ignore, deadline=deadline, progress=progress)
+                state, reason = TRAINED, ""
+            except Diverged as exc:
+                state, reason, result = FAILED, f"diverged: {exc.reason}", exc.result
+            except OutOfTime as exc:
+                state, reason, result = INTERRUPTED, "the run's time limit was reached during training; queued again", exc.result
+            except StopRequested as exc:
+                state, reason, result = INTERRUPTED, f"stopped by {exc}; queued again", progress.result()
+        if state == INTERRUPTED:
+            queue_retry(self.study, trial)
+        else:
+            self.throughput.add(self._macs(arch), progress.images_seen, result.seconds)
+            self.tally.trained += state == TRAINED
+        record |= {"val_accuracy": result.val_accuracy if math.isfinite(result.val_accuracy) else None,
+                   "history": list(result.history), "train_seconds": round(result.seconds, 3), "epochs": result.epochs,
+                   "seed": seed}
+        return self._end(trial, record, state, reason, TrialState.COMPLETE if state == TRAINED else TrialState.FAIL)
+
+    def _end(self, trial: optuna.Trial, record: dict, state: str, reason: str, optuna_state: TrialState) -> str:
+        record = record | {"state": state, "reason": reason}
+        trial.set_user_attr(RECORD, record)
+        if optuna_state == TrialState.COMPLETE:
+            self.study.tell(trial, record["val_accuracy"])
+        else:
+            self.study.tell(trial, state=optuna_state)
+        if self.plan.flush is not None and state in (TRAINED, FAILED):
+            self.plan.flush()
+        if self.plan.log_path is not None and state != EMPTY:
+            acc = record.get("val_accuracy")
+            line = (f"{time.strftime('%Y-%m-%d %H:%M:%S')} confirm trial {record.get('trial')} seed "
+                    f"{record.get('seed_index')} {state} acc={'-' if acc is None else f'{acc:.4f}'} "
+                    f"seconds={record.get('train_seconds', 0):.1f}" + (f" reason={reason}" if reason else ""))
+            with open(self.plan.log_path, "a", encoding="utf-8") as handle:
+                handle.write(line + "\n")
+        return state
+
+
+def _ignore(epoch: int, accuracy: float) -> None:
+    """Confirmation never stops a candidate early: every seed runs the whole schedule."""
+
