@@ -26,6 +26,7 @@ ROOT = Path(__file__).resolve().parent.parent
 sys.path.insert(0, str(ROOT / "tests"))
 
 from searcher.core.budget import Budget  # noqa: E402
+from searcher.results.confirmed import ConfirmSettings  # noqa: E402
 from searcher.study.run import SearchSettings, prepare  # noqa: E402
 from searcher.study.search_run import search  # noqa: E402
 from searcher.study.storage import open_study, storage_url  # noqa: E402
@@ -53,7 +54,8 @@ def overhead(folder: Path, store: str) -> None:
     runner.run_worker, runner.finish = timed("loop", runner.run_worker), timed("finish", runner.finish)
     storage = str(folder / "overhead.journal") if store == "journal" else None
     settings = SearchSettings(name=f"overhead-{store}", space=str(ROOT / "examples" / "stamp_inspection.toml"),
-                              data="demo", trials=20, root=folder, storage=storage)
+                              data="demo", trials=20, root=folder, storage=storage,
+                              confirm=ConfirmSettings(seeds=0))  # the proxy phase alone
     started = time.perf_counter()
     try:
         outcome = search(settings)  # the demo as README runs it: 6-epoch proxy training
@@ -101,7 +103,8 @@ def against_plain_loop(folder: Path, seed: int) -> None:
     npz, space_file = write_digits(folder)
     budget = {"max_params": 5_000}
     name = f"digits-5k-{seed}"
-    settings = SearchSettings(name=name, space=str(space_file), data=str(npz), trials=40, seed=seed, root=folder)
+    settings = SearchSettings(name=name, space=str(space_file), data=str(npz), trials=40, seed=seed, root=folder,
+                              confirm=ConfirmSettings(seeds=0))
     run = prepare(settings, budget)
     started = time.perf_counter()
     target, plain_seconds = plain_loop(run.space, run.data, run.budget, trials=40, seed=seed)

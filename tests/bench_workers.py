@@ -29,7 +29,7 @@ from conftest import TINY_SPACE  # noqa: E402
 import optuna  # noqa: E402
 
 from searcher.results.records import SPENT, record_of  # noqa: E402
-from searcher import SearchSettings, search  # noqa: E402
+from searcher import ConfirmSettings, SearchSettings, search  # noqa: E402
 from searcher.study.storage import open_study  # noqa: E402
 
 # The tests' tiny space made uniform: 30,720 candidates of two stages on 16x16 input, every one within
@@ -60,6 +60,7 @@ def one_search(root: Path, name: str, workers: int, minutes: float, space: str, 
                store: str) -> dict:
     url = str(root / name / "study.journal") if store == "journal" else f"sqlite:///{root / name / 'study.db'}"
     settings = SearchSettings(name=name, space=space, trials=100_000, minutes=minutes, workers=workers, root=root,
+                              confirm=ConfirmSettings(seeds=0),
                               storage=url)
     started = time.time()
     search(settings, train={"epochs": 1, "train_fraction": fraction})

@@ -38,7 +38,7 @@ def write_space(folder: Path, extra: str = "", name: str = "space.toml") -> Path
 def search_args(space: Path, name: str, *extra: str) -> list[str]:
     """The command line of a small, quick search on the demo data."""
     return [sys.executable, "-m", "searcher", "search", "--space", str(space), "--data", "demo", "--name", name,
-            "--train-fraction", "0.2", *extra]
+            "--train-fraction", "0.2", "--confirm", "0", *extra]
 
 
 def child_env() -> dict[str, str]:
@@ -92,8 +92,12 @@ def training_now(db: Path, pid: int | None = None) -> list[int]:
             and (pid is None or r["worker"].get("pid") == pid)]
 
 
-def wait_until_training(process: subprocess.Popen, db: Path, poll: float = 0.1) -> list[int]:
-    """Poll until a candidate of this process trains; fail if the process ends first."""
+def wait_until_training(process: subprocess.Popen, db: Path, poll: float = 0.01) -> list[int]:
+    """Poll until a candidate of this process trains; fail if the process ends first.
+
+    Polled every 10 ms (a read-only SQLite query takes a millisecond or two): a small candidate past
+    its first trains for 50-400 ms here, and a 100 ms poll missed every window of a run now and then.
+    """
     give_up = time.monotonic() + SAFETY_SECONDS
     while time.monotonic() < give_up:
         numbers = training_now(db, process.pid)
@@ -142,10 +146,13 @@ def in_process() -> Iterator[None]:
 
 def search_here(folder: Path, space: Path, name: str, train: dict | None = None, trainer_for: Any = None,
                 **fields: Any):
-    """searcher.search in this process on the demo data, runs under folder/runs; returns its outcome."""
+    """searcher.search in this process on the demo data, runs under folder/runs; returns its outcome.
+    Confirmation is off unless ``confirm`` is given."""
+    from searcher.results.confirmed import ConfirmSettings
     from searcher.study.run import SearchSettings
     from searcher.study.search_run import search
 
+    fields.setdefault("confirm", ConfirmSettings(seeds=0))
     settings = SearchSettings(name=name, space=str(space), root=folder / "runs", **fields)
     with in_process():
         return search(settings, train={"epochs": 1, "train_fraction": 0.2, **(train or {})}, trainer_for=trainer_for)

@@ -91,9 +91,9 @@ def test_report_status_export_of_a_missing_run_exit_2(capsys, workdir):
 
 @pytest.mark.slow
 def test_search_continues_under_the_same_name_and_refuses_a_changed_budget(capsys, workdir):
-    assert run("search", "--space", "tiny.toml", "--name", "go", "--trials", "2") == 0
+    assert run("search", "--space", "tiny.toml", "--name", "go", "--trials", "2", "--confirm", "0") == 0
     first = pd.read_csv(workdir / "runs" / "go" / "trials.csv")
-    assert run("search", "--space", "tiny.toml", "--name", "go", "--trials", "3") == 0
+    assert run("search", "--space", "tiny.toml", "--name", "go", "--trials", "3", "--confirm", "0") == 0
     second = pd.read_csv(workdir / "runs" / "go" / "trials.csv")
     # nothing completed is lost: the first run's rows are still there, unchanged
     pd.testing.assert_frame_equal(second.iloc[: len(first)][["trial", "arch", "state", "val_accuracy"]],
@@ -116,7 +116,7 @@ def test_search_continues_under_the_same_name_and_refuses_a_changed_budget(capsy
 
 @pytest.mark.slow
 def test_two_objective_search_records_accuracy_and_cost(capsys, workdir):
-    assert run("search", "--space", "tiny.toml", "--name", "two", "--trials", "3", "--objective", "params") == 0
+    assert run("search", "--space", "tiny.toml", "--name", "two", "--trials", "3", "--objective", "params", "--confirm", "0") == 0
     study = optuna.load_study(study_name="two", storage="sqlite:///runs/two/study.db")
     assert len(study.directions) == 2
     done = [t for t in study.trials if t.state == optuna.trial.TrialState.COMPLETE]
@@ -131,7 +131,7 @@ def test_a_run_whose_study_is_gone_is_not_overwritten_and_status_writes_nothing(
     """The study file removed: status and report refuse without creating one, a search under the same
     name refuses to start a new study over the old results, and --force keeps them aside."""
     folder = workdir / "runs" / "gone"
-    assert run("search", "--space", "tiny.toml", "--name", "gone", "--trials", "1") == 0
+    assert run("search", "--space", "tiny.toml", "--name", "gone", "--trials", "1", "--confirm", "0") == 0
     before = (folder / "trials.csv").read_bytes()
     for suffix in ("", "-wal", "-shm"):
         (folder / f"study.db{suffix}").unlink(missing_ok=True)
@@ -140,12 +140,12 @@ def test_a_run_whose_study_is_gone_is_not_overwritten_and_status_writes_nothing(
         assert run(command, "--name", "gone") == 2
         assert "study.db" in capsys.readouterr().err
         assert not (folder / "study.db").exists()  # a command that reads never creates a store
-    assert run("search", "--space", "tiny.toml", "--name", "gone", "--trials", "1") == 2
+    assert run("search", "--space", "tiny.toml", "--name", "gone", "--trials", "1", "--confirm", "0") == 2
     err = capsys.readouterr().err
     assert "--force" in err and "another --name" in err and "Traceback" not in err
     assert (folder / "trials.csv").read_bytes() == before and not (folder / "study.db").exists()
 
-    assert run("search", "--space", "tiny.toml", "--name", "gone", "--trials", "1", "--force") == 0
+    assert run("search", "--space", "tiny.toml", "--name", "gone", "--trials", "1", "--force", "--confirm", "0") == 0
     kept, = folder.glob("replaced-*")
     assert (kept / "trials.csv").read_bytes() == before  # the earlier results, moved aside whole
     assert len(pd.read_csv(folder / "trials.csv")) >= 1

@@ -57,7 +57,7 @@ def _wait_for_a_kill_moment(process, db: Path, rng: random.Random) -> None:
 @pytest.mark.slow
 def test_killed_search_resumes_without_losing_work(tmp_path: Path) -> None:
     trials = 16
-    args = search_args(write_space(tmp_path), "crash", "--trials", str(trials), "--epochs", "2")
+    args = search_args(write_space(tmp_path), "crash", "--trials", str(trials), "--epochs", "3")
     db = db_path(tmp_path, "crash")
     rng = random.Random(2)  # a seed whose draws mix kills at startup, mid-candidate and a few candidates in
     before_kills: list[dict] = []

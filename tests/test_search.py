@@ -20,6 +20,7 @@ import torch
 import searcher
 from searchkit import recording_trainer
 from searcher.ship.export import ExportSettings, export
+from searcher.results.confirmed import ConfirmSettings
 from searcher.study.run import SearchSettings
 from searcher.study.search_run import search
 
@@ -45,7 +46,7 @@ def digits_run(tmp_path_factory):
     npz, space_file = write_digits(folder)
     built: list[str] = []
     settings = SearchSettings(name="digits", space=str(space_file), data=str(npz), trials=8, seed=0,
-                              root=folder / "runs")
+                              root=folder / "runs", confirm=ConfirmSettings(seeds=0))
     outcome = search(settings, {"max_params": 20_000}, trainer_for=recording_trainer(built))
     exported = export(ExportSettings(name="digits", epochs=30, root=folder / "runs"))
     return outcome, exported, built, folder / "runs" / "digits"

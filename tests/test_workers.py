@@ -33,7 +33,7 @@ OPTUNA_STATE = {TRAINED: TrialState.COMPLETE, REJECTED: TrialState.COMPLETE, STO
 def search_command(space: Path, name: str, *extra: str) -> list[str]:
     """A tiny, fast search: one epoch on a fifth of the demo training split."""
     return [sys.executable, "-m", "searcher", "search", "--space", str(space), "--name", name, "--data", "demo",
-            "--epochs", "1", "--train-fraction", "0.2", "--trials", str(TRIALS), *extra]
+            "--epochs", "1", "--train-fraction", "0.2", "--trials", str(TRIALS), "--confirm", "0", *extra]
 
 
 def start(command: list[str], cwd: Path) -> subprocess.Popen:

@@ -73,7 +73,7 @@ def run_worker(run: PreparedRun, study: optuna.Study, deadline: float | None, in
         images_per_epoch=max(2, round(run.train.train_fraction * len(run.data.train.labels))),
         log_path=run.folder / "search.log", seed=s.seed + index, parent_pid=parent_pid,
         run_folder=run.folder if local else None, flush=disk_flush(run.url),
-        reserve=confirmation_reserve(run, confirm) if confirm and confirm.on and deadline is not None else None,
+        reserve=confirmation_reserve(run, confirm, deadline - time.time()) if confirm and confirm.on and deadline else None,
     )
     trainer = (trainer_for or TorchTrainer.for_run)(run, threads)
     worker = Worker(study, run.space, run.budget, run.train, s.objective, run.data.num_classes, plan, trainer)
@@ -86,8 +86,12 @@ def _local(run: PreparedRun) -> bool:
     return storage_kind(run.url) in ("sqlite", "journal")
 
 
-def confirmation_reserve(run: PreparedRun, confirm: ConfirmSettings) -> Callable[[Ledger, Throughput], float]:
-    """Seconds the confirmation of the current selection is predicted to take, this worker's share.
+CONFIRM_SHARE = 0.5  # at most this share of a time box is kept for confirmation: the proxy search gets the rest
+
+
+def confirmation_reserve(run: PreparedRun, confirm: ConfirmSettings, box: float) -> Callable[[Ledger, Throughput], float]:
+    """Seconds the confirmation of the current selection is predicted to take (this worker's share),
+    at most CONFIRM_SHARE of the ``box`` seconds: what does not fit stays queued for the next run.
 
     Recomputed only when a candidate was added to the ledger, from the throughput measured so far.
     """
@@ -105,7 +109,8 @@ def confirmation_reserve(run: PreparedRun, confirm: ConfirmSettings) -> Callable
             predicted = [throughput.predict(ledger.trained[t]["macs"], epochs_images) for t, _ in chosen
                          if t in ledger.trained]
             seen["count"] = len(ledger.trained)
-            seen["seconds"] = sum(p or 0.0 for p in predicted) * confirm.seeds / run.settings.workers
+            wanted = sum(p or 0.0 for p in predicted) * confirm.seeds / run.settings.workers
+            seen["seconds"] = min(wanted, CONFIRM_SHARE * box)
         return seen["seconds"]
 
     return reserve

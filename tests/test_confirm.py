@@ -1,0 +1,212 @@
+"""Confirmation: what is chosen for it, what its seeds say, the default pick, and its crash safety.
+
+Outside references: Spearman's rho against scipy.stats.spearmanr, Wilson's interval against
+scipy.stats.binomtest (tests/test_stats.py); the UCI digits (scikit-learn) for the end-to-end check.
+"""
+
+from __future__ import annotations
+
+import json
+import math
+
+import numpy as np
+import optuna
+import pandas as pd
+import pytest
+
+from conftest import TINY_SPACE
+from searchkit import search_here, write_space
+from searcher.core.space_file import read_space_text
+from searcher.results.records import RECORD, describe
+from searcher.core.budget import Budget
+from searcher.core.stats import accuracy_se
+from searcher.results.confirmed import (
+    ConfirmSettings, confirmation, confirmed_table, default_pick, proxy_spearman, select, within_noise,
+)
+from searcher.results.records import TRAINED
+from searcher.study.confirm import ConfirmPlan, Confirmer, jobs_frame, open_confirm_study, plan
+from searcher.study.timebox import Throughput
+
+VAL = 400  # validation images: two standard errors at 80% accuracy are 4 points
+
+
+def _frame(rows: list[tuple[int, float, int]]) -> pd.DataFrame:
+    """A trials table of trained candidates: (trial, proxy accuracy, params)."""
+    return pd.DataFrame([{"trial": t, "arch": f"arch-{t}", "state": TRAINED, "val_accuracy": a, "params": p,
+                          "macs": 10 * p, "peak_activation_bytes": 100, "weight_bytes": p, "repeat_of": None}
+                         for t, a, p in rows])
+
+
+def test_selection_takes_the_front_then_what_is_within_noise_then_random_others():
+    two_se = 2 * accuracy_se(0.8, VAL)  # 0.04
+    frame = _frame([(0, 0.70, 100), (1, 0.80, 200), (2, 0.80 - two_se / 2, 300), (3, 0.80 - 2 * two_se, 400),
+                    (4, 0.85, 800), (5, 0.50, 900), (6, 0.60, 950)])
+    chosen = select(frame, {}, ["params"], VAL, ConfirmSettings(most=10, extra=1), seed=0)
+    names = dict(chosen)
+    assert [t for t, why in chosen if why == "on a front"] == [4, 1, 0]  # most accurate first
+    assert names[2] == "within noise of a front"  # half of two standard errors behind trial 1, and dearer
+    assert 3 not in names or names[3] == "drawn at random"  # twice two standard errors behind: not near
+    randoms = [t for t, why in chosen if why == "drawn at random"]
+    assert len(randoms) == 1 and randoms[0] in (3, 5, 6)
+    assert select(frame, {}, ["params"], VAL, ConfirmSettings(most=10, extra=1), seed=0) == chosen  # seeded
+
+
+def test_selection_respects_caps_and_its_limit():
+    frame = _frame([(0, 0.70, 100), (1, 0.80, 200), (2, 0.90, 5000)])
+    chosen = select(frame, {"params": 1000}, ["params"], VAL, ConfirmSettings(most=1, extra=0), seed=0)
+    assert chosen == [(1, "on a front")]  # trial 2 breaks the cap; at most one
+
+
+def _jobs(accuracies: dict[int, list[float]]) -> pd.DataFrame:
+    return pd.DataFrame([{"job": 0, "trial": t, "seed_index": i, "state": TRAINED, "val_accuracy": a,
+                          "reason": "on a front", "train_seconds": 1.0, "history": [a / 2, a]}
+                         for t, values in accuracies.items() for i, a in enumerate(values)])
+
+
+def test_confirmed_table_means_and_spread_of_the_seeds():
+    frame = _frame([(0, 0.70, 100), (1, 0.80, 200)])
+    table = confirmed_table(_jobs({0: [0.9, 0.92, 0.94], 1: [0.8, math.nan, 0.84]}), frame)
+    row = table.set_index("trial").loc[0]
+    assert row["seeds"] == 3 and row["accuracy_mean"] == pytest.approx(0.92)
+    assert row["accuracy_sd"] == pytest.approx(np.std([0.9, 0.92, 0.94], ddof=1))  # numpy's sample sd
+    assert table.set_index("trial").loc[1, "seeds"] == 2  # a failed seed is left out of the mean
+    assert list(table.columns[:10]) == ["trial", "arch", "seeds", "accuracy_mean", "accuracy_sd", "proxy_accuracy",
+                                        "params", "macs", "peak_activation_bytes", "weight_bytes"]
+
+
+def test_default_pick_is_the_cheapest_within_noise_of_the_best():
+    frame = _frame([(0, 0.83, 3404), (1, 0.94, 16244), (2, 0.80, 1000)])
+    table = confirmed_table(_jobs({0: [0.945, 0.947, 0.946], 1: [0.95, 0.948, 0.946], 2: [0.90, 0.91, 0.905]}), frame)
+    pick = default_pick(table, {}, "params", None)
+    # trial 1 leads by 0.002, within 2 * sqrt(0.001^2/3 + 0.002^2/3) = 0.0026: it buys nothing credible
+    assert pick.trial == 0 and pick.best_trial == 1
+    assert "4.8x" in pick.reason and "trial 1" in pick.reason  # 16,244 / 3,404 parameters
+    strict = default_pick(table, {}, "params", 0.0)  # no accuracy may be given up
+    assert strict.trial == 1
+    loose = default_pick(table, {}, "params", 0.05)
+    assert loose.trial == 2  # five points allowed: the cheapest of all
+
+
+def test_within_noise_uses_both_seeds_spreads():
+    best = pd.Series({"accuracy_mean": 0.90, "accuracy_sd": 0.01, "seeds": 4})
+    close = pd.Series({"accuracy_mean": 0.89, "accuracy_sd": 0.01, "seeds": 4})
+    far = pd.Series({"accuracy_mean": 0.87, "accuracy_sd": 0.01, "seeds": 4})
+    # 2 * sqrt(0.01^2/4 + 0.01^2/4) = 0.0141
+    assert within_noise(best, close, None) and not within_noise(best, far, None)
+
+
+def test_spearman_of_the_confirmed_set_and_the_advice():
+    frame = _frame([(t, a, 100 * (t + 1)) for t, a in enumerate([0.5, 0.6, 0.7, 0.8])])
+    jobs = _jobs({0: [0.9, 0.9], 1: [0.8, 0.8], 2: [0.7, 0.7], 3: [0.6, 0.6]})  # the proxy's order, reversed
+    found = confirmation(frame, jobs, {}, "params", None, proxy_epochs=1, full_epochs=10)
+    assert found.spearman == pytest.approx(-1.0) and not found.reliable
+    assert "unreliable" in found.advice() and "--epochs" in found.advice()
+    assert math.isnan(proxy_spearman(confirmed_table(_jobs({0: [0.5], 1: [0.6]}), frame)))  # fewer than 3
+
+
+# -- the jobs, on a real (in-memory) study ------------------------------------------------------------
+
+
+class Counting:
+    """A trainer that trains nothing and answers an accuracy fixed by (architecture, seed)."""
+
+    def __init__(self) -> None:
+        self.calls: list[tuple[str, int]] = []
+
+    def __call__(self, arch, *, seed, on_epoch, deadline, progress):
+        self.calls.append((arch.to_text(), seed))
+        progress.history.append(0.5 + (hash((arch.to_text(), seed)) % 100) / 1000)
+        return progress.result()
+
+
+def _main_study(accuracies: dict[int, float]) -> tuple[optuna.Study, dict]:
+    """A search study whose trials are trained candidates of the tiny space's first architectures."""
+    optuna.logging.set_verbosity(optuna.logging.WARNING)
+    space = read_space_text(TINY_SPACE, "tiny")
+    archs = dict(zip(accuracies, space.enumerate(8)))
+    study = optuna.create_study(direction="maximize")
+    for number, accuracy in accuracies.items():
+        trial = study.ask()
+        record = describe(archs[number], {"params": 100 * (number + 1), "macs": 1000, "peak_activation_bytes": 10,
+                                          "weight_bytes": 100}) | {"state": TRAINED, "val_accuracy": accuracy}
+        trial.set_user_attr(RECORD, record)
+        study.tell(trial, accuracy)
+    return study, archs
+
+
+def _confirmer(study, archs, trainer, deadline=None):
+    from searcher.core.train_settings import TrainSettings
+
+    return Confirmer(study, archs, TrainSettings(epochs=2), ConfirmPlan(deadline=deadline, run_seed=0, images=100),
+                     trainer, Throughput())
+
+
+def test_jobs_are_shared_by_two_workers_and_never_trained_twice():
+    main, archs = _main_study({0: 0.5, 1: 0.6, 2: 0.7})
+    jobs_study = optuna.create_study(direction="maximize")
+    settings = ConfirmSettings(seeds=2, most=3, extra=0)
+    assert plan(jobs_study, main, Budget(), "params", VAL, settings, 0) == 6
+    assert plan(jobs_study, main, Budget(), "params", VAL, settings, 0) == 0  # a second worker queues nothing new
+    trainer = Counting()
+    first, second = _confirmer(jobs_study, archs, trainer), _confirmer(jobs_study, archs, trainer)
+    while first.stop_reason() is None or second.stop_reason() is None:
+        for worker in (first, second):
+            if worker.stop_reason() is None:
+                worker.step()
+    assert len(trainer.calls) == 6 and len(set(trainer.calls)) == 6  # every (candidate, seed) once
+    jobs = jobs_frame(jobs_study)
+    assert sorted(zip(jobs["trial"], jobs["seed_index"])) == [(t, s) for t in range(3) for s in range(2)]
+
+
+def test_a_job_queued_twice_by_racing_workers_is_trained_once():
+    main, archs = _main_study({0: 0.5})
+    jobs_study = optuna.create_study(direction="maximize")
+    for _ in range(2):  # two workers that both found nothing queued and both queued the job
+        jobs_study.enqueue_trial({"trial": 0, "seed_index": 0}, user_attrs={"chosen": "on a front"})
+    trainer = Counting()
+    worker = _confirmer(jobs_study, archs, trainer)
+    states = []
+    while worker.stop_reason() is None:
+        states.append(worker.step())
+    assert states == [TRAINED, "duplicate"] and len(trainer.calls) == 1
+
+
+def test_a_time_box_leaves_jobs_queued_and_the_next_run_does_only_those(tmp_path):
+    import time
+
+    main, archs = _main_study({0: 0.5, 1: 0.6})
+    url = f"sqlite:///{tmp_path / 'study.db'}"
+    jobs_study = open_confirm_study("r", url)
+    plan(jobs_study, main, Budget(), "params", VAL, ConfirmSettings(seeds=2, most=2, extra=0), 0)
+    trainer = Counting()
+    worker = _confirmer(jobs_study, archs, trainer, deadline=time.time() + 3600)
+    worker.throughput.add(macs=10**6, images=10, seconds=1.0)  # measured: 0.1 us per MAC-image
+    worker.step()
+    worker.step()  # two of four jobs done
+    worker.plan = ConfirmPlan(deadline=time.time() + 1e-4, run_seed=0, images=10**9)  # nothing more fits now
+    assert worker.step() == "not_started"
+    resumed = _confirmer(open_confirm_study("r", url), archs, trainer)
+    resumed.run()
+    assert len(trainer.calls) == 4 and len(set(trainer.calls)) == 4  # no finished seed redone
+    assert (jobs_frame(resumed.study)["state"] == TRAINED).sum() == 4
+
+
+@pytest.mark.slow
+def test_search_confirms_and_writes_its_results(tmp_path):
+    """A whole search with confirmation: jobs for every chosen candidate and seed, confirmed.csv and
+    summary.json as scripts read them, and the report's confirmed sections."""
+    outcome = search_here(tmp_path, write_space(tmp_path), "conf", trials=4, train={"epochs": 1},
+                          confirm=ConfirmSettings(seeds=2, most=2, extra=1))
+    folder = outcome.folder
+    confirmed = pd.read_csv(folder / "confirmed.csv")
+    for column in ("trial", "arch", "seeds", "accuracy_mean", "accuracy_sd", "proxy_accuracy", "params", "macs",
+                   "peak_activation_bytes", "weight_bytes"):
+        assert column in confirmed.columns
+    assert (confirmed["seeds"] == 2).all() and 2 <= len(confirmed) <= 3
+    summary = json.loads((folder / "summary.json").read_text())
+    assert "proxy_spearman" in summary and summary["time"]["confirm_seconds"] > 0
+    assert (summary["proxy_spearman"] is None) == (len(confirmed) < 3)
+    page = (folder / "report.html").read_text()
+    assert "confirmed mean ± 1 sd" in page and "Proxy against confirmed accuracy" in page
+    log = (folder / "search.log").read_text()
+    assert log.count(" confirm trial ") == 2 * len(confirmed)
