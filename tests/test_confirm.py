@@ -210,3 +210,41 @@ def test_search_confirms_and_writes_its_results(tmp_path):
     assert "confirmed mean ± 1 sd" in page and "Proxy against confirmed accuracy" in page
     log = (folder / "search.log").read_text()
     assert log.count(" confirm trial ") == 2 * len(confirmed)
+
+
+@pytest.mark.slow
+def test_confirmed_means_hold_up_when_retrained_with_other_seeds(tmp_path):
+    """On the UCI digits (scikit-learn's load_digits): every confirmed candidate's mean lies within two
+    standard deviations of the same candidate retrained here, independently, with three other seeds.
+
+    The spread allowed is the larger of the two sets' sample sds, and never below half a binomial
+    standard error at the validation size: three seeds can agree by chance to a tiny sd.
+    """
+    import torch
+
+    from searcher import parse_arch
+    from searcher.core.train_settings import TrainSettings
+    from searcher.data.load import load_dataset, load_split
+    from searcher.model.build import build
+    from searcher.model.train import train_candidate
+    from searcher.study.confirm import full_schedule
+    from test_search import write_digits
+
+    npz, space = write_digits(tmp_path)
+    outcome = search_here(tmp_path, space, "digits", data=str(npz), trials=5, train={"epochs": 4, "train_fraction": 1.0},
+                          confirm=ConfirmSettings(seeds=3, most=2, extra=1))
+    confirmed = outcome.confirmation.table
+    assert len(confirmed) >= 2 and (confirmed["seeds"] == 3).all()
+    config = json.loads((outcome.folder / "run.json").read_text())["config"]
+    from searcher.core.space_file import load_space
+
+    shape = load_space(space).data_shape
+    data = load_dataset(str(npz), shape, split=load_split(outcome.folder / "split.npz")[0])
+    settings = full_schedule(TrainSettings(**config["train"]))
+    torch.set_num_threads(1)
+    for row in confirmed.itertuples(index=False):
+        arch = parse_arch(row.arch)
+        again = [train_candidate(build(arch), data.train.images, data.train.labels, data.val.images, data.val.labels,
+                                 settings, seed=10_000 + k).val_accuracy for k in range(3)]
+        spread = max(row.accuracy_sd, float(np.std(again, ddof=1)), accuracy_se(row.accuracy_mean, len(data.val.labels)) / 2)
+        assert abs(np.mean(again) - row.accuracy_mean) <= 2 * spread, (row.arch, row.accuracy_mean, again)
