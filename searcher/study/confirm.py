@@ -11,6 +11,7 @@ never touched.
 
 from __future__ import annotations
 
+import contextlib
 import logging
 import math
 import time
@@ -36,7 +37,7 @@ from searcher.study.liveness import Heartbeat, Registry, claim, queue_retry, rec
 from searcher.study.optuna_private import queued_params
 from searcher.study.storage import OBJECTIVES, open_storage, trial_seed
 from searcher.study.timebox import Throughput
-from searcher.study.worker import Trainer
+from searcher.study.worker import RECOVER_SECONDS, Trainer
 
 log = logging.getLogger(__name__)
 
@@ -139,15 +140,15 @@ class Confirmer:
         self.trainer, self.throughput = trainer, throughput
         self.signals = StopSignals()
         self.tally = ConfirmTally()
+        self.registry: Registry | None = None  # this run's local worker registry, when its store is local
+        self._recovered_at = -math.inf  # time.monotonic() of the last look for dead workers' jobs
 
     def run(self) -> ConfirmTally:
+        """Work through the queued jobs until none is left, the time is up or a signal came."""
         started = time.time()
         self.signals.install()
-        registry = Registry(self.plan.run_folder) if self.plan.run_folder else None
-        if registry is not None:
-            registry.__enter__()
-        try:
-            recover_stale(self.study, registry)
+        registry = Registry(self.plan.run_folder) if self.plan.run_folder else contextlib.nullcontext()
+        with registry as self.registry:
             while (stop := self.stop_reason()) is None:
                 state = self.step()
                 if state == NOT_STARTED:
@@ -157,17 +158,18 @@ class Confirmer:
                 if state == INTERRUPTED:
                     stop = self.stop_reason() or StopReason(Ending.TIME_LIMIT, "time limit reached")
                     break
-        finally:
-            if registry is not None:
-                registry.__exit__(None, None, None)
         self.tally.stop, self.tally.seconds = stop, time.time() - started
         return self.tally
 
     def stop_reason(self) -> StopReason | None:
+        """Why to stop now, or None; looks for jobs dead workers left running every RECOVER_SECONDS."""
         if self.signals.received:
             return StopReason.by_signal(self.signals.received)
         if self.plan.deadline is not None and time.time() >= self.plan.deadline:
             return StopReason(Ending.TIME_LIMIT, "time limit reached")
+        if time.monotonic() - self._recovered_at >= RECOVER_SECONDS:
+            recover_stale(self.study, self.registry)
+            self._recovered_at = time.monotonic()
         if not self.study.get_trials(deepcopy=False, states=(TrialState.WAITING,)):
             return StopReason(Ending.DONE, "confirmation done")
         return None
