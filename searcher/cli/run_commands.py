@@ -112,9 +112,9 @@ def cmd_export(args: argparse.Namespace) -> int:
     outcome = export(ExportSettings(name=args.name, trial=args.trial, arch=args.arch, epochs=args.epochs,
                                     storage=args.storage))
     print(f"exported {outcome.arch}")
-    print(f"test accuracy {outcome.test_accuracy:.4f} on the held-out split; "
+    print(f"test accuracy {outcome.test_accuracy:.4f} (int8 {outcome.test_accuracy_int8:.4f}) on the held-out split; "
           + ("meets every cap" if outcome.fits else "BREAKS a cap"))
-    print(f"files in {outcome.folder}: model_state.pt, model.py, model.torchscript.pt, arch.json, metrics.json, MODEL_CARD.md")
+    print(f"files in {outcome.folder}: " + ", ".join(sorted(p.name for p in outcome.folder.iterdir())))
     return 0
 
 
