@@ -130,13 +130,18 @@ def write_sources(code: CSource, folder: Path) -> None:
     (folder / "model_int8.h").write_text(code.header, encoding="utf-8")
 
 
-def footprint(code: CSource, found: Tools, folder: Path) -> Footprint:
-    """Compile model_int8.c to an object with the strict warnings and read its sections."""
+def compile_model(code: CSource, found: Tools, folder: Path) -> Path:
+    """model_int8.o, compiled with the strict warnings, one data section per array, and stack usage noted."""
     write_sources(code, folder)
     _run([found.gcc, *WARNINGS, OPTIMIZE, "-fdata-sections", "-fstack-usage", "-c", "model_int8.c",
           "-o", "model_int8.o"], folder)
+    return folder / "model_int8.o"
+
+
+def footprint(code: CSource, found: Tools, obj: Path) -> Footprint:
+    """What ``size -A`` shows of the object :func:`compile_model` made, sorted into arena, arrays, code and the rest."""
     sections = {}
-    for line in _run([found.size, "-A", "model_int8.o"], folder).splitlines():
+    for line in _run([found.size, "-A", obj.name], obj.parent).splitlines():
         parts = line.split()
         if len(parts) == 3 and parts[1].isdigit() and int(parts[1]) > 0:
             sections[parts[0]] = int(parts[1])
@@ -144,16 +149,16 @@ def footprint(code: CSource, found: Tools, folder: Path) -> Footprint:
     constants = {name: sections.pop(f".rodata.{name}") for name, _ in code.arrays if f".rodata.{name}" in sections}
     code_bytes = sum(v for k, v in sections.items() if k.startswith(".text"))
     other = {k: v for k, v in sections.items() if k.startswith((".data", ".bss", ".rodata"))}
-    usage = (folder / "model_int8.su").read_text(encoding="utf-8")
+    usage = obj.with_suffix(".su").read_text(encoding="utf-8")
     stack = sum(int(m) for m in re.findall(r"\t(\d+)\t", usage))
     return Footprint(arena, constants, other, code_bytes, stack)
 
 
-def build_runner(code: CSource, found: Tools, folder: Path) -> Path:
-    """The model compiled with the test harness above into an executable."""
-    write_sources(code, folder)
+def build_runner(found: Tools, obj: Path) -> Path:
+    """The test harness above linked with the model object into an executable."""
+    folder = obj.parent
     (folder / "runner.c").write_text(RUNNER, encoding="utf-8")
-    _run([found.gcc, *WARNINGS, OPTIMIZE, "model_int8.c", "runner.c", "-o", "runner"], folder)
+    _run([found.gcc, *WARNINGS, OPTIMIZE, "runner.c", obj.name, "-o", "runner"], folder)
     return folder / "runner"
 
 

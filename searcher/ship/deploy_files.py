@@ -43,7 +43,8 @@ class DeployReport:
     code: CSource
     test_accuracy_int8: float  # integer reference on the held-out split
     onnx_fp32_max_difference: float  # largest |onnxruntime − torch| score on the held-out images
-    onnx_int8_top1_agreement: float  # share of held-out images where model_int8.onnx and the reference agree
+    onnx_int8_top1_agreement: float  # share of held-out images where model_int8.onnx, run as written, and the reference agree
+    onnx_int8_fused_agreement: float  # the same with onnxruntime's default fused integer kernels
     latency_onnxruntime_fp32_ms: float  # batch-1 median, one thread
     latency_c_ms: float | None  # batch-1 median of the C build (gcc -O2); None when skipped
     c_check: str  # one line: what the C build check found, or why it was skipped
@@ -65,6 +66,7 @@ class DeployReport:
                 "calibration": self.net.settings.calibration, "calibration_images": self.net.settings.images,
                 "onnx_fp32_max_difference": self.onnx_fp32_max_difference,
                 "onnx_int8_top1_agreement": self.onnx_int8_top1_agreement,
+                "onnx_int8_top1_agreement_fused_kernels": self.onnx_int8_fused_agreement,
                 "c_check": self.c_check,
                 "arena_bytes": self.code.arena_bytes, "analytic_peak_activation_bytes": self.analytic_peak_bytes,
                 "constant_bytes": self.code.constant_bytes, "analytic_weight_bytes": self.analytic_weight_bytes,
@@ -93,8 +95,9 @@ def _check_c(code: CSource, net: IntegerNet, pixels: np.ndarray, expected: np.nd
         return None, None, ("C compile check and C latency skipped: gcc and binutils' size are not both on PATH "
                             "(Debian: apt-get install gcc binutils); model_int8.c and model_int8.h are written all the same")
     with c_build.scratch() as folder:
-        footprint = c_build.footprint(code, found, Path(folder))
-        runner = c_build.build_runner(code, found, Path(folder))
+        obj = c_build.compile_model(code, found, Path(folder))
+        footprint = c_build.footprint(code, found, obj)
+        runner = c_build.build_runner(found, obj)
         scores, classes, _ = c_build.run(runner, pixels, net.classes)
         _, _, nanoseconds = c_build.run(runner, pixels[:LATENCY_IMAGES], net.classes, LATENCY_REPEATS)
     if not np.array_equal(scores, expected) or not np.array_equal(classes, expected.argmax(axis=1)):
@@ -129,13 +132,14 @@ def write_deploy_files(folder: Path, model: Any, arch: Arch, train_images: Any, 
 
     int8_model = onnx_files.int8_model(net)
     onnx.save(int8_model, str(folder / "model_int8.onnx"))
-    int8_scores = onnx_files.run(onnx_files.session(folder / "model_int8.onnx"), pixels.astype(np.float32) / 255)
-    agreement = float(np.mean(int8_scores.argmax(axis=1) == expected.argmax(axis=1)))
+    agreement = [float(np.mean(expected.argmax(axis=1) == onnx_files.run(
+        onnx_files.session(folder / "model_int8.onnx", fused=fused), pixels.astype(np.float32) / 255).argmax(axis=1)))
+        for fused in (False, True)]
 
     code = generate(net, class_names)
     c_build.write_sources(code, folder)
     peak, weights = prove(arch, code)
     footprint, c_latency, line = _check_c(code, net, pixels, expected)
     log.info(line)
-    return DeployReport(net, code, accuracy, difference, agreement, latency, c_latency, line, peak, weights,
+    return DeployReport(net, code, accuracy, difference, *agreement, latency, c_latency, line, peak, weights,
                         footprint)

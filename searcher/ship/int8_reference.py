@@ -17,26 +17,22 @@ from __future__ import annotations
 
 import numpy as np
 
-from searcher.ship.quantize import IntegerNet, IntLayer, affine, pool_windows
+from searcher.ship.quantize import IntegerNet, IntLayer, affine, pool
 
 BATCH = 256  # images per pass; bounds memory
 
 
 def round_shift(values: np.ndarray, shift: int) -> np.ndarray:
-    """values / 2^shift rounded half away from zero, with shifts of non-negative numbers only (as the C code)."""
+    """values / 2^shift rounded half away from zero, shifting non-negative numbers only (as the C code)."""
     half = np.int64(1) << np.int64(shift - 1)
-    return np.where(values >= 0, (values + half) >> shift, -((half - values) >> shift))
+    magnitude = (np.abs(values) + half) >> shift
+    return np.where(values < 0, -magnitude, magnitude)
 
 
 def round_divide(total: np.ndarray, count: int) -> np.ndarray:
-    """total / count rounded half away from zero, with divisions of non-negative numbers only (as the C code)."""
-    return np.where(total >= 0, (total + count // 2) // count, -((count // 2 - total) // count))
-
-
-def _multiply(dtype: type) -> object:
-    def multiply(cols: np.ndarray, matrix: np.ndarray) -> np.ndarray:
-        return np.matmul(cols.astype(dtype, copy=False), matrix.astype(dtype, copy=False))
-    return multiply
+    """total / count rounded half away from zero, dividing non-negative numbers only (as the C code)."""
+    magnitude = (np.abs(total) + count // 2) // count
+    return np.where(total < 0, -magnitude, magnitude)
 
 
 def _engine(layer: IntLayer, fast: bool) -> type:
@@ -50,26 +46,27 @@ def _engine(layer: IntLayer, fast: bool) -> type:
 
 def _affine(layer: IntLayer, x: np.ndarray, fast: bool) -> np.ndarray:
     dtype = _engine(layer, fast)
-    centred = x.astype(dtype) - dtype(layer.source.zero)
-    sums = affine(centred, layer.weights, layer.kind, layer.stride, layer.padding, _multiply(dtype))
-    sums = np.rint(sums).astype(np.int64) if dtype is not np.int64 else sums
-    per_channel = (slice(None),) + (None,) * (sums.ndim - 2)  # broadcast over the channel axis
-    acc = sums + layer.bias.astype(np.int64)[per_channel]
-    q = round_shift(acc * layer.multiplier.astype(np.int64)[per_channel], layer.shift) + layer.zero
-    q = np.clip(q, layer.low, layer.high)
-    if layer.table is not None:
-        q = layer.table[q + 128]
-    return q.astype(np.int8)
+    matrix = layer.weights.reshape(layer.channels, -1).T.astype(dtype)
+    bias, multiplier = layer.bias.astype(np.int64), layer.multiplier.astype(np.int64)
+
+    def apply(cols: np.ndarray) -> np.ndarray:  # rows x (C·k·k) -> rows x out, channel last
+        sums = cols @ matrix
+        acc = (sums if dtype is np.int64 else sums.astype(np.int64)) + bias
+        q = np.clip(round_shift(acc * multiplier, layer.shift) + layer.zero, layer.low, layer.high)
+        return (q if layer.table is None else layer.table[q + 128]).astype(np.int8)
+
+    centred = x.astype(dtype) - dtype(layer.source.zero)  # padding then adds real 0
+    return affine(centred, layer.kind, layer.weights.shape[-1] if layer.kind == "conv" else 1, layer.stride,
+                  layer.padding, apply)
 
 
 def _pool(layer: IntLayer, x: np.ndarray) -> np.ndarray:
     if layer.kind == "maxpool":
-        return pool_windows(x, layer.window, layer.stride).max(axis=(4, 5))
+        return pool(x, "max", layer.window, layer.stride)
     if layer.kind == "avgpool":
-        total = pool_windows(x.astype(np.int64), layer.window, layer.stride).sum(axis=(4, 5))
-        return round_divide(total, layer.window * layer.window).astype(np.int8)
-    total = x.astype(np.int64).sum(axis=(2, 3))  # gap
-    return round_divide(total, x.shape[2] * x.shape[3]).astype(np.int8)
+        return round_divide(pool(x.astype(np.int32), "sum", layer.window, layer.stride),
+                            layer.window * layer.window).astype(np.int8)
+    return round_divide(x.astype(np.int32).sum(axis=(2, 3)), x.shape[2] * x.shape[3]).astype(np.int8)  # gap
 
 
 def scores(net: IntegerNet, pixels: np.ndarray, *, fast: bool = False) -> np.ndarray:

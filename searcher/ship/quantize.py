@@ -44,7 +44,7 @@ BIAS_LIMIT = 2**30  # |int32 bias| stays below this (a weight scale is raised if
 ACCUMULATOR_BITS = 31  # magnitude bits of an int32 accumulator; a layer that may need more is "wide"
 TABLE_ACTIVATIONS = ("hardswish", "tanh", "sigmoid")  # done by a 256-entry lookup
 CALIBRATIONS = ("minmax", "percentile")
-CHUNK_VALUES = 1 << 23  # patch-matrix values per block of images, to bound memory
+CHUNK_VALUES = 1 << 18  # patch-matrix values per block of images: bounds memory, keeps temporaries in cache
 
 
 @dataclass(frozen=True)
@@ -236,37 +236,44 @@ def patches(x: np.ndarray, kernel: int, stride: int, padding: int) -> tuple[np.n
     return windows.transpose(0, 2, 3, 1, 4, 5).reshape(n * ho * wo, c * kernel * kernel), ho, wo
 
 
-def affine(x: np.ndarray, weight: np.ndarray, kind: str, stride: int, padding: int,
-           multiply: Callable[[np.ndarray, np.ndarray], np.ndarray]) -> np.ndarray:
-    """Conv (N, C, H, W) -> (N, out, Ho, Wo) or dense (N, ...) -> (N, out), without bias.
+def affine(x: np.ndarray, kind: str, kernel: int, stride: int, padding: int,
+           apply: Callable[[np.ndarray], np.ndarray]) -> np.ndarray:
+    """Conv (N, C, H, W) -> (N, out, Ho, Wo) or dense (N, ...) -> (N, out).
 
-    ``multiply(patches, weights_T)`` does the matrix product, so the float pass and the integer
-    engines share the layout code; blocks of images bound the patch matrix's memory.
+    ``apply`` maps a block of patch rows (rows, C·k·k) to outputs (rows, out): the matrix product,
+    bias and whatever follows, with the channel on the last, contiguous axis. The float pass and the
+    integer engines share this layout code; blocks of images bound the patch matrix's memory.
     """
-    matrix = weight.reshape(len(weight), -1).T
     if kind == "dense":
-        return multiply(x.reshape(len(x), -1), matrix)
-    kernel = weight.shape[-1]
-    per_image = matrix.shape[0] * x.shape[2] * x.shape[3]
+        return apply(x.reshape(len(x), -1))
+    per_image = x.shape[1] * kernel * kernel * x.shape[2] * x.shape[3]
     block = max(1, CHUNK_VALUES // max(1, per_image))
     parts = []
     for start in range(0, len(x), block):
         chunk = x[start:start + block]
         cols, ho, wo = patches(chunk, kernel, stride, padding)
-        parts.append(multiply(cols, matrix).reshape(len(chunk), ho, wo, -1).transpose(0, 3, 1, 2))
+        parts.append(apply(cols).reshape(len(chunk), ho, wo, -1).transpose(0, 3, 1, 2))
     return np.concatenate(parts)
 
 
-def pool_windows(x: np.ndarray, window: int, stride: int) -> np.ndarray:
-    """(N, C, H, W) -> (N, C, Ho, Wo, window, window), floor mode like torch's pools."""
-    return sliding_window_view(x, (window, window), axis=(2, 3))[:, :, ::stride, ::stride]
+def pool(x: np.ndarray, kind: str, window: int, stride: int) -> np.ndarray:
+    """Max or sum over each window of (N, C, H, W), floor mode like torch's pools: one elementwise
+    step per window offset over strided views, faster than reducing window views."""
+    ho, wo = (x.shape[2] - window) // stride + 1, (x.shape[3] - window) // stride + 1
+    out = None
+    for dy in range(window):
+        for dx in range(window):
+            part = x[:, :, dy:dy + stride * (ho - 1) + 1:stride, dx:dx + stride * (wo - 1) + 1:stride]
+            out = part.copy() if out is None else (np.maximum(out, part) if kind == "max" else out + part)
+    return out
 
 
 def _float_pool(layer: FoldedLayer, x: np.ndarray) -> np.ndarray:
     if layer.kind == "gap":
         return x.mean(axis=(2, 3))
-    windows = pool_windows(x, layer.window, layer.stride)
-    return windows.max(axis=(4, 5)) if layer.kind == "maxpool" else windows.mean(axis=(4, 5))
+    if layer.kind == "maxpool":
+        return pool(x, "max", layer.window, layer.stride)
+    return pool(x, "sum", layer.window, layer.stride) / (layer.window * layer.window)
 
 
 def float_forward(layers: list[FoldedLayer], images: np.ndarray) -> Iterator[tuple[FoldedLayer, np.ndarray, np.ndarray]]:
@@ -277,8 +284,9 @@ def float_forward(layers: list[FoldedLayer], images: np.ndarray) -> Iterator[tup
             x = _float_pool(layer, x)
             yield layer, x, x
             continue
-        pre = affine(x, layer.weight.astype(np.float32), layer.kind, layer.stride, layer.padding, np.matmul)
-        pre = pre + (layer.bias.astype(np.float32)[:, None, None] if layer.kind == "conv" else layer.bias.astype(np.float32))
+        matrix = layer.weight.reshape(len(layer.weight), -1).T.astype(np.float32)
+        bias = layer.bias.astype(np.float32)
+        pre = affine(x, layer.kind, layer.weight.shape[-1], layer.stride, layer.padding, lambda cols: cols @ matrix + bias)
         x = activate(layer.activation, pre)
         yield layer, pre, x
 
