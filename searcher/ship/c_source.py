@@ -12,6 +12,7 @@ int8. The arithmetic is that of :mod:`searcher.ship.int8_reference`, line for li
 from __future__ import annotations
 
 import math
+import re
 from dataclasses import dataclass
 
 import numpy as np
@@ -59,32 +60,40 @@ static int8_t requantize(acc_t acc, int32_t multiplier, int shift, int32_t zero,
 """
 
 _CONV = """\
-/* Square conv over C x H x W int8 maps; padded positions count as the input's zero point. */
-static void conv(const int8_t *in, int32_t in_c, int32_t in_h, int32_t in_w, int32_t in_zero,
-                 int8_t *out, int32_t out_c, int32_t out_h, int32_t out_w,
-                 int32_t k, int32_t stride, int32_t pad,
-                 const int8_t *weights, const int32_t *bias, const int32_t *multiplier, int shift,
-                 int32_t zero, int32_t low, int32_t high)
+/* KxK conv over C x H x W int8 maps; padded positions count as the input's zero point. One function
+ * per kernel size, so the compiler sees the tap loops' length. */
+static void conv_KxK(const int8_t *in, int32_t in_c, int32_t in_h, int32_t in_w, int32_t in_zero,
+                     int8_t *out, int32_t out_c, int32_t out_h, int32_t out_w, int32_t stride, int32_t pad,
+                     const int8_t *weights, const int32_t *bias, const int32_t *multiplier, int shift,
+                     int32_t zero, int32_t low, int32_t high)
 {
     int32_t oc, oy, ox, ic, ky, kx;
     for (oc = 0; oc < out_c; ++oc) {
-        const int8_t *w_oc = weights + oc * in_c * k * k;
+        const int8_t *w_oc = weights + oc * in_c * K * K;
         for (oy = 0; oy < out_h; ++oy) {
             int32_t y0 = oy * stride - pad;
             int32_t ky0 = y0 < 0 ? -y0 : 0;
-            int32_t ky1 = y0 + k > in_h ? in_h - y0 : k;
+            int32_t ky1 = y0 + K > in_h ? in_h - y0 : K;
             for (ox = 0; ox < out_w; ++ox) {
                 int32_t x0 = ox * stride - pad;
                 int32_t kx0 = x0 < 0 ? -x0 : 0;
-                int32_t kx1 = x0 + k > in_w ? in_w - x0 : k;
+                int32_t kx1 = x0 + K > in_w ? in_w - x0 : K;
                 acc_t acc = bias[oc];
                 for (ic = 0; ic < in_c; ++ic) {
                     const int8_t *plane = in + ic * in_h * in_w;
-                    const int8_t *w_ic = w_oc + ic * k * k;
-                    for (ky = ky0; ky < ky1; ++ky) {
-                        int32_t row = (y0 + ky) * in_w + x0;
-                        for (kx = kx0; kx < kx1; ++kx)
-                            acc += (acc_t)(((int32_t)plane[row + kx] - in_zero) * w_ic[ky * k + kx]);
+                    const int8_t *w_ic = w_oc + ic * K * K;
+                    if (kx0 == 0 && kx1 == K) {  /* the whole row of taps lies inside the map */
+                        for (ky = ky0; ky < ky1; ++ky) {
+                            const int8_t *row = plane + (y0 + ky) * in_w + x0;
+                            for (kx = 0; kx < K; ++kx)
+                                acc += (acc_t)(((int32_t)row[kx] - in_zero) * w_ic[ky * K + kx]);
+                        }
+                    } else {
+                        for (ky = ky0; ky < ky1; ++ky) {
+                            int32_t row = (y0 + ky) * in_w + x0;
+                            for (kx = kx0; kx < kx1; ++kx)
+                                acc += (acc_t)(((int32_t)plane[row + kx] - in_zero) * w_ic[ky * K + kx]);
+                        }
                     }
                 }
                 out[(oc * out_h + oy) * out_w + ox] = requantize(acc, multiplier[oc], shift, zero, low, high);
@@ -93,6 +102,11 @@ static void conv(const int8_t *in, int32_t in_c, int32_t in_h, int32_t in_w, int
     }
 }
 """
+
+
+def _conv_function(kernel: int) -> str:
+    return re.sub(r"\bK\b", str(kernel), _CONV).replace("KxK", f"{kernel}x{kernel}")
+
 
 _DENSE = """\
 /* Dense layer: every output reads every input. */
@@ -235,9 +249,9 @@ def generate(net: IntegerNet, class_names: tuple[str, ...] = ()) -> CSource:
                     f"{layer.zero}, {layer.low}, {layer.high}")
             if layer.kind == "conv":
                 k = layer.weights.shape[-1]
-                calls.append(f"    conv({src}, {before[0]}, {before[1]}, {before[2]}, {layer.source.zero}, {dst}, "
-                             f"{after[0]}, {after[1]}, {after[2]}, {k}, {layer.stride}, {layer.padding},\n"
-                             f"         {tail});")
+                calls.append(f"    conv_{k}x{k}({src}, {before[0]}, {before[1]}, {before[2]}, {layer.source.zero}, {dst}, "
+                             f"{after[0]}, {after[1]}, {after[2]}, {layer.stride}, {layer.padding},\n"
+                             f"              {tail});")
             else:
                 calls.append(f"    dense({src}, {sizes[i]}, {layer.source.zero}, {dst}, {after[0]},\n          {tail});")
             if layer.table is not None:
@@ -252,7 +266,8 @@ def generate(net: IntegerNet, class_names: tuple[str, ...] = ()) -> CSource:
         at = out_at
     kinds = {layer.kind for layer in net.layers}
     functions = [_REQUANTIZE]
-    functions += [_CONV] if "conv" in kinds else []
+    functions += [_conv_function(k) for k in sorted({layer.weights.shape[-1] for layer in net.layers
+                                                     if layer.kind == "conv"})]
     functions += [_DENSE]
     functions += [_TABLE] if net.tables else []
     functions += [_DIVIDE] if kinds & {"avgpool", "gap"} else []

@@ -46,11 +46,11 @@ def _engine(layer: IntLayer, fast: bool) -> type:
 
 def _affine(layer: IntLayer, x: np.ndarray, fast: bool) -> np.ndarray:
     dtype = _engine(layer, fast)
-    matrix = layer.weights.reshape(layer.channels, -1).T.astype(dtype)
-    bias, multiplier = layer.bias.astype(np.int64), layer.multiplier.astype(np.int64)
+    matrix = layer.weights.reshape(layer.channels, -1).astype(dtype)
+    bias, multiplier = layer.bias.astype(np.int64)[:, None], layer.multiplier.astype(np.int64)[:, None]
 
-    def apply(cols: np.ndarray) -> np.ndarray:  # rows x (C·k·k) -> rows x out, channel last
-        sums = cols @ matrix
+    def apply(cols: np.ndarray) -> np.ndarray:  # (n, C·k·k, L) -> (n, out, L)
+        sums = matrix @ cols
         acc = (sums if dtype is np.int64 else sums.astype(np.int64)) + bias
         q = np.clip(round_shift(acc * multiplier, layer.shift) + layer.zero, layer.low, layer.high)
         return (q if layer.table is None else layer.table[q + 128]).astype(np.int8)
