@@ -70,7 +70,7 @@ def speed(count: int) -> None:
     archs, settings = fitting(ROOT / "examples" / "stamp_inspection.toml", count, classes=8)
     found = c_build.tools()
     print(f"{count} fitting candidates of stamp_inspection.toml on the demo data; torch {torch.__version__}, one thread")
-    print(f"{'candidate':<58}{'MACs':>9}{'train s':>9}{'check fast':>11}{'share':>7}{'check ref':>10}{'share':>7}"
+    print(f"{'candidate':<68}{'MACs':>9}{'train s':>9}{'check fast':>11}{'share':>7}{'check ref':>10}{'share':>7}"
           f"{'ref img/s':>10}{'fast img/s':>11}{'C img/s':>9}{'ORT fp32':>9}")
     shares = []
     for arch in archs:
@@ -96,7 +96,7 @@ def speed(count: int) -> None:
             ort_rate = 1 / onnx_files.median_latency(onnx_files.session(Path(folder) / "model.onnx"),
                                                      data.test.images.numpy()[:128], 1)
         shares.append(fast_s / result.seconds)
-        print(f"{arch.to_text():<58}{cost(arch).macs:>9,}{result.seconds:>9.2f}{fast_s:>10.3f}s{fast_s / result.seconds:>7.1%}"
+        print(f"{arch.to_text():<68}{cost(arch).macs:>9,}{result.seconds:>9.2f}{fast_s:>10.3f}s{fast_s / result.seconds:>7.1%}"
               f"{ref_s:>9.3f}s{ref_s / result.seconds:>7.1%}{len(pixels) / ref_run:>10.0f}{len(pixels) / fast_run:>11.0f}"
               f"{c_rate:>9.0f}{ort_rate:>9.0f}")
     print(f"\nint8 check (fast engine) per candidate: median {statistics.median(shares):.1%}, largest {max(shares):.1%} "
@@ -112,7 +112,7 @@ def calibration(count: int) -> None:
              ("digits", ROOT / "examples" / "digits.toml", 10, lambda arch: digits)]
     digits = digits_data()
     print(f"held-out int8 accuracy by calibration, {count} fitting candidates per data set (proxy training as searched)")
-    print(f"{'data':<8}{'candidate':<58}{'fp32':>8}" + "".join(f"{name:>9}" for name in CALIBRATIONS))
+    print(f"{'data':<8}{'candidate':<68}{'fp32':>8}" + "".join(f"{name:>9}" for name in CALIBRATIONS))
     totals: dict[str, list[float]] = {name: [] for name in CALIBRATIONS}
     for label, space_file, classes, data_of in cases:
         archs, settings = fitting(space_file, count, classes)
@@ -124,7 +124,7 @@ def calibration(count: int) -> None:
                                        settings=quant) for name, quant in CALIBRATIONS.items()}
             for name, value in row.items():
                 totals[name].append(value - fp32)
-            print(f"{label:<8}{arch.to_text():<58}{fp32:>8.4f}" + "".join(f"{v:>9.4f}" for v in row.values()))
+            print(f"{label:<8}{arch.to_text():<68}{fp32:>8.4f}" + "".join(f"{v:>9.4f}" for v in row.values()))
     print("\nmean change from fp32: " + ", ".join(f"{name} {statistics.mean(v):+.4f} (worst {min(v):+.4f})"
                                                for name, v in totals.items()))
 

@@ -272,3 +272,20 @@ def test_int8_onnx_agrees_with_the_reference_on_held_out_images(trained_case):
     # onnxruntime, the file as written: top-1 agrees with the integer reference on ≥ 99% of held-out images.
     # (onnxruntime's default fused int8 kernels saturate 16-bit pair sums on x86 without VNNI: see onnx_files)
     assert np.mean(got.argmax(1) == int8_reference.classify(net, pixels)) >= 0.99
+
+
+def test_sums_beyond_32_bits_are_accumulated_in_64(tmp_path):
+    # 67,600 inputs of 255 times weights of 127 sum to 2.19e9 > 2^31 - 1: the C file must switch to int64_t
+    arch = parse_arch("1x260x260_flat-o2_relu")
+    state = {"out.weight": np.stack([np.ones(260 * 260), -np.ones(260 * 260)]), "out.bias": np.zeros(2)}
+    rng = np.random.default_rng(0)
+    images = np.concatenate([np.ones((1, *arch.input_shape)), np.zeros((1, *arch.input_shape)),
+                             rng.random((4, *arch.input_shape))]).astype(np.float32)
+    net = quantize(arch, state, images)
+    assert net.wide and "typedef int64_t acc_t;" in generate(net).source
+    pixels = to_pixels(images)
+    expected = int8_reference.scores(net, pixels)
+    assert np.array_equal(int8_reference.scores(net, pixels, fast=True), expected)
+    _, _, scores, _ = compile_and_run(net, arch, tmp_path, pixels)  # gcc
+    assert np.array_equal(scores, expected)
+    assert expected[0, 0] == 127 and expected[0, 1] == -128  # the extremes land on the grid's ends

@@ -31,6 +31,7 @@ from searcher.ship.quantize import IntegerNet, QuantSettings, to_pixels
 log = logging.getLogger(__name__)
 
 LATENCY_IMAGES = 64  # held-out images timed one at a time ...
+LATENCY_MACS = 2 * 10**9  # ... fewer (at least 5) when a pass over them would exceed this many MACs ...
 LATENCY_REPEATS = 3  # ... this many times over; the median is reported
 TABLE_BYTES = 256  # one int8 output per int8 input
 
@@ -89,7 +90,13 @@ def prove(arch: Arch, code: CSource) -> tuple[int, int]:
     return peak, weights
 
 
-def _check_c(code: CSource, net: IntegerNet, pixels: np.ndarray, expected: np.ndarray) -> tuple[Footprint | None, float | None, str]:
+def _timed_images(arch: Arch) -> int:
+    """How many held-out images to time: a large network gets fewer, so export stays quick."""
+    return max(5, min(LATENCY_IMAGES, LATENCY_MACS // max(1, cost(arch).macs)))
+
+
+def _check_c(code: CSource, net: IntegerNet, pixels: np.ndarray, expected: np.ndarray,
+             timed: int) -> tuple[Footprint | None, float | None, str]:
     found = c_build.tools()
     if found is None:
         return None, None, ("C compile check and C latency skipped: gcc and binutils' size are not both on PATH "
@@ -99,7 +106,7 @@ def _check_c(code: CSource, net: IntegerNet, pixels: np.ndarray, expected: np.nd
         footprint = c_build.footprint(code, found, obj)
         runner = c_build.build_runner(found, obj)
         scores, classes, _ = c_build.run(runner, pixels, net.classes)
-        _, _, nanoseconds = c_build.run(runner, pixels[:LATENCY_IMAGES], net.classes, LATENCY_REPEATS)
+        _, _, nanoseconds = c_build.run(runner, pixels[:timed], net.classes, LATENCY_REPEATS)
     if not np.array_equal(scores, expected) or not np.array_equal(classes, expected.argmax(axis=1)):
         raise RuntimeError(f"{net.arch}: the C build's scores differ from the integer reference on "
                            f"{int((scores != expected).any(axis=1).sum())} of {len(pixels)} held-out images")
@@ -128,7 +135,7 @@ def write_deploy_files(folder: Path, model: Any, arch: Arch, train_images: Any, 
     with torch.inference_mode():
         reference = model.eval()(torch.as_tensor(images)).numpy()
     difference = float(np.abs(onnx_files.run(fp32, images) - reference).max())
-    latency = onnx_files.median_latency(fp32, images[:LATENCY_IMAGES], LATENCY_REPEATS) * 1e3
+    latency = onnx_files.median_latency(fp32, images[:_timed_images(arch)], LATENCY_REPEATS) * 1e3
 
     int8_model = onnx_files.int8_model(net)
     onnx.save(int8_model, str(folder / "model_int8.onnx"))
@@ -139,7 +146,7 @@ def write_deploy_files(folder: Path, model: Any, arch: Arch, train_images: Any, 
     code = generate(net, class_names)
     c_build.write_sources(code, folder)
     peak, weights = prove(arch, code)
-    footprint, c_latency, line = _check_c(code, net, pixels, expected)
+    footprint, c_latency, line = _check_c(code, net, pixels, expected, _timed_images(arch))
     log.info(line)
     return DeployReport(net, code, accuracy, difference, *agreement, latency, c_latency, line, peak, weights,
                         footprint)

@@ -50,8 +50,11 @@ def _affine(layer: IntLayer, x: np.ndarray, fast: bool) -> np.ndarray:
     bias, multiplier = layer.bias.astype(np.int64)[:, None], layer.multiplier.astype(np.int64)[:, None]
 
     def apply(cols: np.ndarray) -> np.ndarray:  # (n, C·k·k, L) -> (n, out, L)
-        sums = matrix @ cols
-        acc = (sums if dtype is np.int64 else sums.astype(np.int64)) + bias
+        if dtype is np.int64:  # numpy's integer matmul has no BLAS; its einsum loop is several times faster here
+            sums = np.einsum("ok,nkl->nol", matrix, cols)
+        else:
+            sums = (matrix @ cols).astype(np.int64)
+        acc = sums + bias
         q = np.clip(round_shift(acc * multiplier, layer.shift) + layer.zero, layer.low, layer.high)
         return (q if layer.table is None else layer.table[q + 128]).astype(np.int8)
 
