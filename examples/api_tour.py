@@ -30,4 +30,4 @@ outcome = search(SearchSettings(name="api-tour", space=str(SPACE), data="demo", 
 print("counts:", outcome.counts, "best:", outcome.best and outcome.best["arch"])
 if outcome.best:
     exported = export(ExportSettings(name="api-tour"))
-    print(f"test accuracy {exported.test_accuracy:.4f}; files in {exported.folder}")
+    print(f"test accuracy {exported.test_accuracy:.4f} (int8 {exported.test_accuracy_int8:.4f}); files in {exported.folder}")

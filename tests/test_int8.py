@@ -29,6 +29,7 @@ from searcher.model.train import TrainSettings, evaluate, reset_weights
 from searcher.ship import c_build, deploy_files, int8_reference, onnx_files
 from searcher.ship.c_source import generate
 from searcher.ship.int8_check import int8_accuracy, quantized, state_arrays
+from searcher.ship.model_card import int8_section
 from searcher.ship.quantize import QuantSettings, float_forward, fold, quantize, to_pixels
 
 from conftest import SHIPPED_SPACES
@@ -226,6 +227,7 @@ def test_without_gcc_the_c_files_are_written_and_the_check_skipped(monkeypatch, 
     assert report.c_check.startswith("C compile check and C latency skipped")
     metrics = json.loads(json.dumps(report.metrics()))
     assert metrics["latency_c_int8_ms"] is None and metrics["int8"]["c_check"] == report.c_check
+    assert report.c_check in int8_section(report, arch)  # the card says so too
 
 
 # -- trained candidates: accuracy against an independent PTQ, and onnxruntime on held-out images ---

@@ -15,8 +15,10 @@ grids) it rounds where the integer reference rounds, so the top-1 class agrees o
 image (the tests ask ≥ 99%). onnxruntime's default optimizations go further and fuse each
 Quantize/Dequantize pattern into its own integer kernels; on x86 CPUs without VNNI those multiply
 uint8 by int8 in pairs summed in 16 bits, which saturate with full-range int8 weights (measured
-here: the differences vanish when the weights are cut to 7 bits). ``session(fused=False)`` runs
-the file as written; export reports the agreement both ways.
+here: the differences vanish when the weights are cut to 7 bits; OpenVINO's documentation, "Saturation
+(overflow) Issue Workaround", describes the same property of these instructions). On the demo that
+cost several points of accuracy. ``session(fused=False)`` runs the file as written; export reports
+the agreement both ways and the card tells users how to run it as written.
 """
 
 from __future__ import annotations

@@ -220,7 +220,7 @@ def activate(kind: str | None, x: np.ndarray) -> np.ndarray:
     if kind == "tanh":
         return np.tanh(x)
     if kind == "sigmoid":
-        return 1 / (1 + np.exp(-x))
+        return 0.5 * (1 + np.tanh(x / 2))  # = 1 / (1 + e^-x), without overflow for large |x|
     if kind == "hardswish":
         return x * np.clip(x + 3, 0, 6) / 6
     raise ValueError(f"no activation {kind!r}")
@@ -321,7 +321,8 @@ def fixed_point(multipliers: np.ndarray, bits: int) -> tuple[np.ndarray, int]:
     shift = bits - exponent
     while shift > 1 and np.rint(multipliers.max() * 2.0**shift) >= 2**bits:  # f rounded up to 1
         shift -= 1
-    if not 1 <= shift <= 62:
+    shift = min(shift, 62)  # a tiny multiplier keeps fewer bits rather than shifting past 64-bit arithmetic
+    if shift < 1:
         raise ValueError(f"requantization multiplier {multipliers.max():g} is outside what 64-bit arithmetic holds")
     return np.rint(multipliers * 2.0**shift).astype(np.int64), shift
 
