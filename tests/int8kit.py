@@ -11,6 +11,7 @@ Outside references used here:
 from __future__ import annotations
 
 import copy
+import dataclasses
 import warnings
 from typing import Any
 
@@ -18,17 +19,19 @@ import numpy as np
 import torch
 
 from searcher.core.arch import Arch
-from searcher.data.load import Dataset, Split, load_dataset, split_indices
+from searcher.data.load import Dataset, Split, load_dataset, resize_images, split_indices
 from searcher.model.build import build
 from searcher.model.train import TrainResult, TrainSettings, train_candidate
-from searcher.study.run import RunData
 
 DEMO_SHAPE = (1, 32, 32)  # the stamp-inspection space's largest input
 
 
 def demo_data(shape: tuple[int, int, int] = DEMO_SHAPE) -> Dataset:
-    """The built-in demo, split with seed 0, at `shape`."""
-    return RunData(load_dataset("demo", DEMO_SHAPE, seed=0)).at(shape)
+    """The built-in demo, split with seed 0, at `shape` (resized as a search resizes it)."""
+    data = load_dataset("demo", DEMO_SHAPE, seed=0)
+    parts = {p: Split(resize_images(getattr(data, p).images, *shape[1:]), getattr(data, p).labels)
+             for p in ("train", "val", "test")}
+    return dataclasses.replace(data, **parts)
 
 
 def digits_data() -> Dataset:
