@@ -29,4 +29,4 @@ print("counts:", outcome.counts, "best:", outcome.best and outcome.best["arch"])
 if outcome.best:
     exported = searcher.export(searcher.ExportSettings(name="api-tour"))
     print("\n".join(searcher.status("api-tour").lines()))
-    print(f"test accuracy {exported.test_accuracy:.4f}; files in {exported.folder}")
+    print(f"test accuracy {exported.test_accuracy:.4f} (int8 {exported.test_accuracy_int8:.4f}); files in {exported.folder}")

@@ -83,16 +83,15 @@ def test_budget_totals_use_the_budgets_precisions():
 
 
 def torch_weight_bytes(model: nn.Module, precision: str) -> int:
-    """Storage counted from the torch module: conv and dense weights at the precision, the rest
-    (biases, batch-norm scale and shift) at 32 bits for int8 (integer-only inference keeps
-    32-bit accumulators for additive terms; common practice) and at the precision otherwise."""
+    """Storage counted from the torch module. fp32/fp16: every parameter at the precision. int8, the
+    integer-only scheme (Jacob et al., CVPR 2018, §2.2-2.4; per-channel weights as in Krishnamoorthi
+    2018): conv and dense weights at 1 byte; batch norm folded into the conv; each conv or dense
+    output channel keeps an int32 bias and an int32 requantization multiplier (8 bytes)."""
     size = {"fp32": 4, "fp16": 2, "int8": 1}[precision]
-    total = 0
-    for module in model.modules():
-        for name, p in module.named_parameters(recurse=False):
-            multiplicative = name == "weight" and isinstance(module, (nn.Conv2d, nn.Linear))
-            total += p.numel() * (size if multiplicative or precision != "int8" else 4)
-    return total
+    if precision != "int8":
+        return size * sum(p.numel() for p in model.parameters())
+    layers = [m for m in model.modules() if isinstance(m, (nn.Conv2d, nn.Linear))]
+    return sum(m.weight.numel() + 8 * m.weight.shape[0] for m in layers)
 
 
 @pytest.mark.parametrize("text", [ARCH, "1x16x16_c4k3-a2_gap-d5-o3_tanh", "3x8x8_c2k1_flat-o2_relu"])
@@ -103,6 +102,8 @@ def test_weight_bytes_rule(text, precision):
 
 
 def test_int8_weight_bytes_by_hand():
-    # conv 1->4 3x3 with batch norm: 36 weights (1 B each) + 8 scale/shift (4 B each);
-    # dense 4->2: 8 weights (1 B) + 2 biases (4 B)
-    assert cost(parse_arch("1x8x8_c4k3_gap-o2_relu_bn")).weight_bytes("int8") == 36 + 8 * 4 + 8 + 2 * 4
+    # conv 1->4 3x3, batch norm folded in: 36 weights (1 B each) + 4 channels x (int32 bias + int32 multiplier);
+    # dense 4->2: 8 weights (1 B) + 2 channels x 8 B
+    assert cost(parse_arch("1x8x8_c4k3_gap-o2_relu_bn")).weight_bytes("int8") == 36 + 4 * 8 + 8 + 2 * 8
+    # without batch norm the conv's bias takes the same 8 B per channel
+    assert cost(parse_arch("1x8x8_c4k3_gap-o2_relu")).weight_bytes("int8") == 36 + 4 * 8 + 8 + 2 * 8

@@ -7,8 +7,8 @@ are above 0.97 accuracy (recalled from memory), so a capped search reaching 0.95
 
 from __future__ import annotations
 
-import contextlib
 import importlib.util
+import json
 import math
 from pathlib import Path
 
@@ -106,11 +106,36 @@ def test_exported_files_reproduce_the_trained_model(digits_run):
     state = torch.load(export_dir / "model_state.pt", weights_only=True)
     rebuilt = searcher.build(searcher.parse_arch((export_dir / "arch.json").read_text()))
     rebuilt.load_state_dict(state)
-    with pytest.warns(DeprecationWarning) if torch.__version__ >= "2.13" else contextlib.nullcontext():
-        scripted = torch.jit.load(str(export_dir / "model.torchscript.pt"))
+    program = torch.export.load(str(export_dir / "model.pt2")).module()  # torch.export's format
     with torch.inference_mode():
         assert torch.equal(rebuilt.eval()(images), expected)
-        assert torch.allclose(scripted(images), expected, atol=1e-6)
+        assert torch.allclose(program(images), expected, atol=1e-6)
+        assert torch.allclose(program(images[:1]), expected[:1], atol=1e-6)  # any batch size
+
+
+@pytest.mark.slow
+def test_export_leaves_a_verified_int8_model(digits_run):
+    _, exported, _, folder = digits_run
+    export_dir = folder / "export"
+    for name in ("model.onnx", "model_int8.onnx", "model_int8.c", "model_int8.h"):
+        assert (export_dir / name).exists(), name
+    metrics = json.loads((export_dir / "metrics.json").read_text())
+    assert metrics["test_accuracy_int8"] == exported.test_accuracy_int8
+    # the UCI digits (scikit-learn): int8 stays near fp32 on the held-out split
+    assert metrics["test_accuracy_int8"] >= metrics["test_accuracy"] - 0.02
+    assert metrics["latency_onnxruntime_fp32_ms"] > 0
+    assert metrics["int8"]["onnx_fp32_max_difference"] <= 1e-4  # onnxruntime against torch
+    assert metrics["int8"]["onnx_int8_top1_agreement"] >= 0.99  # onnxruntime against the integer reference
+    # gcc and size -A (export raises if the C scores or the sections differ from the reference and the analytic figures)
+    if metrics["latency_c_int8_ms"] is None:
+        assert metrics["int8"]["c_check"].startswith("C compile check and C latency skipped")
+    else:
+        compiled, analytic = metrics["int8"]["compiled"], searcher.cost(exported.arch, "int8")
+        assert compiled["arena_bytes"] == analytic.peak_activation_bytes
+        assert compiled["constant_bytes"] == analytic.weight_bytes("int8") + sum(metrics["int8"]["tables"].values())
+    card = (export_dir / "MODEL_CARD.md").read_text()
+    assert f"| **{exported.test_accuracy:.4f}** | **{exported.test_accuracy_int8:.4f}** |" in card
+    assert "model_classify(" in card and "gcc -std=c99" in card
 
 
 @pytest.mark.slow

@@ -64,7 +64,7 @@ def cmd_export(args: argparse.Namespace) -> int:
                                                       epochs=args.epochs, storage=args.storage,
                                                       tolerance=args.tolerance, force=args.force))
     print(f"exported {outcome.arch}")
-    print(f"test accuracy {outcome.test_accuracy:.4f} on the held-out split; "
+    print(f"test accuracy {outcome.test_accuracy:.4f} (int8 {outcome.test_accuracy_int8:.4f}) on the held-out split; "
           + ("meets every cap" if outcome.fits else "BREAKS a cap"))
     print(f"files in {outcome.folder}: " + ", ".join(sorted(p.name for p in outcome.folder.iterdir())))
     return 0

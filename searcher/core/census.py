@@ -87,6 +87,7 @@ def batch_costs(space: Space, batch: Batch, budget: Budget, classes: int | None 
     bn = batch["batch_norm"].astype(bool)
     weights = np.zeros(n, np.int64)
     biases = np.zeros(n, np.int64)
+    channels = np.zeros(n, np.int64)  # output channels of conv and dense layers
     macs = np.zeros(n, np.int64)
     peak = c * h * w
     # lookup[i][f] = width of stage i for first width f
@@ -105,6 +106,7 @@ def batch_costs(space: Space, batch: Batch, budget: Budget, classes: int | None 
             wt, bias = conv_params(c, width, kernel, ~bn)
             weights += np.where(on, wt, 0)
             biases += np.where(on, bias + 2 * width * bn, 0)
+            channels += np.where(on, width, 0)
             macs += np.where(on, conv_macs(c, width, kernel, h2, w2), 0)
             peak = np.maximum(peak, np.where(on, c * h * w + width * h2 * w2, 0))
             c, h, w = np.where(on, width, c), np.where(on, h2, h), np.where(on, w2, w)
@@ -126,6 +128,7 @@ def batch_costs(space: Space, batch: Batch, budget: Budget, classes: int | None 
         wt, bias = dense_params(features, width)
         weights += np.where(on, wt, 0)
         biases += np.where(on, bias, 0)
+        channels += np.where(on, width, 0)
         macs += np.where(on, wt, 0)
         peak = np.maximum(peak, np.where(on, features + width, 0))
         features = np.where(on, width, features)
@@ -133,7 +136,7 @@ def batch_costs(space: Space, batch: Batch, budget: Budget, classes: int | None 
         "params": weights + biases,
         "macs": macs,
         "peak_activation_bytes": peak * PRECISION_BYTES[budget.activation_precision],
-        "weight_bytes": weight_bytes(weights, biases, budget.weight_precision),
+        "weight_bytes": weight_bytes(weights, biases, budget.weight_precision, channels),
         "stages": depth,
         "first_width": first,
         "last_width": last_width,

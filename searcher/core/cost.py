@@ -13,9 +13,11 @@ What is counted, and in which unit:
 * **peak activation memory** — at batch 1 for a sequential net: the largest (input + output)
   pair of one layer, in bytes at the activation precision. Batch norm and activations work in
   place on the conv output; flattening is a view and costs nothing.
-* **weight storage** — parameters in bytes at a precision. At ``int8`` each weight is 1 byte and
-  each bias or batch-norm value 4 bytes (32-bit accumulators, the usual integer-only scheme);
-  quantisation scales are not counted.
+* **weight storage** — parameters in bytes at a precision. At ``int8`` each weight is 1 byte, batch
+  norm is folded into its conv, and each conv or dense output channel stores an int32 bias and an
+  int32 requantization multiplier: 8 bytes per channel (the integer-only scheme of Jacob et al.,
+  CVPR 2018, with per-channel weight scales; ``searcher.ship`` builds exactly this and the tests
+  check it on the compiled C). The per-layer shift and zero points are a few bytes of code.
 """
 
 from __future__ import annotations
@@ -27,7 +29,7 @@ from searcher.core.arch import Arch
 from searcher.errors import SearcherError, one_of
 
 PRECISION_BYTES = {"fp32": 4, "fp16": 2, "int8": 1}
-_BIAS_BYTES = {"fp32": 4, "fp16": 2, "int8": 4}
+INT8_CHANNEL_BYTES = 8  # per conv or dense output channel at int8: int32 bias + int32 requantization multiplier
 
 
 # The formulas below take plain ints or numpy arrays alike: the census applies them to a
@@ -49,9 +51,15 @@ def dense_params(n_in: int, n_out: int) -> tuple[int, int]:
     return n_in * n_out, n_out
 
 
-def weight_bytes(weights: int, biases: int, precision: str) -> int:
-    """Bytes to store weights and additive values (biases, batch-norm) at ``precision``."""
-    return weights * PRECISION_BYTES[precision] + biases * _BIAS_BYTES[precision]
+def weight_bytes(weights: int, biases: int, precision: str, channels: int) -> int:
+    """Bytes to store weights and additive values (biases, batch-norm) at ``precision``.
+
+    At int8, ``channels`` (output channels of the conv and dense layers) replaces ``biases``: batch
+    norm folds into the conv, and each channel keeps an int32 bias and an int32 multiplier.
+    """
+    if precision == "int8":
+        return weights + INT8_CHANNEL_BYTES * channels
+    return (weights + biases) * PRECISION_BYTES[precision]
 
 
 def conv_macs(c_in: int, c_out: int, kernel: int, h_out: int, w_out: int) -> int:
@@ -107,7 +115,8 @@ class Cost:
     def weight_bytes(self, precision: str = "fp32") -> int:
         """Bytes to store every trainable parameter at ``precision`` (see module notes for int8)."""
         check_precision(precision)
-        return weight_bytes(sum(x.weights for x in self.layers), sum(x.biases for x in self.layers), precision)
+        channels = sum(x.output_shape[0] for x in self.layers if x.kind in ("conv", "dense"))
+        return weight_bytes(sum(x.weights for x in self.layers), sum(x.biases for x in self.layers), precision, channels)
 
     def totals(self, weight_precision: str = "fp32") -> dict[str, int]:
         """The headline numbers, keyed as in trials tables and budgets."""

@@ -1,8 +1,16 @@
 """Export: retrain the chosen candidate longer, test it on the held-out split, write what ships.
 
 runs/<name>/export/ holds the weights (a state_dict for ``torch.load(..., weights_only=True)``),
-the architecture JSON, a standalone ``model.py`` that needs only torch, a TorchScript file, test
-metrics as JSON and a model card. The folder is written beside the old one and swapped in whole.
+the architecture JSON, a standalone ``model.py`` that needs only torch, the network in torch.export's
+format (``model.pt2``), the ONNX and C files of :mod:`searcher.ship.deploy_files` (fp32 and int8,
+each checked as it is written), test metrics as JSON and a model card. The folder is written beside
+the old one and swapped in whole.
+
+``model.pt2`` took the place of a TorchScript file: TorchScript is deprecated in torch 2.13, and
+what it was still good for (running without Python, in C++ or on a phone) is now served by
+``model.onnx`` (onnxruntime has C, C++, C#, Java and JavaScript front ends) and, on a
+microcontroller, by ``model_int8.c``. torch.export's program is torch's current format, and the
+entry point of its own ahead-of-time and on-device tool chains.
 """
 
 from __future__ import annotations
@@ -11,7 +19,6 @@ import json
 import logging
 import shutil
 import time
-import warnings
 from dataclasses import asdict, dataclass, replace
 from pathlib import Path
 from typing import Any
@@ -31,6 +38,7 @@ from searcher.model.train import TrainSettings, evaluate, train_candidate
 from searcher.results.confirmed import default_pick
 from searcher.results.records import FAILED, REJECTED, TRAINED, best_row
 from searcher.results.tables import RunResults, gather
+from searcher.ship.deploy_files import DeployReport, write_deploy_files
 from searcher.runs import RUNS
 from searcher.ship.model_card import model_card, standalone_source
 from searcher.study.run import RunData
@@ -61,6 +69,12 @@ class ExportOutcome:
     costs: dict[str, int]
     fits: bool
     model: Any = None  # the retrained torch module, in eval mode
+    deploy: DeployReport | None = None  # the int8 model's accuracy, the ONNX and C checks and figures
+
+    @property
+    def test_accuracy_int8(self) -> float | None:
+        """The integer reference's accuracy on the held-out split."""
+        return None if self.deploy is None else self.deploy.test_accuracy_int8
 
 
 @dataclass(frozen=True)
@@ -154,12 +168,13 @@ def export(settings: ExportSettings) -> ExportOutcome:
     totals = budget.totals(cost(arch, budget.activation_precision))
     fits = not budget.check(totals)
     outcome = ExportOutcome(folder / "export", arch, accuracy, per_class, confusion.tolist(), totals, fits, model)
-    extra = {"run": settings.name, "how": how, "trial": choice.trial, "confirmed": choice.confirmed, "epochs": epochs, "train_seconds": result.seconds, "train_size": len(labels),
+    extra = {"run": settings.name, "how": how, "trial": choice.trial, "confirmed": choice.confirmed, "epochs": epochs,
+             "train_seconds": result.seconds, "train_size": len(labels),
              "sizes": {p: len(getattr(data, p).labels) for p in ("train", "val", "test")},
              "settings": asdict(train_settings), "budget": budget, "config": config}
-    _write(outcome, model, extra)
-    log.info("exported %s: test accuracy %.4f on %d held-out images (%.0f s of training)", arch, accuracy,
-             len(data.test.labels), time.time() - started)
+    _write(outcome, model, extra, data)
+    log.info("exported %s: test accuracy %.4f (int8 %.4f) on %d held-out images (%.0f s in all)", arch, accuracy,
+             outcome.test_accuracy_int8, len(data.test.labels), time.time() - started)
     return outcome
 
 
@@ -176,8 +191,12 @@ def _confusion(truth: np.ndarray, predicted: np.ndarray, classes: int) -> np.nda
     return table
 
 
-def _write(outcome: ExportOutcome, model: Any, extra: dict) -> None:
-    """Write into a fresh folder beside export/, then swap it in, so export/ is never half-written."""
+def _write(outcome: ExportOutcome, model: Any, extra: dict, data: Any) -> None:
+    """Write into a fresh folder beside export/, then swap it in, so export/ is never half-written.
+
+    The int8 model is calibrated on training images (the first of the training split) and measured
+    on the held-out split, like the fp32 one.
+    """
     target = outcome.folder
     temp = target.with_name(f".export-{int(time.time() * 1000)}")
     temp.mkdir(parents=True)
@@ -186,14 +205,16 @@ def _write(outcome: ExportOutcome, model: Any, extra: dict) -> None:
         torch.save(model.state_dict(), temp / "model_state.pt")
         (temp / "arch.json").write_text(arch.to_json(), encoding="utf-8")
         (temp / "model.py").write_text(standalone_source(model, arch, extra["config"].class_names), encoding="utf-8")
-        example = torch.zeros(1, *arch.input_shape)
-        with warnings.catch_warnings():  # torch 2.13 marks TorchScript deprecated; C++ and mobile runtimes still load it
-            warnings.simplefilter("ignore", DeprecationWarning)
-            torch.jit.trace(model.eval(), example).save(str(temp / "model.torchscript.pt"))
+        example = torch.zeros(2, *arch.input_shape)  # batch size free: any N
+        program = torch.export.export(model.eval(), (example,), dynamic_shapes=({0: torch.export.Dim("batch")},))
+        torch.export.save(program, str(temp / "model.pt2"))
+        outcome.deploy = write_deploy_files(temp, model, arch, data.train.images, data.test.images, data.test.labels,
+                                            extra["config"].class_names)
         metrics = {"arch": arch.to_text(), "test_accuracy": outcome.test_accuracy, "per_class": outcome.per_class,
                    "confusion": outcome.confusion, "costs": outcome.costs, "fits_budget": outcome.fits,
                    "sizes": extra["sizes"], "epochs": extra["epochs"], "chosen": extra["how"], "trial": extra["trial"],
-                   "confirmed": extra["confirmed"], "test_accuracy_interval95": list(test_interval(outcome))}
+                   "confirmed": extra["confirmed"], "test_accuracy_interval95": list(test_interval(outcome)),
+                   **outcome.deploy.metrics()}
         (temp / "metrics.json").write_text(json.dumps(metrics, indent=2), encoding="utf-8")
         (temp / "MODEL_CARD.md").write_text(model_card(outcome, extra), encoding="utf-8")
         if target.exists():

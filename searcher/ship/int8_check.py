@@ -1,0 +1,45 @@
+"""int8 accuracy of a trained candidate: the call a search makes per candidate when weights are int8.
+
+    from searcher.ship.int8_check import int8_accuracy
+    accuracy = int8_accuracy(model, arch, data.train.images, data.val.images, data.val.labels)
+
+It quantizes the trained model as export does (calibrating on the first ``settings.images``
+training images) and scores the validation split with the integer reference's fast engine, which
+gives the same integers as the reference (``tests/test_int8.py`` checks that) in a fraction of
+the time. ``python tests/bench_int8.py`` measures its cost against the proxy training.
+"""
+
+from __future__ import annotations
+
+from typing import Any
+
+import numpy as np
+
+from searcher.core.arch import Arch
+from searcher.ship import int8_reference
+from searcher.ship.quantize import IntegerNet, QuantSettings, quantize, to_pixels
+
+
+def state_arrays(model: Any) -> dict[str, np.ndarray]:
+    """A torch module's state_dict as numpy arrays: what the quantizer reads."""
+    return {key: value.detach().cpu().numpy() for key, value in model.state_dict().items()}
+
+
+def _numpy(values: Any) -> np.ndarray:
+    return values.detach().cpu().numpy() if hasattr(values, "detach") else np.asarray(values)
+
+
+def quantized(model: Any, arch: Arch, train_images: Any, settings: QuantSettings = QuantSettings()) -> IntegerNet:
+    """The integer network of a trained torch model, calibrated on the first training images."""
+    return quantize(arch, state_arrays(model), _numpy(train_images[: settings.images]), settings)
+
+
+def int8_accuracy(model: Any, arch: Arch, train_images: Any, images: Any, labels: Any, *,
+                  settings: QuantSettings = QuantSettings(), fast: bool = True) -> float:
+    """Share of `images` (float N×C×H×W in [0, 1], torch or numpy) the int8 network classifies as `labels`.
+
+    ``fast=False`` runs the reference's int64 engine instead; the answer is the same.
+    """
+    net = quantized(model, arch, train_images, settings)
+    predicted = int8_reference.classify(net, to_pixels(_numpy(images)), fast=fast)
+    return float(np.mean(predicted == _numpy(labels)))
