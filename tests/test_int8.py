@@ -60,8 +60,9 @@ def small_candidate(space, activation: str, seed: int = 0) -> Arch:
     first width (so it compiles and runs quickly); every other decision drawn; the given activation."""
     rng = random.Random(seed)
 
-    def pick(name, options, weights, ordered):
-        return options[0] if ordered or name in SMALLEST else rng.choice(options)
+    def pick(decision, weights):
+        options = decision.options
+        return options[0] if decision.ordered or decision.name in SMALLEST else rng.choice(options)
 
     return dataclasses.replace(space.assemble(pick), activation=activation)
 
