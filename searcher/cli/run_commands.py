@@ -12,22 +12,26 @@ log = logging.getLogger("searcher")
 
 
 def _open_run(args: argparse.Namespace):
-    from searcher.study.storage import open_run
+    from searcher.study.storage import open_run, storage_kind
 
+    if args.storage is not None:
+        storage_kind(args.storage)  # an empty or mistyped --storage is refused, not taken for the default
     return open_run(args.name, args.storage)
 
 
 def cmd_search(args: argparse.Namespace, space_path, budget_of) -> int:
     from searcher.study.run import SearchSettings, search
+    from searcher.core.train_settings import TrainSettings
     from searcher.core.units import parse_bytes
 
     train = {k: v for k, v in (("epochs", args.epochs), ("train_fraction", args.train_fraction),
                                ("batch_size", args.batch_size)) if v is not None}
+    TrainSettings.from_dict(train, prefix="--")  # named as typed (--epochs), not as the space file's train.epochs
     settings = SearchSettings(
         name=args.name, space=str(space_path(args.space)), data=args.data, trials=args.trials, minutes=args.minutes,
         objective=args.objective, sampler=args.sampler, storage=args.storage, workers=args.workers, seed=args.seed,
         candidate_minutes=args.candidate_minutes,
-        memory_cap=parse_bytes(args.max_train_memory, key="--max-train-memory") if args.max_train_memory else None,
+        memory_cap=None if args.max_train_memory is None else parse_bytes(args.max_train_memory, key="--max-train-memory"),
         skip_unreadable=args.skip_unreadable,
     )
     outcome = search(settings, budget_of(args), train)

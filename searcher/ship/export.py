@@ -21,8 +21,10 @@ import numpy as np
 from searcher.core.arch import Arch, parse_arch
 from searcher.core.budget import Budget
 from searcher.core.cost import cost
-from searcher.errors import SearcherError
-from searcher.runs import RUNS
+from searcher.errors import SearcherError, check_int, shown
+from searcher.limits import MAX_EPOCHS, MAX_TRIAL
+from searcher.runs import RUNS, run_folder
+from searcher.study.storage import storage_kind
 
 log = logging.getLogger(__name__)
 
@@ -35,6 +37,26 @@ class ExportSettings:
     epochs: int | None = None  # training epochs; default 3x the search's, at least 10
     storage: str | None = None  # the run's storage, when it is not the run folder's SQLite
     root: Path = RUNS
+
+    def __post_init__(self) -> None:
+        """Refuse a bad option before the run is opened, naming it as typed (``--epochs``)."""
+        run_folder(self.name, self.root)
+        if self.trial is not None:
+            check_int(self.trial, "--trial", 0, MAX_TRIAL)
+        if self.epochs is not None:
+            check_int(self.epochs, "--epochs", 1, MAX_EPOCHS)
+        if self.arch is not None:
+            given_arch(self.arch)
+        if self.storage is not None:
+            storage_kind(self.storage)
+
+
+def given_arch(text: str) -> Arch:
+    """The architecture given with ``--arch``; a mistake in it is named as the option's."""
+    try:
+        return parse_arch(text)
+    except SearcherError as exc:
+        raise SearcherError(f"`--arch`: {exc.message}", key="--arch") from None
 
 
 @dataclass
@@ -54,7 +76,7 @@ def choose(frame: Any, budget: Budget, settings: ExportSettings, classes: int) -
     from searcher.results.tables import best_row
 
     if settings.arch:
-        return parse_arch(settings.arch), "given on the command line"
+        return given_arch(settings.arch), "given on the command line"
     if settings.trial is not None:
         rows = frame[frame["trial"] == settings.trial]
         if rows.empty or not rows.iloc[0]["arch"]:
@@ -86,9 +108,13 @@ def export(settings: ExportSettings) -> ExportOutcome:
     arch, how = choose(frame, budget, settings, config.classes)
     if arch.head.classes != config.classes:
         raise SearcherError(f"architecture has {arch.head.classes} outputs but the run's data has {config.classes} classes")
+    space_shape = _space_shape(config)
+    if arch.input_shape[0] != space_shape[0]:
+        raise SearcherError(f"`--arch` {shown(arch.to_text())} takes {arch.input_shape[0]} input channel(s) but run "
+                            f"{settings.name!r} reads its images with {space_shape[0]}; give the architecture "
+                            f"{space_shape[0]} input channel(s)", key="--arch")
     split_file = folder / "split.npz"
     stored = load_split(split_file)[0] if split_file.exists() else None
-    space_shape = _space_shape(config)
     dataset = load_dataset(config.data, space_shape, seed=config.seed, split=stored)
     if dataset.fingerprint != config.data_fingerprint:
         raise SearcherError(f"the data at {config.data} changed since run {settings.name!r} searched it "
