@@ -231,18 +231,18 @@ def parse_arch(text: str) -> Arch:
         raise fail("too few fields")
     found = _INPUT.match(parts[0])
     if not found:
-        raise fail(f"input {parts[0]!r} must be CxHxW")
+        raise fail(f"input {shown(parts[0])} must be CxHxW")
     input_shape = tuple(int(v) for v in found.groups())
     activation = parts[-1]
     if activation not in ACTIVATIONS:
-        raise fail(f"activation {activation!r} must be {one_of(activation, ACTIVATIONS)}")
+        raise fail(f"activation {shown(activation)} must be {one_of(activation, ACTIVATIONS)}")
 
     stages = []
     for field in parts[1:-2]:
         convs, pool = [], None
         for token in field.split("-"):
             if pool is not None:
-                raise fail(f"nothing may follow the pool in stage {field!r}")
+                raise fail(f"nothing may follow the pool in stage {shown(field)}")
             if m := _CONV.match(token):
                 out, k, s, v = m.groups()
                 convs.append(Conv(int(out), int(k), int(s or 1), "valid" if v else "same"))
@@ -250,9 +250,9 @@ def parse_arch(text: str) -> Arch:
                 kind, window, stride = m.groups()
                 pool = Pool("max" if kind == "m" else "avg", int(window), int(stride or window))
             else:
-                raise fail(f"stage token {token!r} is neither a conv (c16k3) nor a pool (m2, a2)")
+                raise fail(f"stage token {shown(token)} is neither a conv (c16k3) nor a pool (m2, a2)")
         if not convs:
-            raise fail(f"stage {field!r} has no conv")
+            raise fail(f"stage {shown(field)} has no conv")
         stages.append(Stage(tuple(convs), pool))
 
     tokens = parts[-2].split("-")
