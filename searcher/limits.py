@@ -12,7 +12,7 @@ from __future__ import annotations
 MAX_SIDE = 1024  # input height or width in pixels; also the ceiling on a stride or pool window
 MAX_WIDTH = 4096  # channels of a conv, width of a hidden dense layer
 MAX_KERNEL = 31  # side of a square conv kernel
-MAX_STAGES = 10  # conv-pool stages; plain nets this deep already train worse (He et al., CVPR 2016, Fig. 1)
+MAX_STAGES = 10  # conv-pool stages; plain nets this deep already train worse (He et al., CVPR 2016, Fig. 1; recalled)
 MAX_CONVS = 10  # convs in one stage
 MAX_HIDDEN = 2  # hidden dense layers of the head
 MAX_CLASSES = 100_000  # outputs

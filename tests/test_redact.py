@@ -2,9 +2,10 @@
 
 URL forms follow RFC 3986 (scheme://userinfo@host/path?query) as users really type them,
 including unencoded '@', ':' and '/' in passwords, which SQLAlchemy's URL parser accepts
-(sqlalchemy/engine/url.py, _parse_url); keyword strings follow libpq's connection-string
-syntax (PostgreSQL manual, 34.1.1, "Keyword/Value Connection Strings": values may be
-single-quoted); PGPASSWORD is libpq's password environment variable (manual, 34.15).
+(sqlalchemy/engine/url.py, _parse_url, read in the installed 2.1.9); keyword strings follow
+libpq's connection-string syntax (PostgreSQL manual, "Keyword/Value Connection Strings": values
+may be single-quoted); PGPASSWORD is libpq's password environment variable (manual, "Environment
+Variables"). The two libpq facts are recalled from memory, not re-read.
 """
 
 from __future__ import annotations

@@ -9,6 +9,7 @@ from __future__ import annotations
 import json
 import logging
 import math
+import multiprocessing
 import os
 import signal
 import time
@@ -66,7 +67,7 @@ class SearchSettings:
             storage_kind(self.storage)
         _check_data(self.data)
         cores = os.cpu_count() or 1
-        if self.workers > cores:
+        if self.workers > cores and multiprocessing.parent_process() is None:  # once, not again in each worker
             log.warning("--workers %d is more than this machine's %d CPU cores: the workers will share cores, "
                         "and each candidate trains slower", self.workers, cores)
 
