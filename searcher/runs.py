@@ -7,7 +7,7 @@ import re
 import tempfile
 from pathlib import Path
 
-from searcher.errors import SearcherError
+from searcher.errors import SearcherError, shown
 
 RUNS = Path("runs")
 _NAME = re.compile(r"^[A-Za-z0-9][A-Za-z0-9._-]{0,79}$")
@@ -15,12 +15,22 @@ _NAME = re.compile(r"^[A-Za-z0-9][A-Za-z0-9._-]{0,79}$")
 
 def run_folder(name: str, root: Path = RUNS) -> Path:
     """The folder of run ``name``; names are plain so they are safe as folder names."""
-    if not _NAME.match(name):
+    if not isinstance(name, str) or not _NAME.match(name):
         raise SearcherError(
-            f"run name {name!r} must be 1-80 letters, digits, '.', '_' or '-', starting with a letter or digit",
+            f"`--name` {shown(name)} must be 1-80 letters, digits, '.', '_' or '-', starting with a letter or digit",
             key="--name",
         )
     return root / name
+
+
+def plain_name(text: str, fallback: str = "space") -> str:
+    """``text`` made fit to be part of a run name: other characters become '-', cut to 60.
+
+    >>> plain_name("Stamp inspection (v2)")
+    'Stamp-inspection-v2'
+    """
+    name = re.sub(r"[^A-Za-z0-9._-]+", "-", text).strip("-._")[:60].strip("-._")
+    return name or fallback
 
 
 def write_atomic(path: Path, data: str | bytes) -> Path:

@@ -96,10 +96,24 @@ def test_arch_without_stages_round_trips():
         ("1x32x32_c8k3_gap-x5-o10_relu", "head token 'x5'"),
         ("1x32x32_c8k3_gap-d64_relu", "o<classes>"),
         ("1x32x32_c8k4_gap-o10_relu", "odd kernel"),
-        ("1x32x32_c0k3_gap-o10_relu", "positive integer"),
+        ("1x32x32_c0k3_gap-o10_relu", "whole number from 1 to 4,096, got 0"),
         ("1x32x32_c8k3_gap-r1.5-o10_relu", "dropout"),
         ("{not json", "does not parse"),
-        ('{"stages": []}', "missing or has a wrong field"),
+        ('{"stages": []}', "has no field 'head'"),
+        # sizes beyond 64 bits or beyond searcher.limits (issue 8: OverflowError, a 2 TiB allocation)
+        ("1x18446744073709551617x16_c4k3_gap-o4_relu", "input side must be a whole number from 1 to 1,024"),
+        ("1x16x16_c4097k3_gap-o4_relu", "conv width must be a whole number from 1 to 4,096, got 4097"),
+        ("1x16x16_c4k33_gap-o4_relu", "kernel must be a whole number from 1 to 31"),
+        ("1x16x16_c4k3_gap-d5000-o4_relu", "hidden width"),
+        ("1x16x16_c4k3_gap-o100001_relu", "class count must be a whole number from 1 to 100,000"),
+        ("1x16x16_c4k3-m1025_gap-o4_relu", "stride or pool window"),
+        ("1x16x16_" + "_".join(["c4k3"] * 11) + "_gap-o4_relu", "at most 10 stages"),
+        ("1x16x16_" + "-".join(["c4k3"] * 11) + "_gap-o4_relu", "at most 10, got 11"),
+        ("1x1" + "9" * 5000 + "x1_gap-o2_relu", "more than 100 digits"),
+        ('{"input_shape": [1, ' + "9" * 5000 + ', 8]}', "does not parse"),
+        ('{"input_shape": [1, 8, 8], "stages": [], "head": [1, 2]}', "field of the wrong kind"),
+        ('{"input_shape": [1, 8, 8], "stages": [{"convs": [{"out_channels": "4", "kernel": 3}]}], "head": '
+         '{"features": "gap"}}', "conv width must be a whole number"),
     ],
 )
 def test_bad_text_raises_user_error(text, says):
@@ -116,7 +130,7 @@ def test_bad_text_raises_user_error(text, says):
         (lambda: Arch((1, 8, 8), (Stage((Conv(4, 3),), Pool("mx")),), Head("gap")), "did you mean 'max'"),
         (lambda: Arch((1, 8, 8), (Stage(()),), Head("gap")), "at least one conv"),
         (lambda: Arch((1, 8, 8), (), Head("gap", dropout=1.0)), "dropout"),
-        (lambda: Arch((1, 8, 8), (), Head("gap", classes=0)), "positive integer"),
+        (lambda: Arch((1, 8, 8), (), Head("gap", classes=0)), "class count must be a whole number from 1"),
     ],
 )
 def test_invalid_arch_objects_are_refused(make, says):

@@ -154,3 +154,25 @@ def test_a_new_decision_is_counted_everywhere_or_refused_loudly(write_space):
     costing = dataclasses.replace(free, costs_extra=True)
     with pytest.raises(NotImplementedError, match="extra"):
         run_census(costing)
+
+
+# Every ceiling of searcher.limits at once: the largest network a space file can describe.
+AT_THE_CEILINGS = "\n".join([
+    "input = { sizes = [[1024, 1024], [1024, 1023]], classes = 100000 }",
+    "stages = { count = [9, 10], convs = [9, 10], first_width = [4096, 4095], max_width = 4096 }",
+    'conv = { kernel = [31, 29] }',
+    'pool = { kind = "none" }',
+    'head = { features = "flatten", hidden = [2, 2], hidden_width = [4096] }',
+])
+
+
+def test_census_at_every_ceiling_stays_exact(write_space):
+    """No 64-bit overflow: the largest costs a space file can reach equal Python's exact integers.
+
+    (Before the ceilings, a width or size beyond 64 bits raised OverflowError in numpy, and large
+    ones silently wrapped around.)
+    """
+    space = load_space(write_space(AT_THE_CEILINGS))
+    batch = sample(space, 40, seed=3)
+    assert_batch_equals_scalar(space, batch, space.budget)
+    assert int(batch_costs(space, batch, space.budget)["macs"].max()) > 10**18  # near 2^63, and still exact

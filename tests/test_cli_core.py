@@ -88,13 +88,13 @@ def test_census_takes_a_shipped_space_by_name_and_budget_options(tmp_path, monke
     ("argv", "says"),
     [
         (["cost", "1x32x32_c6q5_flat-o10_tanh"], "neither a conv"),
-        (["cost", LENET5, "--max-params", "lots"], "--max_params"),
+        (["cost", LENET5, "--max-params", "lots"], "`--max-params` must be a count"),
         (["cost", LENET5, "--space", "mcuu"], "did you mean 'mcu'"),
         (["cost", "1x4x4_c6k5v_flat-o10_tanh"], "below 1x1"),
-        (["census", "--space", "missing.toml"], "not found"),
+        (["census", "--space", "missing.toml"], "`--space` 'missing.toml' is not a file"),
         (["census", "--space", "bad.toml"], "conv.kernal"),
-        (["census", "--space", "classic", "--name", "../escape"], "run name"),
-        (["census", "--space", "classic", "--max-activation", "16 parsecs"], "--max_activation"),
+        (["census", "--space", "classic", "--name", "../escape"], "`--name` '../escape' must be"),
+        (["census", "--space", "classic", "--max-activation", "16 parsecs"], "`--max-activation` must be a byte size"),
     ],
 )
 def test_user_mistakes_exit_2_with_a_message_and_write_nothing(tmp_path, monkeypatch, capsys, argv, says):

@@ -54,13 +54,13 @@ def assert_refused(capsys, workdir, argv, *phrases):
 
 @pytest.mark.parametrize("argv, phrases", [
     (["--data", "missing.npz"], ["missing.npz"]),
-    (["--max-params", "12 apples"], ["--max_params", "12 apples"]),
+    (["--max-params", "12 apples"], ["`--max-params`", "12 apples"]),
     (["--max-params", "10"], ["no candidate", "fits the budget", "params"]),
     (["--objective", "latency"], ["--objective", "accuracy"]),
     (["--trials", "0"], ["--trials"]),
     (["--minutes", "-1"], ["--minutes"]),
     (["--storage", "mysql://u@h/db"], ["--storage"]),
-    (["--name", "../escape"], ["run name"]),
+    (["--name", "../escape"], ["`--name` '../escape' must be"]),
 ])
 def test_bad_search_input_exits_2_with_a_message_and_writes_nothing(capsys, workdir, argv, phrases):
     base = ["search", "--space", "tiny.toml", "--name", "bad", "--trials", "1"]

@@ -39,25 +39,25 @@ SMALL = variant(('sizes = [[12, 12], [16, 16]]', 'sizes = [[12, 12]]'), ('count 
     [
         ([("kernel = 3", "kernal = 3")], "conv.kernal", "is not a known key.*did you mean 'kernel'"),
         ([("[head]", "[haed]")], "haed", "not a known section.*did you mean 'head'"),
-        ([("count = [1, 3]", 'count = "three"')], "stages.count", "must be an integer or a range"),
-        ([("growth = 2.0", 'growth = "double"')], "stages.growth", "must be a number > 0"),
+        ([("count = [1, 3]", 'count = "three"')], "stages.count", "must be a whole number or a range"),
+        ([("growth = 2.0", 'growth = "double"')], "stages.growth", r"must be a number in \(0, 16\]"),
         ([("first_width = [2, 4]", "first_width = []")], "stages.first_width", "at least one choice"),
         ([('kind = ["max", "none"]', "kind = []")], "pool.kind", "at least one choice"),
         ([("count = [1, 3]", "count = [3, 1]")], "stages.count", r"min ≤ max, got \[3, 1\]"),
         ([("convs = [1, 2]", "convs = [2, 1]")], "stages.convs", "min ≤ max"),
-        ([("channels = 1", "channels = 0")], "input.channels", "positive integer, got 0"),
-        ([("sizes = [[12, 12], [16, 16]]", "sizes = [[12, 0]]")], "input.sizes", "positive integers"),
-        ([("first_width = [2, 4]", "first_width = [2, -4]")], "stages.first_width", "integers ≥ 1, got -4"),
-        ([("count = [1, 3]", "count = [0, 3]")], "stages.count", "must not go below 1"),
+        ([("channels = 1", "channels = 0")], "input.channels", r"must be 1 \(gray\), 3 \(RGB\) or 4 \(RGBA\), got 0"),
+        ([("sizes = [[12, 12], [16, 16]]", "sizes = [[12, 0]]")], "input.sizes", "whole numbers from 1 to 1,024"),
+        ([("first_width = [2, 4]", "first_width = [2, -4]")], "stages.first_width", r"a whole number from 1 to 4,096 or a list of such choices, got -4 in \[2, -4\]"),
+        ([("count = [1, 3]", "count = [0, 3]")], "stages.count", r"must stay within 1 to 10, got \[0, 3\]"),
         ([("kernel = 3", "kernel = [3, 4]")], "conv.kernel", "'same' needs odd kernels"),
         ([('max_params = "300"', 'max_params = "300 apples"')], "budget.max_params", "a count such as"),
         ([('max_macs = "20k"', 'max_macs = "20KiB"')], "budget.max_macs", "a count such as"),
         ([('activation = ["relu", "tanh"]', 'activation = ["relu", "tanhh"]')], "conv.activation",
          "'tanhh'.*did you mean 'tanh'"),
         ([('padding = "same"', 'padding = "vaild"')], "conv.padding", "did you mean 'valid'"),
-        ([("hidden = [0, 1]", "hidden = [0, 3]")], "head.hidden", "at most 2"),
+        ([("hidden = [0, 1]", "hidden = [0, 3]")], "head.hidden", r"within 0 to 2, got \[0, 3\]"),
         ([("dropout = 0.0", "dropout = [0.5, 1.0]")], "head.dropout", r"in \[0, 1\)"),
-        ([("batch_norm = [true, false]", 'batch_norm = "yes"')], "conv.batch_norm", "true, false"),
+        ([("batch_norm = [true, false]", 'batch_norm = "yes"')], "conv.batch_norm", "true or false"),
     ],
 )
 def test_bad_space_files_name_file_and_key(write_space, changes, key, says):
@@ -245,3 +245,69 @@ def test_a_built_wheel_carries_the_shipped_spaces(tmp_path):
         cwd=tmp_path, capture_output=True, text=True, env={**os.environ, "PYTHONPATH": str(tmp_path / "site")})
     assert check.returncode == 0, check.stderr[-2000:]
     assert Path(check.stdout.strip()).is_relative_to(tmp_path / "site")
+
+
+# -- issue 8: values that crashed, hung or were misexplained ---------------------------------------
+BIG = 2**64 + 1  # beyond 64 bits: numpy raised OverflowError on these, Python would allocate terabytes
+
+
+@pytest.mark.parametrize(("changes", "key", "says"), [
+    ([("sizes = [[12, 12], [16, 16]]", f"sizes = [[12, {BIG}]]")], "input.sizes", "from 1 to 1,024"),
+    ([("first_width = [2, 4]", f"first_width = [2, {BIG}]")], "stages.first_width", "from 1 to 4,096"),
+    ([("max_width = 8", f"max_width = {BIG}")], "stages.max_width", "from 1 to 4,096"),
+    ([("kernel = 3", f"kernel = {BIG}")], "conv.kernel", "from 1 to 31"),
+    ([("classes = 4", f"classes = {BIG}")], "input.classes", "from 2 to 100,000"),
+    ([("hidden_width = [3, 5]", "hidden_width = [3, 1000000000]")], "head.hidden_width", "from 1 to 4,096"),
+    ([("convs = [1, 2]", "convs = [1, 1000000]")], "stages.convs", r"within 1 to 10"),  # the census ran for minutes
+    ([("count = [1, 3]", "count = [1, 50]")], "stages.count", r"within 1 to 10"),
+    ([("growth = 2.0", "growth = nan")], "stages.growth", r"number in \(0, 16\], got nan"),
+    ([("growth = 2.0", "growth = inf")], "stages.growth", r"got inf"),
+    ([("channels = 1", "channels = 2")], "input.channels", "got 2"),  # the census accepted 2 and 5 channels
+    ([("channels = 1", "channels = 5")], "input.channels", "got 5"),
+    ([('max_params = "300"', 'weight_precision = ["int8"]')], "budget.weight_precision", r"got \['int8'\]"),
+    ([('max_params = "300"', 'activation_precision = { kind = "int8" }')], "budget.activation_precision", "got"),
+    ([('max_params = "300"', 'max_params = 0.4')], "budget.max_params", "rounds to 0"),
+    ([("window = 2", "window = 2\nstride = 99999999999999999999999")], "pool.stride", "from 1 to 1,024"),
+    ([("kernel = 3", "kernel = [" + ", ".join(["3"] * 65) + "]")], "conv.kernel", "at most 64"),
+    ([('name = "tiny"', "name = 5")], "name", "text in quotes, got 5"),
+    ([('name = "tiny"', 'name = "' + "x" * 100_000 + '"')], "name", "at most 80 characters"),
+    ([('name = "tiny"', 'name = "tiny\\u0007"')], "name", "printable"),
+    ([("growth = 2.0", "growth = 16.0"), ("max_width = 8", ""), ("count = [1, 3]", "count = [1, 4]"),
+      ('kind = ["max", "none"]', 'kind = "none"')], "stages.growth", "stop at 4,096: set `stages.max_width`"),
+], ids=lambda v: v if isinstance(v, str) and len(v) < 40 else None)
+def test_values_beyond_the_ceilings_are_refused_by_key(write_space, changes, key, says):
+    path = write_space(variant(*changes))
+    with pytest.raises(SearcherError, match=says) as info:
+        load_space(path)
+    assert info.value.key == key and f"`{key}`" in str(info.value)
+    assert len(str(info.value)) < 400  # values are cut to a readable length
+
+
+@pytest.mark.parametrize("section", ["budget = 5", "budget = [1, 2]", "[[budget]]\nmax_params = 1", "train = 3"])
+def test_budget_and_train_must_be_tables(tmp_path, section):
+    path = tmp_path / "space.toml"
+    path.write_text(f"{section}\n")
+    with pytest.raises(SearcherError, match="must be a table") as info:
+        load_space(path)
+    assert info.value.key in ("budget", "train")
+
+
+def test_a_byte_order_mark_is_read_past(write_space):
+    """Editors on Windows write one; it was reported as 'Invalid statement'."""
+    path = write_space()
+    path.write_bytes(b"\xef\xbb\xbf" + path.read_bytes())
+    assert load_space(path).name == "tiny"
+
+
+@pytest.mark.parametrize(("changes", "key", "says"), [
+    # a stride that takes the map to 1x1 before the 2x2 pool: the first stage cannot be saved by fewer stages
+    ([("kernel = 3", "kernel = 3\nstride = 16")], "conv.stride", r"to 1x1, smaller than the 2x2 pooling window"),
+    ([("window = 2", "window = 13")], "pool.window", r"`pool.window` of at most 12"),
+    ([('padding = "same"', 'padding = "valid"'), ("kernel = 3", "kernel = 13")], "conv.kernel",
+     "smallest input 12x12 below 1x1"),
+])
+def test_a_first_stage_that_cannot_fit_names_what_to_change(write_space, changes, key, says):
+    with pytest.raises(SearcherError, match=says) as info:
+        load_space(write_space(variant(*changes)))
+    assert info.value.key == key
+    assert "at most 0" not in str(info.value)  # issue 8: "lower stages.count to at most 0"

@@ -199,11 +199,12 @@ def test_evaluate_matches_a_plain_forward_pass(toy):
 @pytest.mark.parametrize(
     ("values", "message"),
     [
-        ({"epochs": 0}, "`train.epochs` must be an int ≥ 1, got 0"),
-        ({"epochs": 2.5}, "`train.epochs` must be an int ≥ 1, got 2.5"),
+        ({"epochs": 0}, "`train.epochs` must be a whole number from 1 to 1,000, got 0"),
+        ({"epochs": 2.5}, "`train.epochs` must be a whole number from 1 to 1,000, got 2.5"),
+        ({"epochs": 10**12}, "`train.epochs` must be a whole number from 1 to 1,000, got 1000000000000"),
         ({"train_fraction": 0}, "`train.train_fraction` must be a number in (0, 1], got 0"),
         ({"train_fraction": 1.5}, "`train.train_fraction` must be a number in (0, 1], got 1.5"),
-        ({"batch_size": 1}, "`train.batch_size` must be an int ≥ 2"),
+        ({"batch_size": 1}, "`train.batch_size` must be a whole number from 2"),
         ({"optimizer": "adam"}, "`train.optimizer` must be one of 'adamw', 'sgd' (did you mean 'adamw'?), got 'adam'"),
         ({"learning_rate": -1}, "`train.learning_rate` must be a number > 0, got -1"),
         ({"learning_rate": float("nan")}, "`train.learning_rate` must be a number > 0, got nan"),
@@ -211,7 +212,7 @@ def test_evaluate_matches_a_plain_forward_pass(toy):
         ({"weight_decay": -0.1}, "`train.weight_decay` must be a number ≥ 0"),
         ({"label_smoothing": 1}, "`train.label_smoothing` must be a number in [0, 1), got 1"),
         ({"channels_last": "yes"}, "`train.channels_last` must be true or false, got 'yes'"),
-        ({"eval_batch_size": True}, "`train.eval_batch_size` must be an int ≥ 1, got True"),
+        ({"eval_batch_size": True}, "`train.eval_batch_size` must be a whole number from 1 to 65,536, got True"),
     ],
 )
 def test_bad_settings_say_the_value_and_the_rule(values, message):
@@ -233,6 +234,14 @@ def test_from_dict_reads_a_table_and_names_the_file():
     assert "got -3" in str(caught.value) and "space.toml" in str(caught.value)
     with pytest.raises(SearcherError, match="must be a table"):
         TrainSettings.from_dict([("epochs", 2)])  # type: ignore[arg-type]
+
+
+def test_options_are_named_as_typed_not_as_file_keys():
+    """issue 8: `--epochs 0` was reported as `train.epochs` of the space file."""
+    with pytest.raises(SearcherError) as caught:
+        TrainSettings.from_dict({"batch_size": 1}, prefix="--")
+    assert str(caught.value).startswith("`--batch-size` must be") and caught.value.key == "--batch-size"
+    assert caught.value.file is None
 
 
 @pytest.mark.slow

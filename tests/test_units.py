@@ -2,6 +2,8 @@
 
 from __future__ import annotations
 
+import re
+
 import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
@@ -79,3 +81,30 @@ def test_format_picks_the_natural_unit():
     assert format_bytes(65_536) == "64 KiB"
     assert format_bytes(3 * 2**20) == "3 MiB"
     assert format_bytes(100) == "100 B"
+
+
+@pytest.mark.parametrize(("bad", "says"), [
+    ("0.4", "'0.4' rounds to 0"),  # issue 8: was called "not positive"
+    (0.4, "0.4 rounds to 0"),
+    ("0.0001k", "rounds to 0"),
+    ("0", "is not positive"),
+    (-3, "is not positive"),
+    (2**64 + 1, "beyond the largest cap"),  # beyond 64 bits: refused, never an OverflowError downstream
+    ("9" * 400, "must be a count such as"),  # float() of 400 digits is inf; round(inf) raised OverflowError
+    ("9" * 39, "beyond the largest cap"),
+    (float("inf"), "not infinite"),
+    (float("nan"), "not infinite"),
+    ("1000001G", "beyond the largest cap there is, 10^15"),
+    (["20k"], "must be a count such as"),
+    ({"max": 1}, "must be a count such as"),
+], ids=lambda v: repr(v)[:30])
+def test_counts_out_of_reach_are_refused_with_the_reason(bad, says):
+    with pytest.raises(SearcherError, match=re.escape(says)) as info:
+        parse_count(bad, key="--max-params")
+    assert str(info.value).startswith("`--max-params`")
+
+
+def test_a_long_value_is_cut_in_the_message():
+    with pytest.raises(SearcherError) as info:
+        parse_bytes("x" * 100_000, key="--max-weight")
+    assert len(str(info.value)) < 200 and "(100,000 characters)" in str(info.value)

@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import argparse
+import functools
 import logging
 import sys
 from pathlib import Path
@@ -12,11 +13,12 @@ import pandas as pd
 from searcher.cli.run_commands import add_search_commands
 from searcher.core.arch import parse_arch
 from searcher.core.budget import BUDGET_KEYS, Budget, show_cost
-from searcher.core.census_report import CensusSettings, run_census, summary_lines, write_census
+from searcher.core.census_report import CensusSettings, run_census, summary_lines, writable, write_census
 from searcher.core.cost import cost
-from searcher.core.space_file import builtin_space, load_space
-from searcher.errors import SearcherError
-from searcher.runs import run_folder
+from searcher.core.space_file import builtin_space, load_space, shipped_spaces
+from searcher.errors import SearcherError, one_of, readable, shown
+from searcher.redact import redact
+from searcher.runs import plain_name, run_folder
 
 log = logging.getLogger("searcher")
 
@@ -24,7 +26,19 @@ log = logging.getLogger("searcher")
 def _space_path(text: str) -> Path:
     """A space is a file path or the name of a shipped space (mcu, workstation, classic)."""
     path = Path(text)
-    return path if path.suffix == ".toml" or path.exists() else builtin_space(text)
+    try:
+        found, folder = path.exists(), path.is_dir()
+    except (OSError, ValueError):  # a name too long for the file system, a NUL byte
+        found = folder = False
+    if folder:
+        raise SearcherError(f"`--space` {shown(text)} is a folder; give a .toml file or a shipped space "
+                            f"({', '.join(shipped_spaces())})", key="--space")
+    if found:
+        return path
+    if text in shipped_spaces():
+        return builtin_space(text)
+    hint = "" if path.suffix == ".toml" else f", nor a shipped space: use {one_of(text, shipped_spaces())}"
+    raise SearcherError(f"`--space` {shown(text)} is not a file{hint}", key="--space")
 
 
 def _add_budget(parser: argparse.ArgumentParser) -> None:
@@ -42,10 +56,27 @@ def _budget(args: argparse.Namespace) -> dict:
     return {key: getattr(args, key) for key in BUDGET_KEYS if getattr(args, key, None) is not None}
 
 
+def _arch_text(given: str) -> str:
+    """The architecture ``cost`` was given: its text or JSON, or the content of a .json file."""
+    if not given.endswith(".json"):
+        return given
+    path = Path(given)
+    try:
+        text = path.read_text(encoding="utf-8-sig")
+    except UnicodeDecodeError:
+        raise SearcherError(f"architecture file {shown(given)} is not JSON text (not UTF-8)") from None
+    except IsADirectoryError:
+        raise SearcherError(f"architecture file {shown(given)} is a folder; give a .json file") from None
+    except OSError as exc:
+        raise SearcherError(f"architecture file {shown(given)} cannot be read: {exc.strerror or exc}") from None
+    if not text.lstrip().startswith("{"):
+        raise SearcherError(f"architecture file {shown(given)} holds no JSON object; write one with Arch.to_json()")
+    return text
+
+
 def cmd_cost(args: argparse.Namespace) -> int:
-    text = Path(args.arch).read_text() if args.arch.endswith(".json") else args.arch
-    arch = parse_arch(text)
-    base = load_space(_space_path(args.space)).budget if args.space else Budget()
+    arch = parse_arch(_arch_text(args.arch))
+    base = load_space(_space_path(args.space)).budget if args.space is not None else Budget()
     budget = base.updated(_budget(args), prefix="--")
     result = cost(arch, budget.activation_precision)
     table = pd.DataFrame(result.table())
@@ -64,17 +95,27 @@ def cmd_cost(args: argparse.Namespace) -> int:
 
 def cmd_census(args: argparse.Namespace) -> int:
     space = load_space(_space_path(args.space))
-    folder = run_folder(args.name or f"census-{space.name}")
+    budget = space.budget.updated(_budget(args), prefix="--")
     settings = CensusSettings(samples=args.samples, seed=args.seed, classes=args.classes)
-    census = run_census(space, space.budget.updated(_budget(args), prefix="--"), settings)
+    folder = writable(run_folder(args.name if args.name is not None else f"census-{plain_name(space.name)}"))
+    census = run_census(space, budget, settings)
     print("\n".join(summary_lines(census)))
     written = write_census(census, folder)
     print("wrote " + ", ".join(str(p) for p in written))
     return 0
 
 
+class _Parser(argparse.ArgumentParser):
+    """argparse, with the value in its error messages cut to a readable length."""
+
+    def error(self, message: str):  # type: ignore[override]
+        super().error(readable(message))
+
+
+@functools.cache
 def make_parser() -> argparse.ArgumentParser:
-    parser = argparse.ArgumentParser(
+    """The parser of every command, built once: parsing leaves it unchanged."""
+    parser = _Parser(
         prog="searcher",
         description="Find a small image classifier that fits a fixed hardware budget: census, search, report, export.",
         epilog="Start with: searcher census --space mcu   (see README.md for the walkthrough)")
@@ -108,7 +149,7 @@ def main(argv: list[str] | None = None) -> int:
     try:
         return args.run(args)
     except SearcherError as exc:
-        print(f"searcher: error: {exc}", file=sys.stderr)
+        print(f"searcher: error: {readable(redact(exc))}", file=sys.stderr)
         return 2
     except KeyboardInterrupt:
         print("searcher: interrupted", file=sys.stderr)

@@ -5,17 +5,19 @@ from __future__ import annotations
 import argparse
 
 import searcher
+from searcher.core.train_settings import TrainSettings
 from searcher.core.units import parse_bytes
 
 
 def cmd_search(args: argparse.Namespace, space_path, budget_of) -> int:
     train = {k: v for k, v in (("epochs", args.epochs), ("train_fraction", args.train_fraction),
                                ("batch_size", args.batch_size)) if v is not None}
+    TrainSettings.from_dict(train, prefix="--")  # named as typed (--epochs), not as the space file's train.epochs
     settings = searcher.SearchSettings(
         name=args.name, space=str(space_path(args.space)), data=args.data, trials=args.trials, minutes=args.minutes,
         objective=args.objective, sampler=args.sampler, storage=args.storage, workers=args.workers, seed=args.seed,
         candidate_minutes=args.candidate_minutes,
-        memory_cap=parse_bytes(args.max_train_memory, key="--max-train-memory") if args.max_train_memory else None,
+        memory_cap=None if args.max_train_memory is None else parse_bytes(args.max_train_memory, key="--max-train-memory"),
         skip_unreadable=args.skip_unreadable, force=args.force,
         confirm=searcher.ConfirmSettings(seeds=args.confirm, most=args.confirm_candidates, extra=args.confirm_random),
     )

@@ -19,7 +19,8 @@ import re
 from decimal import Decimal
 from dataclasses import asdict, dataclass
 
-from searcher.errors import SearcherError, one_of
+from searcher.errors import SearcherError, is_int, one_of, shown
+from searcher.limits import MAX_CLASSES, MAX_CONVS, MAX_KERNEL, MAX_SIDE, MAX_STAGES, MAX_WIDTH
 
 ACTIVATIONS = ("relu", "relu6", "tanh", "sigmoid", "hardswish")
 POOLS = ("max", "avg")
@@ -68,26 +69,43 @@ class Arch:
 
     def __post_init__(self) -> None:
         if self.activation not in ACTIVATIONS:
-            raise SearcherError(f"activation {self.activation!r} is not known; use {one_of(self.activation, ACTIVATIONS)}")
+            raise SearcherError(f"activation {shown(self.activation)} is not known; use {one_of(self.activation, ACTIVATIONS)}")
         if self.head.features not in FEATURES:
-            raise SearcherError(f"head features {self.head.features!r} is not known; use {one_of(self.head.features, FEATURES)}")
+            raise SearcherError(f"head features {shown(self.head.features)} is not known; use {one_of(self.head.features, FEATURES)}")
+        if len(self.stages) > MAX_STAGES:
+            raise SearcherError(f"an architecture has at most {MAX_STAGES} stages, got {len(self.stages)}")
         for stage in self.stages:
-            if not stage.convs:
-                raise SearcherError(f"every stage needs at least one conv, got {stage}")
+            if not 1 <= len(stage.convs) <= MAX_CONVS:
+                raise SearcherError(f"every stage needs at least one conv and at most {MAX_CONVS}, got {len(stage.convs)}")
             for conv in stage.convs:
                 if conv.padding not in PADDINGS:
-                    raise SearcherError(f"padding {conv.padding!r} is not known; use {one_of(conv.padding, PADDINGS)}")
-                if conv.padding == "same" and conv.kernel % 2 == 0:
+                    raise SearcherError(f"padding {shown(conv.padding)} is not known; use {one_of(conv.padding, PADDINGS)}")
+                if conv.padding == "same" and is_int(conv.kernel) and conv.kernel % 2 == 0:
                     raise SearcherError(f"'same' padding needs an odd kernel, got {conv.kernel}")
             if stage.pool and stage.pool.kind not in POOLS:
-                raise SearcherError(f"pool {stage.pool.kind!r} is not known; use {one_of(stage.pool.kind, POOLS)}")
-        sizes = [*self.input_shape, self.head.classes, *self.head.hidden]
-        sizes += [v for s in self.stages for c in s.convs for v in (c.out_channels, c.kernel, c.stride)]
-        sizes += [v for s in self.stages if s.pool for v in (s.pool.window, s.pool.stride)]
-        if any(not isinstance(v, int) or v < 1 for v in sizes):
-            raise SearcherError(f"every size, width, kernel and stride must be a positive integer, got {sizes}")
-        if not 0.0 <= self.head.dropout < 1.0:
-            raise SearcherError(f"dropout must be in [0, 1), got {self.head.dropout}")
+                raise SearcherError(f"pool {shown(stage.pool.kind)} is not known; use {one_of(stage.pool.kind, POOLS)}")
+        for what, values, high in self._sizes():
+            for v in values:
+                if not is_int(v) or not 1 <= v <= high:
+                    raise SearcherError(f"every {what} must be a whole number from 1 to {high:,}, got {shown(v)}")
+        dropout = self.head.dropout
+        if isinstance(dropout, bool) or not isinstance(dropout, (int, float)) or not 0.0 <= dropout < 1.0:
+            raise SearcherError(f"dropout must be a number in [0, 1), got {shown(dropout)}")
+
+    def _sizes(self) -> list[tuple[str, list, int]]:
+        """Every whole-number field with its ceiling (searcher.limits), to check them in one loop."""
+        convs = [c for s in self.stages for c in s.convs]
+        pools = [s.pool for s in self.stages if s.pool]
+        return [
+            ("input channel count", [self.input_shape[0]] if len(self.input_shape) == 3 else [0], MAX_WIDTH),
+            ("input side", list(self.input_shape[1:]) if len(self.input_shape) == 3 else [0], MAX_SIDE),
+            ("conv width", [c.out_channels for c in convs], MAX_WIDTH),
+            ("kernel", [c.kernel for c in convs], MAX_KERNEL),
+            ("stride or pool window", [c.stride for c in convs] + [v for p in pools for v in (p.window, p.stride)],
+             MAX_SIDE),
+            ("hidden width", list(self.head.hidden), MAX_WIDTH),
+            ("class count", [self.head.classes], MAX_CLASSES),
+        ]
 
     # -- summaries used by tables and the search ------------------------------------------
     @property
@@ -154,15 +172,19 @@ class Arch:
                 activation=data.get("activation", "relu"),
                 batch_norm=bool(data.get("batch_norm", False)),
             )
-        except (KeyError, TypeError) as exc:
-            raise SearcherError(f"architecture JSON is missing or has a wrong field: {exc}") from None
+        except (KeyError, TypeError, ValueError, AttributeError) as exc:
+            if isinstance(exc, SearcherError):
+                raise SearcherError(f"architecture JSON: {exc.message}") from None
+            why = f"has no field {shown(exc.args[0])}" if isinstance(exc, KeyError) else f"has a field of the wrong kind ({exc})"
+            raise SearcherError(f"architecture JSON {why}") from None
 
     @classmethod
     def from_json(cls, text: str) -> Arch:
         try:
-            return cls.from_dict(json.loads(text))
-        except json.JSONDecodeError as exc:
+            data = json.loads(text)
+        except (ValueError, RecursionError) as exc:  # JSONDecodeError, or a number too long for int()
             raise SearcherError(f"architecture JSON does not parse: {exc}") from None
+        return cls.from_dict(data)
 
 
 def _plain_float(value: float) -> str:
@@ -178,9 +200,9 @@ def _conv_text(conv: Conv) -> str:
     )
 
 
-_CONV = re.compile(r"^c(\d+)k(\d+)(?:s(\d+))?(v?)$")
-_POOL = re.compile(r"^([ma])(\d+)(?:s(\d+))?$")
-_INPUT = re.compile(r"^(\d+)x(\d+)x(\d+)$")
+_CONV = re.compile(r"^c(\d+)k(\d+)(?:s(\d+))?(v?)$", re.ASCII)
+_POOL = re.compile(r"^([ma])(\d+)(?:s(\d+))?$", re.ASCII)
+_INPUT = re.compile(r"^(\d+)x(\d+)x(\d+)$", re.ASCII)
 EXAMPLE = "1x32x32_c6k5v-a2_c16k5v-a2_flat-d120-d84-o10_tanh"
 
 
@@ -194,9 +216,12 @@ def parse_arch(text: str) -> Arch:
     if text.startswith("{"):
         return Arch.from_json(text)
 
-    def fail(why: str) -> SearcherError:
-        return SearcherError(f"architecture text {text!r}: {why}; expected a form like {EXAMPLE!r}")
+    def fail(why: str, form: bool = True) -> SearcherError:
+        example = f"; expected a form like {EXAMPLE!r}" if form else ""
+        return SearcherError(f"architecture text {shown(text)}: {why}{example}")
 
+    if len(max(re.findall(r"(?<![.\d])\d+", text), key=len, default="")) > 100:
+        raise fail("it holds a number of more than 100 digits")
     parts = text.split("_")
     batch_norm = parts[-1] == "bn"
     if batch_norm:
@@ -205,18 +230,18 @@ def parse_arch(text: str) -> Arch:
         raise fail("too few fields")
     found = _INPUT.match(parts[0])
     if not found:
-        raise fail(f"input {parts[0]!r} must be CxHxW")
+        raise fail(f"input {shown(parts[0])} must be CxHxW")
     input_shape = tuple(int(v) for v in found.groups())
     activation = parts[-1]
     if activation not in ACTIVATIONS:
-        raise fail(f"activation {activation!r} must be {one_of(activation, ACTIVATIONS)}")
+        raise fail(f"activation {shown(activation)} must be {one_of(activation, ACTIVATIONS)}")
 
     stages = []
     for field in parts[1:-2]:
         convs, pool = [], None
         for token in field.split("-"):
             if pool is not None:
-                raise fail(f"nothing may follow the pool in stage {field!r}")
+                raise fail(f"nothing may follow the pool in stage {shown(field)}")
             if m := _CONV.match(token):
                 out, k, s, v = m.groups()
                 convs.append(Conv(int(out), int(k), int(s or 1), "valid" if v else "same"))
@@ -224,18 +249,20 @@ def parse_arch(text: str) -> Arch:
                 kind, window, stride = m.groups()
                 pool = Pool("max" if kind == "m" else "avg", int(window), int(stride or window))
             else:
-                raise fail(f"stage token {token!r} is neither a conv (c16k3) nor a pool (m2, a2)")
+                raise fail(f"stage token {shown(token)} is neither a conv (c16k3) nor a pool (m2, a2)")
         if not convs:
-            raise fail(f"stage {field!r} has no conv")
+            raise fail(f"stage {shown(field)} has no conv")
         stages.append(Stage(tuple(convs), pool))
 
     tokens = parts[-2].split("-")
     if tokens[0] not in ("flat", "gap"):
-        raise fail(f"head must start with 'flat' or 'gap', got {tokens[0]!r}")
+        raise fail(f"head must start with 'flat' or 'gap', got {shown(tokens[0])}")
     features = "flatten" if tokens[0] == "flat" else "gap"
     hidden, dropout, classes = [], 0.0, None
     for token in tokens[1:]:
         try:
+            if not token.isascii():
+                raise ValueError
             if token.startswith("d"):
                 hidden.append(int(token[1:]))
             elif token.startswith("r"):
@@ -245,7 +272,10 @@ def parse_arch(text: str) -> Arch:
             else:
                 raise ValueError
         except ValueError:
-            raise fail(f"head token {token!r} must be d<width>, r<dropout> or o<classes>") from None
+            raise fail(f"head token {shown(token)} must be d<width>, r<dropout> or o<classes>") from None
     if classes is None:
         raise fail("head needs the output layer o<classes>")
-    return Arch(input_shape, tuple(stages), Head(features, tuple(hidden), dropout, classes), activation, batch_norm)
+    try:
+        return Arch(input_shape, tuple(stages), Head(features, tuple(hidden), dropout, classes), activation, batch_norm)
+    except SearcherError as exc:
+        raise fail(exc.message, form=False) from None

@@ -5,7 +5,7 @@ from __future__ import annotations
 from dataclasses import dataclass, replace
 
 from searcher.core.cost import PRECISION_BYTES, Cost, check_precision
-from searcher.errors import SearcherError, one_of
+from searcher.errors import SearcherError, one_of, shown, spelled
 from searcher.core.units import format_bytes, format_count, parse_bytes, parse_count
 
 # budget key in a space file / CLI option -> (field of Budget, column of the cost totals)
@@ -55,14 +55,21 @@ class Budget:
     def updated(self, table: dict, file: str | None = None, prefix: str = "budget.") -> Budget:
         """This budget with every key that ``table`` gives replaced (None values are not given).
 
+        ``prefix`` says where the keys come from, for messages: "budget." for a file's table,
+        "--" for command-line options (named with dashes, as typed: ``--max-params``).
+
         >>> Budget(max_params=20_000).updated({"max_macs": "2M"}).caps()
         {'params': 20000, 'macs': 2000000}
         """
+        if not isinstance(table, dict):
+            section = prefix.rstrip(".")
+            raise SearcherError(f"`{section}` must be a table of caps [{section}], got {shown(table)}", file=file,
+                                key=section)
         values: dict = {}
         for key, raw in table.items():
             if raw is None:
                 continue
-            where = prefix + key
+            where = spelled(prefix, key)
             try:
                 if key in CAP_KEYS:
                     parse = parse_bytes if key in ("max_activation", "max_weight") else parse_count

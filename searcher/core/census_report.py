@@ -13,15 +13,26 @@ from searcher.core.budget import CAP_COLUMNS, Budget, show_cost
 from searcher.core.census import batch_costs, decode, enumerate_all, multiplicity, sample
 from searcher.core.space import Space
 from searcher.core.stats import wilson_interval
+from searcher.errors import SearcherError, check_int, shown
+from searcher.limits import MAX_CLASSES, MAX_SAMPLES, MAX_SEED
 from searcher.runs import write_atomic
 
 
 @dataclass(frozen=True)
 class CensusSettings:
+    """How a census counts; fields are named like the `census` options, and checked on creation."""
+
     samples: int = 200_000  # candidates drawn when the space is too large to enumerate
     seed: int = 0  # seed of the draw
-    exact_limit: int = 2_000_000  # enumerate when the space has at most this many cost classes
+    exact_limit: int = 2_000_000  # enumerate when the space has at most this many cost classes (of ≤ 10 convs)
     classes: int | None = None  # output classes; the space's `input.classes` when None
+
+    def __post_init__(self) -> None:
+        check_int(self.samples, "--samples", 1, MAX_SAMPLES, why="the census holds every draw in memory")
+        check_int(self.seed, "--seed", 0, MAX_SEED)
+        check_int(self.exact_limit, "exact_limit", 0, 2 * MAX_SAMPLES)  # 0: always sample
+        if self.classes is not None:
+            check_int(self.classes, "--classes", 2, MAX_CLASSES)
 
 
 @dataclass
@@ -80,7 +91,7 @@ def run_census(space: Space, budget: Budget | None = None, settings: CensusSetti
     """
     budget = budget or space.budget
     classes = settings.classes
-    exact = space.size() // multiplicity(space) <= settings.exact_limit
+    exact = _work(space, space.size() // multiplicity(space)) <= _work(space, settings.exact_limit, convs=10)
     batch = enumerate_all(space) if exact else sample(space, settings.samples, settings.seed)
     costs = batch_costs(space, batch, budget, classes)
     fits = np.ones(len(batch["stages"]), dtype=bool)
@@ -93,6 +104,12 @@ def run_census(space: Space, budget: Budget | None = None, settings: CensusSetti
         largest = decode(space, batch, int(index[np.argmax(costs["params"][index])]), classes)
     lowest = {column: int(costs[column].min()) for column in CAP_COLUMNS}
     return Census(space, budget, space.size(), exact, len(fits), fits, costs, cheapest, largest, lowest)
+
+
+def _work(space: Space, rows: int, convs: int | None = None) -> int:
+    """Rows times conv layers: what the census's time and memory grow with (a deep space enumerates fewer rows)."""
+    layers = convs or sum(space.stage_convs(i)[1] for i in range(space.stage_count[1]))
+    return rows * max(layers, 10)
 
 
 def summary_lines(census: Census) -> list[str]:
@@ -122,7 +139,7 @@ def summary_lines(census: Census) -> list[str]:
 
 def write_census(census: Census, folder: Path) -> list[Path]:
     """census_summary.csv, census_spread.csv, census_depth_width.csv and census.html in ``folder``."""
-    folder.mkdir(parents=True, exist_ok=True)
+    writable(folder)
     low, high = census.interval
     summary = pd.DataFrame([{
         "space": census.space.name, "configurations": census.size, "exact": census.exact,
@@ -137,9 +154,26 @@ def write_census(census: Census, folder: Path) -> list[Path]:
         "census_depth_width.csv": census.depth_width().to_csv(),
         "census.html": census_html(census),
     }
-    for name, text in paths.items():
-        write_atomic(folder / name, text)
+    try:
+        for name, text in paths.items():
+            write_atomic(folder / name, text)
+    except OSError as exc:
+        raise _unwritable(folder, exc) from None
     return [folder / name for name in paths]
+
+
+def writable(folder: Path) -> Path:
+    """Make ``folder`` (and its parents) or say plainly why it cannot be made; checked before the work."""
+    try:
+        folder.mkdir(parents=True, exist_ok=True)
+    except OSError as exc:
+        raise _unwritable(folder, exc) from None
+    return folder
+
+
+def _unwritable(folder: Path, exc: OSError) -> SearcherError:
+    return SearcherError(f"cannot write the census to {shown(str(folder))}: {exc.strerror or exc}; run it from a "
+                         f"folder where runs/ can be written", key="--name")
 
 
 def census_html(census: Census) -> str:

@@ -26,7 +26,7 @@ import math
 from dataclasses import dataclass
 
 from searcher.core.arch import Arch
-from searcher.errors import SearcherError, one_of
+from searcher.errors import SearcherError, one_of, shown
 
 PRECISION_BYTES = {"fp32": 4, "fp16": 2, "int8": 1}
 INT8_CHANNEL_BYTES = 8  # per conv or dense output channel at int8: int32 bias + int32 requantization multiplier
@@ -143,9 +143,11 @@ class Cost:
         ]
 
 
-def check_precision(precision: str, key: str = "precision") -> str:
-    if precision not in PRECISION_BYTES:
-        raise SearcherError(f"`{key}` must be {one_of(precision, tuple(PRECISION_BYTES))}, got {precision!r}", key=key)
+def check_precision(precision: object, key: str = "precision") -> str:
+    """``precision`` when it names a known one (fp32, fp16, int8); else an error naming ``key``."""
+    if not isinstance(precision, str) or precision not in PRECISION_BYTES:
+        raise SearcherError(f"`{key}` must be {one_of(precision, tuple(PRECISION_BYTES))}, got {shown(precision)}",
+                            key=key)
     return precision
 
 

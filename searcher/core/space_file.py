@@ -2,16 +2,22 @@
 
 from __future__ import annotations
 
+import math
 import tomllib
 from pathlib import Path
-from typing import Any
+from typing import Any, Callable
 
 from searcher.core.arch import ACTIVATIONS, FEATURES, PADDINGS
 from searcher.core.budget import Budget
 from searcher.core.cost import conv_output_size
-from searcher.errors import SearcherError, one_of
 from searcher.core.space import POOL_CHOICES, SECTIONS, Space
 from searcher.core.train_settings import TrainSettings
+from searcher.errors import SearcherError, check_int, check_number, is_int, one_of, shown
+from searcher.limits import (CHANNELS, MAX_CHOICES, MAX_CLASSES, MAX_CONVS, MAX_DESCRIPTION, MAX_HIDDEN, MAX_KERNEL,
+                             MAX_NAME, MAX_SIDE, MAX_STAGES, MAX_WIDTH)
+
+MAX_GROWTH = 16.0  # width factor from stage to stage
+_SHIPPED = Path(__file__).parent.parent / "spaces"  # links to the repository's spaces/ (a wheel holds copies)
 
 
 class _Reader:
@@ -27,151 +33,184 @@ class _Reader:
         section, _, name = key.partition(".")
         return self.data.get(section, {}).get(name, default) if name else self.data.get(section, default)
 
-    def positive_int(self, key: str, default: int | None) -> int | None:
+    def whole(self, key: str, default: int | None, low: int, high: int) -> int | None:
+        """A single whole number in [low, high] (None stays None: the key is optional)."""
         value = self.get(key, default)
-        if value is None:
-            return None
-        if not isinstance(value, int) or isinstance(value, bool) or value < 1:
-            raise self.fail(key, f"must be a positive integer, got {value!r}")
-        return value
+        return None if value is None else check_int(value, key, low, high, file=self.file)
 
-    def int_choices(self, key: str, default: tuple, minimum: int = 1) -> tuple[int, ...]:
+    def choices(self, key: str, default: Any, test: Callable[[Any], bool], rule: str) -> tuple:
+        """One value or a list of choices, each passing ``test``; duplicates dropped, order kept."""
         value = self.get(key, default)
         values = list(value) if isinstance(value, (list, tuple)) else [value]
         if not values:
-            raise self.fail(key, "must list at least one choice, got []")
+            raise self.fail(key, f"must list at least one choice ({rule}), got []")
+        if len(values) > MAX_CHOICES:
+            raise self.fail(key, f"lists {len(values):,} choices; at most {MAX_CHOICES} are allowed")
         for v in values:
-            if not isinstance(v, int) or isinstance(v, bool) or v < minimum:
-                raise self.fail(key, f"must hold integers ≥ {minimum}, got {v!r} in {value!r}")
+            if not test(v):
+                raise self.fail(key, f"must be {rule} or a list of such choices, got {shown(v)}"
+                                     + (f" in {shown(value)}" if value is not v else ""))
         return tuple(dict.fromkeys(values))
 
-    def range_(self, key: str, value: Any, minimum: int) -> tuple[int, int]:
-        if isinstance(value, int) and not isinstance(value, bool):
+    def int_choices(self, key: str, default: tuple, low: int, high: int) -> tuple[int, ...]:
+        return self.choices(key, default, lambda v: is_int(v) and low <= v <= high,
+                            f"a whole number from {low:,} to {high:,}")
+
+    def word_choices(self, key: str, default: Any, valid: tuple) -> tuple:
+        value = self.get(key, default)
+        for v in value if isinstance(value, list) else [value]:
+            if not isinstance(v, str) or v not in valid:
+                raise self.fail(key, f"has {shown(v)}; each choice must be {one_of(v, tuple(map(str, valid)))}")
+        return self.choices(key, default, lambda v: v in valid, one_of("", valid))
+
+    def range_(self, key: str, value: Any, low: int, high: int) -> tuple[int, int]:
+        if is_int(value):
             value = [value, value]
-        if not (isinstance(value, list) and len(value) == 2 and all(isinstance(v, int) and not isinstance(v, bool) for v in value)):
-            raise self.fail(key, f"must be an integer or a range [min, max], got {value!r}")
+        if not (isinstance(value, list) and len(value) == 2 and all(map(is_int, value))):
+            raise self.fail(key, f"must be a whole number or a range [min, max], got {shown(value)}")
         lo, hi = value
         if lo > hi:
-            raise self.fail(key, f"must be a range [min, max] with min ≤ max, got {value!r}")
-        if lo < minimum:
-            raise self.fail(key, f"must not go below {minimum}, got {value!r}")
+            raise self.fail(key, f"must be a range [min, max] with min ≤ max, got {shown(value)}")
+        if lo < low or hi > high:
+            raise self.fail(key, f"must stay within {low} to {high}, got {shown(value)}")
         return lo, hi
 
-    def word_choices(self, key: str, default: tuple, valid: tuple) -> tuple:
+    def text(self, key: str, default: str, longest: int, printable: bool) -> str:
         value = self.get(key, default)
-        values = list(value) if isinstance(value, list) else [value]
-        if not values:
-            raise self.fail(key, f"must list at least one choice of {', '.join(map(repr, valid))}, got []")
-        for v in values:
-            if v not in valid:
-                raise self.fail(key, f"has {v!r}; each choice must be {one_of(str(v), tuple(map(str, valid)))}")
-        return tuple(dict.fromkeys(values))
+        if not isinstance(value, str) or (key == "name" and not value):
+            raise self.fail(key, f"must be a text in quotes, got {shown(value)}")
+        if len(value) > longest:
+            raise self.fail(key, f"must be at most {longest:,} characters long, got {len(value):,}")
+        if printable and not value.isprintable():
+            raise self.fail(key, f"must be printable text on one line, got {shown(value)}")
+        return value
 
 
 def read_space(path: Path) -> Space:
-    if not path.exists():
-        raise SearcherError(f"space file not found: {path}", file=None)
     try:
-        text = path.read_text(encoding="utf-8")
-    except (OSError, UnicodeDecodeError) as exc:
-        raise SearcherError(f"space file cannot be read as UTF-8 text: {exc}", file=str(path)) from None
-    return read_space_text(text, str(path), default_name=path.stem)
+        if not path.exists():
+            raise SearcherError(f"space file not found: {shown(str(path))}", file=None)
+        if path.is_dir():
+            raise SearcherError(f"space file {shown(str(path))} is a folder; give a .toml file", file=None)
+        text = path.read_text(encoding="utf-8-sig")  # a byte-order mark some editors write is not part of the TOML
+    except UnicodeDecodeError as exc:
+        raise SearcherError(f"space file cannot be read as UTF-8 text ({exc.reason} at byte {exc.start})",
+                            file=str(path)) from None
+    except OSError as exc:
+        raise SearcherError(f"space file {shown(str(path))} cannot be read: {exc.strerror}", file=None) from None
+    return read_space_text(text, str(path), default_name=path.stem[:MAX_NAME])
 
 
 def read_space_text(text: str, file: str, default_name: str = "space") -> Space:
     """Parse and check a space from its TOML text; ``file`` names it in messages."""
     try:
-        data = tomllib.loads(text)
+        data = tomllib.loads(text.removeprefix("\ufeff"))
     except tomllib.TOMLDecodeError as exc:
         raise SearcherError(f"space file is not valid TOML: {exc}", file=file) from None
     r = _Reader(data, file)
     _check_keys(r)
 
+    sizes_key = "input.sizes" if r.get("input.sizes") is not None else "input.size"
     sizes = r.get("input.sizes")
     if sizes is None:
         sizes = [r.get("input.size", [32, 32])]
-    if not isinstance(sizes, list) or not sizes:
-        raise r.fail("input.sizes", f"must list [height, width] pairs, got {sizes!r}")
+    if not isinstance(sizes, list) or not sizes or len(sizes) > MAX_CHOICES:
+        raise r.fail(sizes_key, f"must list 1 to {MAX_CHOICES} [height, width] pairs, got {shown(sizes)}")
     resolutions = []
     for pair in sizes:
-        key = "input.sizes" if r.get("input.sizes") is not None else "input.size"
-        if isinstance(pair, int) and not isinstance(pair, bool):
+        if is_int(pair):
             pair = [pair, pair]
-        if not (isinstance(pair, list) and len(pair) == 2 and all(isinstance(v, int) and not isinstance(v, bool) and v >= 1 for v in pair)):
-            raise r.fail(key, f"must be [height, width] with positive integers, got {pair!r}")
+        if not (isinstance(pair, list) and len(pair) == 2 and all(is_int(v) and 1 <= v <= MAX_SIDE for v in pair)):
+            raise r.fail(sizes_key, f"must be [height, width] with whole numbers from 1 to {MAX_SIDE:,}, got {shown(pair)}")
         resolutions.append(tuple(pair))
 
-    stage_count = r.range_("stages.count", r.get("stages.count", [2, 3]), 1)
+    stage_count = r.range_("stages.count", r.get("stages.count", [2, 3]), 1, MAX_STAGES)
     convs_raw = r.get("stages.convs", [1, 2])
     if isinstance(convs_raw, list) and convs_raw and all(isinstance(v, list) for v in convs_raw):
-        convs = tuple(r.range_(f"stages.convs[{i}]", v, 1) for i, v in enumerate(convs_raw))
+        if len(convs_raw) > MAX_STAGES:
+            raise r.fail("stages.convs", f"lists {len(convs_raw):,} stages; there are at most {MAX_STAGES}")
+        convs = tuple(r.range_(f"stages.convs[{i}]", v, 1, MAX_CONVS) for i, v in enumerate(convs_raw))
         if len(convs) < stage_count[1]:
             raise r.fail("stages.convs", f"lists {len(convs)} stages but `stages.count` allows up to {stage_count[1]}")
     else:
-        convs = (r.range_("stages.convs", convs_raw, 1),)
+        convs = (r.range_("stages.convs", convs_raw, 1, MAX_CONVS),)
 
-    growth = r.get("stages.growth", 2.0)
-    if isinstance(growth, bool) or not isinstance(growth, (int, float)) or growth <= 0:
-        raise r.fail("stages.growth", f"must be a number > 0, got {growth!r}")
-    kernels = r.int_choices("conv.kernel", (3,))
+    growth = check_number(r.get("stages.growth", 2.0), "stages.growth", 0, MAX_GROWTH, low_open=True, file=file)
+    kernels = r.int_choices("conv.kernel", (3,), 1, MAX_KERNEL)
     padding = r.word_choices("conv.padding", "same", PADDINGS)
     if len(padding) != 1:
-        raise r.fail("conv.padding", f"must be one value, 'same' or 'valid', got {padding!r}")
+        raise r.fail("conv.padding", f"must be one value, 'same' or 'valid', got {shown(list(padding))}")
     padding = padding[0]
     if padding == "same" and any(k % 2 == 0 for k in kernels):
-        raise r.fail("conv.kernel", f"with padding 'same' needs odd kernels, got {list(kernels)}")
-    window = r.positive_int("pool.window", 2)
-    dropouts = r.get("head.dropout", [0.0])
-    dropouts = dropouts if isinstance(dropouts, list) else [dropouts]
-    if not dropouts or any(isinstance(d, bool) or not isinstance(d, (int, float)) or not 0 <= d < 1 for d in dropouts):
-        raise r.fail("head.dropout", f"must list numbers in [0, 1), got {r.get('head.dropout')!r}")
-    batch_norm = r.get("conv.batch_norm", [True])
-    batch_norm = batch_norm if isinstance(batch_norm, list) else [batch_norm]
-    if not batch_norm or any(not isinstance(b, bool) for b in batch_norm):
-        raise r.fail("conv.batch_norm", f"must be true, false or a list of them, got {r.get('conv.batch_norm')!r}")
-    hidden_count = r.range_("head.hidden", r.get("head.hidden", [0, 1]), 0)
-    if hidden_count[1] > 2:
-        raise r.fail("head.hidden", f"allows at most 2 hidden dense layers, got {list(hidden_count)}")
+        raise r.fail("conv.kernel", f"with padding 'same' needs odd kernels, got {shown(list(kernels))}")
+    window = r.whole("pool.window", 2, 1, MAX_SIDE)
+    dropouts = r.choices("head.dropout", [0.0], lambda d: _number_in(d, 0, 1), "a number in [0, 1)")
+    batch_norm = r.choices("conv.batch_norm", [True], lambda b: isinstance(b, bool), "true or false")
+    hidden_count = r.range_("head.hidden", r.get("head.hidden", [0, 1]), 0, MAX_HIDDEN)
     train = r.get("train", {})
     TrainSettings.from_dict(train, file=file)  # checked now, used later
 
     space = Space(
-        name=str(r.get("name", default_name)),
+        name=r.text("name", default_name, MAX_NAME, printable=True),
         resolutions=tuple(dict.fromkeys(resolutions)),
-        channels=r.positive_int("input.channels", 1),
-        classes=r.positive_int("input.classes", 10),
+        channels=_channels(r),
+        classes=r.whole("input.classes", 10, 2, MAX_CLASSES),
         stage_count=stage_count,
         convs=convs,
-        first_width=r.int_choices("stages.first_width", (8, 16)),
-        growth=float(growth),
-        max_width=r.positive_int("stages.max_width", None),
-        round_to=r.positive_int("stages.round_to", 1),
+        first_width=r.int_choices("stages.first_width", (8, 16), 1, MAX_WIDTH),
+        growth=growth,
+        max_width=r.whole("stages.max_width", None, 1, MAX_WIDTH),
+        round_to=r.whole("stages.round_to", 1, 1, MAX_WIDTH),
         kernels=kernels,
         padding=padding,
-        stride=r.positive_int("conv.stride", 1),
+        stride=r.whole("conv.stride", 1, 1, MAX_SIDE),
         activations=r.word_choices("conv.activation", ["relu"], ACTIVATIONS),
-        batch_norm=tuple(dict.fromkeys(batch_norm)),
+        batch_norm=batch_norm,
         pools=r.word_choices("pool.kind", ["max"], POOL_CHOICES),
         pool_window=window,
-        pool_stride=r.positive_int("pool.stride", window),
+        pool_stride=r.whole("pool.stride", window, 1, MAX_SIDE),
         features=r.word_choices("head.features", ["gap"], FEATURES),
         hidden_count=hidden_count,
-        hidden_widths=r.int_choices("head.hidden_width", (32,)) if hidden_count[1] else (32,),
+        hidden_widths=r.int_choices("head.hidden_width", (32,), 1, MAX_WIDTH) if hidden_count[1] else (32,),
         dropouts=tuple(dict.fromkeys(float(d) for d in dropouts)),
         budget=Budget.from_table(r.get("budget", {}), file=file),
         train=dict(train),
         file=file,
     )
+    r.text("description", "", MAX_DESCRIPTION, printable=False)
     _check_shrink(space)
-    _check_distinct_widths(space)
+    _check_widths(space)
     return space
 
 
-def _check_distinct_widths(space: Space) -> None:
-    """Two first widths that round to the same stage widths would count one network twice."""
+def _number_in(value: Any, low: float, high: float) -> bool:
+    """A finite number in [low, high) (bools are not numbers here)."""
+    return isinstance(value, (int, float)) and not isinstance(value, bool) and math.isfinite(value) and low <= value < high
+
+
+def _channels(r: _Reader) -> int:
+    """Input channels: what images convert to (gray, RGB, RGBA)."""
+    value = r.get("input.channels", 1)
+    if not is_int(value) or value not in CHANNELS:
+        raise r.fail("input.channels", f"must be 1 (gray), 3 (RGB) or 4 (RGBA), got {shown(value)}")
+    return value
+
+
+def _check_widths(space: Space) -> None:
+    """Every stage width within the ceiling, and no two first widths giving the same network.
+
+    Two first widths that round to the same stage widths would count one network twice.
+    """
     seen: dict[tuple[int, ...], int] = {}
     for first in space.first_width:
         widths = tuple(space.stage_width(i, first) for i in range(space.stage_count[1]))
+        if max(widths) > MAX_WIDTH:
+            stage = widths.index(max(widths)) + 1
+            key = "stages.growth" if space.growth > 1 else "stages.round_to"
+            raise SearcherError(
+                f"stage {stage} would be {max(widths):,} channels wide (first width {first}, growth {space.growth:g}, "
+                f"rounded to a multiple of {space.round_to}); widths stop at {MAX_WIDTH:,}: set `stages.max_width` "
+                f"or lower `{key}`", file=space.file, key=key)
         if widths in seen:
             raise SearcherError(
                 f"`stages.first_width` choices {seen[widths]} and {first} give the same stage widths "
@@ -185,11 +224,11 @@ def _check_keys(r: _Reader) -> None:
         if section not in SECTIONS:
             raise r.fail(section, f"is not a known section or key; use {one_of(section, tuple(SECTIONS))}")
         keys = SECTIONS[section]
-        if keys is None:
-            continue
+        if keys is None and section not in ("budget", "train"):
+            continue  # name, description: read as text
         if not isinstance(value, dict):
-            raise r.fail(section, f"must be a table [{section}], got {value!r}")
-        for key in value:
+            raise r.fail(section, f"must be a table [{section}], got {shown(value)}")
+        for key in value if keys is not None else ():
             if key not in keys:
                 raise r.fail(f"{section}.{key}", f"is not a known key; use {one_of(key, keys)}")
 
@@ -200,8 +239,8 @@ def _check_shrink(space: Space) -> None:
     Every conv and pool shrinks monotonically in its kernel, count and window, so the worst
     case (smallest input, most convs, largest kernel, pooling wherever it may be chosen) decides.
     """
-    h = min(r[0] for r in space.resolutions)
-    w = min(r[1] for r in space.resolutions)
+    smallest = (min(r[0] for r in space.resolutions), min(r[1] for r in space.resolutions))
+    h, w = smallest
     kernel = max(space.kernels)
     pad = kernel // 2 if space.padding == "same" else 0
     pools = any(p != "none" for p in space.pools)
@@ -210,18 +249,35 @@ def _check_shrink(space: Space) -> None:
         start = (h, w)
         for _ in range(n):
             h, w = (conv_output_size(v, kernel, space.stride, pad) for v in (h, w))
+        convs_end = (h, w)
         if pools and min(h, w) >= 1:
             h, w = (conv_output_size(v, space.pool_window, space.pool_stride, 0) for v in (h, w))
-        if min(h, w) < 1:
-            what = f"{n} {space.padding} {kernel}x{kernel} conv(s) at stride {space.stride}"
-            if pools:
-                what += f" and {space.pool_window}x{space.pool_window} pooling"
+        if min(h, w) >= 1:
+            continue
+        convs = f"{n} {space.padding} {kernel}x{kernel} conv(s) at stride {space.stride}"
+        if i:  # the stages before fit: fewer stages is the plain fix
+            what = convs + (f" and {space.pool_window}x{space.pool_window} pooling" if pools else "")
             raise SearcherError(
                 f"stage {i + 1} with {what} shrinks a {start[0]}x{start[1]} map below 1x1 "
-                f"(smallest input {min(r[0] for r in space.resolutions)}x{min(r[1] for r in space.resolutions)}); "
-                f"lower `stages.count` to at most {i}, or use smaller kernels, 'same' padding or 'none' pooling",
-                file=space.file, key="stages.count",
-            )
+                f"(smallest input {smallest[0]}x{smallest[1]}); lower `stages.count` to at most {i}, "
+                f"or use smaller kernels, 'same' padding or 'none' pooling", file=space.file, key="stages.count")
+        if min(convs_end) < 1:
+            raise SearcherError(
+                f"the first stage's {convs} shrink the smallest input {smallest[0]}x{smallest[1]} below 1x1; "
+                f"use smaller `conv.kernel` choices, fewer `stages.convs`, 'same' padding or larger inputs",
+                file=space.file, key="conv.kernel")
+        key = "conv.stride" if space.stride > 1 and min(start) >= space.pool_window else "pool.window"
+        raise SearcherError(
+            f"the first stage's {convs} take the smallest input {smallest[0]}x{smallest[1]} to "
+            f"{convs_end[0]}x{convs_end[1]}, smaller than the {space.pool_window}x{space.pool_window} pooling "
+            f"window; use a `pool.window` of at most {min(convs_end)}"
+            + (", a smaller `conv.stride`" if space.stride > 1 else "") + ", or 'none' in `pool.kind`",
+            file=space.file, key=key)
+
+
+def shipped_spaces() -> list[str]:
+    """Names of the spaces shipped with the package: ``classic``, ``mcu``, ``workstation``."""
+    return sorted(p.stem for p in _SHIPPED.glob("*.toml"))
 
 
 def builtin_space(name: str) -> Path:
@@ -229,12 +285,9 @@ def builtin_space(name: str) -> Path:
 
     ``searcher/spaces`` links to the repository's ``spaces/`` folder; a wheel holds copies.
     """
-    here = Path(__file__).parent.parent / "spaces"
-    path = here / f"{name}.toml"
-    if not path.exists():
-        names = sorted(p.stem for p in here.glob("*.toml"))
-        raise SearcherError(f"no built-in space {name!r}; use {one_of(name, names)}")
-    return path
+    if name not in shipped_spaces():
+        raise SearcherError(f"no built-in space {shown(name)}; use {one_of(name, shipped_spaces())}")
+    return _SHIPPED / f"{name}.toml"
 
 
 def load_space(path: str | Path) -> Space:

@@ -10,7 +10,8 @@ import math
 from collections.abc import Callable, Mapping
 from dataclasses import dataclass
 
-from searcher.errors import SearcherError, one_of
+from searcher.errors import SearcherError, is_int, one_of, shown, spelled
+from searcher.limits import MAX_BATCH, MAX_EPOCHS
 
 OPTIMIZERS = ("adamw", "sgd")
 SCHEDULES = ("onecycle", "cosine", "constant")
@@ -36,31 +37,38 @@ class TrainSettings:
         for name in ("train_fraction", "learning_rate", "weight_decay", "label_smoothing"):
             object.__setattr__(self, name, float(getattr(self, name)))
 
-    def check(self) -> None:
+    def check(self, prefix: str = "train.") -> None:
         """Raise SearcherError naming the first field whose value breaks its rule."""
-        for name, (test, rule) in _RULES.items():
-            value = getattr(self, name)
-            if not test(value):
-                text = one_of(value, rule) if isinstance(rule, tuple) else rule
-                raise SearcherError(f"`train.{name}` must be {text}, got {value!r}", key=f"train.{name}")
+        _refuse_broken({name: getattr(self, name) for name in _RULES}, prefix)
 
     @classmethod
-    def from_dict(cls, values: Mapping[str, object], file: str | None = None) -> TrainSettings:
-        """Settings from a parsed `[train]` table; unset keys keep their defaults."""
+    def from_dict(cls, values: Mapping[str, object], file: str | None = None, prefix: str = "train.") -> TrainSettings:
+        """Settings from a parsed `[train]` table; unset keys keep their defaults.
+
+        ``prefix`` names a key as the user wrote it: "train." in a space file, "--" for the
+        command-line options (``--batch-size``), so a mistake is blamed on the right place.
+        """
         if not isinstance(values, Mapping):
-            raise SearcherError(f"`train` must be a table of settings, got {values!r}", file=file, key="train")
+            raise SearcherError(f"`train` must be a table of settings, got {shown(values)}", file=file, key="train")
         names = tuple(f.name for f in dataclasses.fields(cls))
         for key in (k for k in values if k not in names):
-            hint = f"`train.{key}` is not a training setting: use {one_of(key, names)}"
-            raise SearcherError(hint, file=file, key=f"train.{key}")
-        try:
-            return cls(**values)
-        except SearcherError as error:
-            raise SearcherError(error.message, file=file, key=error.key) from None
+            where = spelled(prefix, str(key))
+            raise SearcherError(f"`{where}` is not a training setting: use {one_of(key, names)}", file=file, key=where)
+        _refuse_broken(values, prefix, file)
+        return cls(**values)
 
 
-def _is_int(low: int) -> Callable[[object], bool]:
-    return lambda v: isinstance(v, int) and not isinstance(v, bool) and v >= low
+def _refuse_broken(values: Mapping[str, object], prefix: str, file: str | None = None) -> None:
+    """Raise for the first value that breaks its rule, naming it ``prefix`` + field."""
+    for name, (test, rule) in _RULES.items():
+        if name in values and not test(values[name]):
+            text = one_of(values[name], rule) if isinstance(rule, tuple) else rule
+            key = spelled(prefix, name)
+            raise SearcherError(f"`{key}` must be {text}, got {shown(values[name])}", file=file, key=key)
+
+
+def _is_int(low: int, high: int) -> Callable[[object], bool]:
+    return lambda v: is_int(v) and low <= v <= high
 
 
 def _is_number(test: Callable[[float], bool]) -> Callable[[object], bool]:
@@ -68,14 +76,14 @@ def _is_number(test: Callable[[float], bool]) -> Callable[[object], bool]:
 
 
 _RULES: dict[str, tuple[Callable[[object], bool], str | tuple[str, ...]]] = {  # a rule, or the options
-    "epochs": (_is_int(1), "an int ≥ 1"),
+    "epochs": (_is_int(1, MAX_EPOCHS), f"a whole number from 1 to {MAX_EPOCHS:,}"),
     "train_fraction": (_is_number(lambda v: 0 < v <= 1), "a number in (0, 1]"),
-    "batch_size": (_is_int(2), "an int ≥ 2 (batch norm needs two images)"),
-    "optimizer": (lambda v: v in OPTIMIZERS, OPTIMIZERS),
+    "batch_size": (_is_int(2, MAX_BATCH), f"a whole number from 2 (batch norm needs two images) to {MAX_BATCH:,}"),
+    "optimizer": (lambda v: isinstance(v, str) and v in OPTIMIZERS, OPTIMIZERS),
     "learning_rate": (_is_number(lambda v: v > 0), "a number > 0"),
-    "schedule": (lambda v: v in SCHEDULES, SCHEDULES),
+    "schedule": (lambda v: isinstance(v, str) and v in SCHEDULES, SCHEDULES),
     "weight_decay": (_is_number(lambda v: v >= 0), "a number ≥ 0"),
     "label_smoothing": (_is_number(lambda v: 0 <= v < 1), "a number in [0, 1)"),
     "channels_last": (lambda v: isinstance(v, bool), "true or false"),
-    "eval_batch_size": (_is_int(1), "an int ≥ 1"),
+    "eval_batch_size": (_is_int(1, MAX_BATCH), f"a whole number from 1 to {MAX_BATCH:,}"),
 }

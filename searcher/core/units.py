@@ -6,9 +6,11 @@ SI (kB, MB, GB) and binary (KiB, MiB, GiB) units; a bare number is bytes.
 
 from __future__ import annotations
 
+import math
 import re
 
-from searcher.errors import SearcherError
+from searcher.errors import SearcherError, shown
+from searcher.limits import MAX_CAP
 
 _COUNT = {"": 1, "k": 10**3, "K": 10**3, "M": 10**6, "G": 10**9}
 _BYTES = {
@@ -20,21 +22,30 @@ _PATTERN = re.compile(r"^\s*([0-9][0-9_]*(?:\.[0-9]+)?)\s*([A-Za-z]*)\s*$")
 
 
 def _parse(text: object, table: dict[str, int], what: str, example: str, key: str | None) -> int:
-    if isinstance(text, bool):
-        raise SearcherError(f"`{key or what}` must be {what} such as {example}, got {text!r}", key=key)
+    name = f"`{key or what}`"
+    units = ", ".join(u for u in table if u)
+    if isinstance(text, bool) or not isinstance(text, (int, float, str)):
+        raise SearcherError(f"{name} must be {what} such as {example} (units: {units}), got {shown(text)}", key=key)
     if isinstance(text, int):
-        value = text
+        number = value = text
     else:
-        match = _PATTERN.match(str(text))
-        if not match or match.group(2) not in table:
-            units = ", ".join(u for u in table if u)
-            raise SearcherError(
-                f"`{key or what}` must be {what} such as {example} (units: {units}), got {text!r}", key=key
-            )
-        number, unit = match.groups()
-        value = round(float(number.replace("_", "")) * table[unit])
-    if value <= 0:
-        raise SearcherError(f"`{key or what}` must be positive, got {text!r}", key=key)
+        match = _PATTERN.match(text) if isinstance(text, str) and len(text) <= 40 else None
+        if isinstance(text, float):
+            number = text
+            unit = ""
+        elif not match or match.group(2) not in table:
+            raise SearcherError(f"{name} must be {what} such as {example} (units: {units}), got {shown(text)}",
+                                key=key)
+        else:
+            number, unit = float(match.group(1).replace("_", "")), match.group(2)
+        if not math.isfinite(number * table[unit]):
+            raise SearcherError(f"{name} must be {what} such as {example}, not infinite, got {shown(text)}", key=key)
+        value = round(number * table[unit])
+    if value < 1:
+        why = "rounds to 0" if number > 0 else "is not positive"
+        raise SearcherError(f"{name} {shown(text)} {why}; a cap must be at least 1", key=key)
+    if value > MAX_CAP:
+        raise SearcherError(f"{name} {shown(text)} is beyond the largest cap there is, 10^15", key=key)
     return value
 
 

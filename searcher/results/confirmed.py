@@ -16,7 +16,8 @@ import numpy as np
 import pandas as pd
 
 from searcher.core.stats import accuracy_se, spearman
-from searcher.errors import SearcherError, shorten
+from searcher.errors import check_int, check_number
+from searcher.limits import MAX_CONFIRM_CANDIDATES, MAX_CONFIRM_SEEDS
 from searcher.results.pareto import COST_COLUMNS, feasible_mask
 from searcher.results.records import SCORED, TRAINED, distinct_rows
 
@@ -40,14 +41,16 @@ class ConfirmSettings:
 
     def check(self) -> None:
         """Each option within its bounds, named as the command line spells it."""
-        for flag, value, low, high in (("--confirm", self.seeds, 0, 20), ("--confirm-candidates", self.most, 1, 100),
-                                       ("--confirm-random", self.extra, 0, 100)):
-            if isinstance(value, bool) or not isinstance(value, int) or not low <= value <= high:
-                raise SearcherError(f"`{flag}` must be a whole number from {low} to {high}, got {shorten(repr(value))}",
-                                    key=flag)
-        if self.tolerance is not None and not (isinstance(self.tolerance, (int, float)) and 0 <= self.tolerance < 1):
-            raise SearcherError(f"`--tolerance` must be an accuracy difference from 0 to below 1 (0.01 is one point), "
-                                f"got {shorten(repr(self.tolerance))}", key="--tolerance")
+        check_int(self.seeds, "--confirm", 0, MAX_CONFIRM_SEEDS)
+        check_int(self.most, "--confirm-candidates", 1, MAX_CONFIRM_CANDIDATES)
+        check_int(self.extra, "--confirm-random", 0, MAX_CONFIRM_CANDIDATES)
+        if self.tolerance is not None:
+            check_tolerance(self.tolerance)
+
+
+def check_tolerance(value: object) -> float:
+    """An accuracy difference the default pick may give up: a number in [0, 1) (0.01 is one point)."""
+    return check_number(value, "--tolerance", 0, 1, high_open=True)
 
 
 def cost_columns(caps: dict[str, float], objective_cost: str | None) -> list[str]:

@@ -27,22 +27,23 @@ import numpy as np
 import torch
 
 from searcher.core.arch import Arch, parse_arch
-from searcher.core.budget import Budget
-from searcher.core.cost import cost
-from searcher.errors import SearcherError
+from searcher.core.budget import Budget, show_cost
+from searcher.core.cost import cost, training_bytes
+from searcher.errors import SearcherError, check_int, shown
+from searcher.limits import MAX_EPOCHS, MAX_TRIAL
 from searcher.core.space_file import read_space_text
 from searcher.core.stats import wilson_interval
 from searcher.data.load import load_dataset, load_split
 from searcher.model.build import build
 from searcher.model.train import TrainSettings, evaluate, train_candidate
-from searcher.results.confirmed import default_pick
+from searcher.results.confirmed import check_tolerance, default_pick
 from searcher.results.records import FAILED, REJECTED, TRAINED, best_row
 from searcher.results.tables import RunResults, gather
 from searcher.ship.deploy_files import DeployReport, write_deploy_files
-from searcher.runs import RUNS
+from searcher.runs import RUNS, run_folder
 from searcher.ship.model_card import model_card, standalone_source
-from searcher.study.run import RunData
-from searcher.study.storage import open_run, storage_url
+from searcher.study.run import RunData, default_memory_cap
+from searcher.study.storage import open_run, storage_kind, storage_url
 
 log = logging.getLogger(__name__)
 
@@ -57,6 +58,28 @@ class ExportSettings:
     tolerance: float | None = None  # accuracy the default pick may give up against the best confirmed one
     force: bool = False  # replace an existing export with a candidate that breaks a cap or failed
     root: Path = RUNS
+
+    def __post_init__(self) -> None:
+        """Refuse a bad option before the run is opened, naming it as typed (``--epochs``)."""
+        run_folder(self.name, self.root)
+        if self.trial is not None:
+            check_int(self.trial, "--trial", 0, MAX_TRIAL)
+        if self.epochs is not None:
+            check_int(self.epochs, "--epochs", 1, MAX_EPOCHS)
+        if self.arch is not None:
+            given_arch(self.arch)
+        if self.storage is not None:
+            storage_kind(self.storage)
+        if self.tolerance is not None:
+            check_tolerance(self.tolerance)
+
+
+def given_arch(text: str) -> Arch:
+    """The architecture given with ``--arch``; a mistake in it is named as the option's."""
+    try:
+        return parse_arch(text)
+    except SearcherError as exc:
+        raise SearcherError(f"`--arch`: {exc.message}", key="--arch") from None
 
 
 @dataclass
@@ -93,7 +116,7 @@ def choose(results: RunResults, settings: ExportSettings) -> Choice:
     noise of the best (see searcher.results.confirmed.default_pick), else the best by the proxy."""
     frame = results.frame
     if settings.arch:
-        return Choice(parse_arch(settings.arch), None, "given on the command line", "given")
+        return Choice(given_arch(settings.arch), None, "given on the command line", "given")
     confirmed = results.confirmation.table.set_index("trial") if results.confirmation is not None else None
 
     def facts(trial: int) -> dict | None:
@@ -144,9 +167,18 @@ def export(settings: ExportSettings) -> ExportOutcome:
     _refuse_replacing(choice, not budget.check(budget.totals(cost(arch, budget.activation_precision))), folder, settings)
     if arch.head.classes != config.classes:
         raise SearcherError(f"architecture has {arch.head.classes} outputs but the run's data has {config.classes} classes")
+    space_shape = read_space_text(config.space_text, f"<space of run {config.space_name}>").data_shape
+    if arch.input_shape[0] != space_shape[0]:
+        raise SearcherError(f"`--arch` {shown(arch.to_text())} takes {arch.input_shape[0]} input channel(s) but run "
+                            f"{settings.name!r} reads its images with {space_shape[0]}; give the architecture "
+                            f"{space_shape[0]} input channel(s)", key="--arch")
+    guard, needed = default_memory_cap(1), training_bytes(cost(arch), TrainSettings(**config.train).batch_size)
+    if needed > guard:
+        raise SearcherError(f"training {shown(arch.to_text())} needs about {show_cost('training_bytes', needed)}, more "
+                            f"than the guard of half this machine's free memory ({show_cost('training_bytes', guard)}); "
+                            f"choose a smaller architecture", key="--arch" if settings.arch else "--trial")
     split_file = folder / "split.npz"
     stored = load_split(split_file)[0] if split_file.exists() else None
-    space_shape = read_space_text(config.space_text, f"<space of run {config.space_name}>").data_shape
     dataset = load_dataset(config.data, space_shape, seed=config.seed, split=stored)
     if dataset.fingerprint != config.data_fingerprint:
         raise SearcherError(f"the data at {config.data} changed since run {settings.name!r} searched it "

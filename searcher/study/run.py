@@ -7,6 +7,7 @@ prepares the same way, so every worker checks and sees the same space, budget an
 from __future__ import annotations
 
 import logging
+import multiprocessing
 import os
 from dataclasses import asdict, dataclass, replace
 from pathlib import Path
@@ -17,7 +18,8 @@ from searcher.core.space import Space
 from searcher.core.space_file import load_space
 from searcher.core.train_settings import TrainSettings
 from searcher.data.load import Dataset, Split, load_dataset, load_split, resize_images
-from searcher.errors import SearcherError, one_of
+from searcher.errors import SearcherError, check_int, check_number, one_of, shown
+from searcher.limits import MAX_CAP, MAX_MINUTES, MAX_SEED, MAX_TRIALS, MAX_WORKERS
 from searcher.results.confirmed import ConfirmSettings
 from searcher.runs import RUNS, run_folder
 from searcher.study.storage import OBJECTIVES, SAMPLERS, RunConfig, storage_kind, storage_url
@@ -47,20 +49,40 @@ class SearchSettings:
     root: Path = RUNS  # where run folders live
 
     def check(self) -> None:
+        """Refuse a bad option before anything is read or written, naming it as typed (``--trials``)."""
         if self.objective not in OBJECTIVES:
-            raise SearcherError(f"`--objective` must be {one_of(self.objective, tuple(OBJECTIVES))}, got {self.objective!r}",
-                                key="--objective")
+            raise SearcherError(f"`--objective` must be {one_of(self.objective, tuple(OBJECTIVES))}, "
+                                f"got {shown(self.objective)}", key="--objective")
         if self.sampler not in SAMPLERS:
-            raise SearcherError(f"`--sampler` must be {one_of(self.sampler, SAMPLERS)}, got {self.sampler!r}", key="--sampler")
-        for key, value, low in (("--trials", self.trials, 1), ("--workers", self.workers, 1)):
-            if not isinstance(value, int) or value < low:
-                raise SearcherError(f"`{key}` must be an integer ≥ {low}, got {value!r}", key=key)
+            raise SearcherError(f"`--sampler` must be {one_of(self.sampler, SAMPLERS)}, got {shown(self.sampler)}",
+                                key="--sampler")
+        check_int(self.trials, "--trials", 1, MAX_TRIALS)
+        check_int(self.workers, "--workers", 1, MAX_WORKERS, why="each worker is a process holding the data")
+        check_int(self.seed, "--seed", 0, MAX_SEED)
         for key, value in (("--minutes", self.minutes), ("--candidate-minutes", self.candidate_minutes)):
-            if value is not None and not value > 0:
-                raise SearcherError(f"`{key}` must be a number of minutes > 0, got {value!r}", key=key)
+            if value is not None:
+                check_number(value, key, 0, MAX_MINUTES, low_open=True)
+        if self.memory_cap is not None:
+            check_int(self.memory_cap, "--max-train-memory", 1, MAX_CAP)
         if self.storage is not None:
             storage_kind(self.storage)
         self.confirm.check()
+        _check_data(self.data)
+        cores = os.cpu_count() or 1
+        if self.workers > cores and multiprocessing.parent_process() is None:  # once, not again in each worker
+            log.warning("--workers %d is more than this machine's %d CPU cores: the workers will share cores, "
+                        "and each candidate trains slower", self.workers, cores)
+
+
+def _check_data(data: str) -> None:
+    """A data source that cannot be there is refused by name before the space or data is read."""
+    try:
+        there = data == "demo" or bool(data.strip()) and Path(data).exists()
+    except (OSError, ValueError, AttributeError):  # too long a name, a NUL byte, not text
+        there = False
+    if not there:
+        raise SearcherError(f"`--data` {shown(data)} does not exist; give 'demo', a .npz file or a folder with one "
+                            f"sub-folder per class", key="--data")
 
 
 class RunData:
@@ -103,6 +125,7 @@ def prepare(settings: SearchSettings, budget: dict | None = None, train: dict | 
     settings.check()
     space = load_space(settings.space)
     budget = space.budget.updated(budget or {}, prefix="--")
+    TrainSettings.from_dict(train or {}, prefix="--")  # an override's mistake is the option's, not the file's
     train_settings = TrainSettings.from_dict({**space.train, **(train or {})}, file=space.file)
     folder = run_folder(settings.name, settings.root)
     split_file = folder / "split.npz"

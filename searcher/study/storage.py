@@ -22,7 +22,7 @@ from typing import Any, Callable
 import optuna
 import sqlalchemy
 
-from searcher.errors import SearcherError, one_of, shorten
+from searcher.errors import SearcherError, one_of, shown
 from searcher.redact import redact
 from searcher.runs import RUNS, run_folder
 from searcher.study.early_stop import make_pruner
@@ -320,7 +320,7 @@ def config_changes(old: RunConfig, new: RunConfig) -> list[str]:
         elif key == "space_text":
             changes.append("the space file's text")
         else:
-            changes.append(f"{key}: {shorten(repr(before))} -> {shorten(repr(after))}")
+            changes.append(f"{key}: {shown(before)} -> {shown(after)}")
     return changes
 
 
@@ -336,6 +336,8 @@ def study_exists(name: str, url: str) -> bool:
 def open_run(name: str, storage: str | None = None, root: Path | None = None) -> tuple[Path, optuna.Study, RunConfig]:
     """A stored run for reading (report, status, export): its folder, study and configuration; writes nothing."""
     folder = run_folder(name, root or RUNS)
+    if storage is not None:
+        storage_kind(storage)  # an empty or mistyped --storage is refused, not taken for the default
     if storage is None and not (folder / "study.db").exists():
         raise SearcherError(f"no run {name!r}: {folder / 'study.db'} does not exist "
                             f"(give --storage for a run kept elsewhere)", key="--name")

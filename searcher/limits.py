@@ -1,0 +1,37 @@
+"""Ceilings on every value that sets how much work a command does; README's key table states them.
+
+Each one is far beyond what a small image classifier needs, and low enough that no count can
+overflow the census's 64-bit arithmetic or ask for memory the machine does not have: with
+every bound at its ceiling a conv does at most 1024²·4096²·31² ≈ 1.6·10¹⁶ MACs, and
+100 of them stay below 2⁶³ ≈ 9.2·10¹⁸.
+"""
+
+from __future__ import annotations
+
+# -- architectures (space files, the text form, --arch) ----------------------------------------
+MAX_SIDE = 1024  # input height or width in pixels; also the ceiling on a stride or pool window
+MAX_WIDTH = 4096  # channels of a conv, width of a hidden dense layer
+MAX_KERNEL = 31  # side of a square conv kernel
+MAX_STAGES = 10  # conv-pool stages; plain nets this deep already train worse (He et al., CVPR 2016, Fig. 1; recalled)
+MAX_CONVS = 10  # convs in one stage
+MAX_HIDDEN = 2  # hidden dense layers of the head
+MAX_CLASSES = 100_000  # outputs
+CHANNELS = (1, 3, 4)  # input channels a space offers: gray, RGB, RGBA (what images convert to)
+MAX_CHOICES = 64  # entries in any list of choices of a space file
+
+# -- budgets ------------------------------------------------------------------------------------
+MAX_CAP = 10**15  # any cap: parameters, MACs, bytes
+
+# -- runs -----------------------------------------------------------------------------------------
+MAX_SEED = 2**31 - 1  # seeds; a worker's sampler seed (seed + worker) stays below numpy's 2³²
+MAX_SAMPLES = 1_000_000  # census draws (about 5 s on the workstation space)
+MAX_TRIALS = 1_000_000  # candidates a search trains
+MAX_WORKERS = 64  # worker processes on one machine
+MAX_MINUTES = 10_080  # one week: --minutes and --candidate-minutes
+MAX_EPOCHS = 1000  # proxy-training and export epochs
+MAX_BATCH = 65_536  # training and evaluation batch sizes
+MAX_TRIAL = 2**31 - 1  # a trial number (export --trial)
+MAX_CONFIRM_SEEDS = 20  # full-schedule trainings per confirmed candidate (--confirm)
+MAX_CONFIRM_CANDIDATES = 100  # candidates confirmed from near the fronts, and drawn at random, each
+MAX_NAME = 80  # characters of a space's name
+MAX_DESCRIPTION = 2000  # characters of a space's description
