@@ -71,8 +71,6 @@ def choose(frame: Any, budget: Budget, settings: ExportSettings, classes: int) -
 
 def export(settings: ExportSettings) -> ExportOutcome:
     """Retrain on train+validation, test once on the held-out split, and write runs/<name>/export/."""
-    import torch
-
     from searcher.model.build import build
     from searcher.data.load import load_dataset, load_split
     from searcher.results.records import trials_frame
@@ -89,7 +87,7 @@ def export(settings: ExportSettings) -> ExportOutcome:
     split_file = folder / "split.npz"
     stored = load_split(split_file)[0] if split_file.exists() else None
     space_shape = _space_shape(config)
-    dataset = load_dataset(config.data, space_shape, seed=config.seed, split=stored)
+    dataset = load_dataset(config.data, space_shape, seed=config.seed, split=stored, cache=folder)
     if dataset.fingerprint != config.data_fingerprint:
         raise SearcherError(f"the data at {config.data} changed since run {settings.name!r} searched it "
                             f"(fingerprint {dataset.fingerprint}, was {config.data_fingerprint})", key="--data")
@@ -97,15 +95,15 @@ def export(settings: ExportSettings) -> ExportOutcome:
     base = TrainSettings(**config.train)
     epochs = settings.epochs or max(10, 3 * base.epochs)
     train_settings = replace(base, epochs=epochs, train_fraction=1.0)
-    images = torch.cat([data.train.images, data.val.images])
-    labels = torch.cat([data.train.labels, data.val.labels])
+    images = np.concatenate([data.train.images, data.val.images])
+    labels = np.concatenate([data.train.labels, data.val.labels])
     model = build(arch)
     started = time.time()
     # the schedule's own validation pass reads the training data here: the test split stays unseen
     result = train_candidate(model, images, labels, data.train.images[:256], data.train.labels[:256],
                              train_settings, seed=config.seed)
     accuracy, predictions = evaluate(model, data.test.images, data.test.labels)
-    confusion = _confusion(data.test.labels.numpy(), predictions.numpy(), config.classes)
+    confusion = _confusion(data.test.labels, predictions.numpy(), config.classes)
     per_class = {name: float(confusion[i, i] / max(1, confusion[i].sum())) for i, name in enumerate(config.class_names)}
     totals = budget.totals(cost(arch, budget.activation_precision))
     fits = not budget.check(totals)

@@ -127,7 +127,7 @@ def prepare(settings: SearchSettings, budget: dict | None = None, train: dict | 
     split_file = folder / "split.npz"
     stored, known = load_split(split_file) if split_file.exists() else (None, None)
     dataset = load_dataset(settings.data, (space.channels, *largest), seed=settings.seed,
-                           skip_unreadable=settings.skip_unreadable, split=stored, fingerprint=known)
+                           skip_unreadable=settings.skip_unreadable, split=stored, fingerprint=known, cache=folder)
     if dataset.skipped:
         log.warning("skipped %d unreadable image file(s) in %s", dataset.skipped, settings.data)
     _check_something_fits(space, budget, dataset.num_classes)
@@ -170,10 +170,11 @@ def search(settings: SearchSettings, budget: dict | None = None, train: dict | N
     """Run (or continue) the search ``settings.name`` and write its results."""
     run = prepare(settings, budget, train)
     study, _ = open_study(settings.name, run.url, run.config, settings.sampler)
-    from searcher.data.load import save_split
+    from searcher.data.load import save_decoded, save_split
 
     run.folder.mkdir(parents=True, exist_ok=True)
     save_split(run.folder / "split.npz", run.data.dataset.indices, run.data.dataset.fingerprint)
+    save_decoded(run.folder, run.data.dataset)  # resume and export read these bytes instead of decoding again
     write_atomic(run.folder / "run.json", json.dumps(
         {"settings": {k: str(v) if isinstance(v, Path) else v for k, v in asdict(settings).items()}
          | {"storage": redact(run.url)}, "config": run.config.to_dict()}, indent=2))
