@@ -51,6 +51,13 @@ max_macs = "20k"
 """
 
 
+def named(text: str, path: Path) -> str:
+    """A pattern for an error message that says `text` and names the file or folder `path`."""
+    import re
+
+    return f"{text}.*{re.escape(path.name)}"
+
+
 @pytest.fixture(scope="session")
 def shipped() -> dict[str, Space]:
     """Every space under spaces/, loaded once."""

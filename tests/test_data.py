@@ -11,6 +11,7 @@ import pytest
 import torch
 from hypothesis import given, settings
 from hypothesis import strategies as st
+from conftest import named
 from PIL import Image
 
 from searcher.data.load import (
@@ -24,10 +25,6 @@ from searcher.data.load import (
 from searcher.data.demo import CLASS_NAMES, make_demo
 from searcher.errors import SearcherError
 
-
-def _named(text: str, path: Path) -> str:
-    """A pattern for a message that says `text` and names `path`."""
-    return f"{text}.*{re.escape(path.name)}"
 
 
 @pytest.fixture(scope="module")
@@ -151,7 +148,7 @@ def test_folder_unreadable_image_is_named_or_skipped(tmp_path):
     _write_folder(tmp_path, np.random.default_rng(4))
     broken = tmp_path / "good" / "9.png"
     broken.write_bytes(b"\x89PNG\r\n\x1a\n not really")
-    with pytest.raises(SearcherError, match=_named("cannot read image", broken)):
+    with pytest.raises(SearcherError, match=named("cannot read image", broken)):
         load_arrays(str(tmp_path), (1, 8, 8))
     images, _, _, skipped = load_arrays(str(tmp_path), (1, 8, 8), skip_unreadable=True)
     assert skipped == 1 and len(images) == 12
@@ -189,7 +186,7 @@ NINE = np.zeros((9, 4, 4), np.uint8)  # nine blank images for the label checks
 )
 def test_npz_mistakes_name_the_file_and_key(tmp_path, arrays, shape, pattern):
     path = _npz(tmp_path, **arrays)
-    with pytest.raises(SearcherError, match=_named(pattern, path)) as caught:
+    with pytest.raises(SearcherError, match=named(pattern, path)) as caught:
         load_arrays(str(path), shape)
     assert caught.value.file == str(path)
 
@@ -198,10 +195,10 @@ def test_source_mistakes(tmp_path):
     with pytest.raises(SearcherError, match="'nowhere.npz' does not exist; give 'demo'"):
         load_arrays("nowhere.npz", (1, 8, 8))
     (tmp_path / "d.csv").write_text("1,2")
-    with pytest.raises(SearcherError, match=_named("'.csv' is not supported", tmp_path / "d.csv")):
+    with pytest.raises(SearcherError, match=named("'.csv' is not supported", tmp_path / "d.csv")):
         load_arrays(str(tmp_path / "d.csv"), (1, 8, 8))
     (tmp_path / "junk.npz").write_bytes(b"not a zip")
-    with pytest.raises(SearcherError, match=_named("not a NumPy .npz archive", tmp_path / "junk.npz")):
+    with pytest.raises(SearcherError, match=named("not a NumPy .npz archive", tmp_path / "junk.npz")):
         load_arrays(str(tmp_path / "junk.npz"), (1, 8, 8))
     with pytest.raises(SearcherError, match="has 2 channels; channels must be 1, 3 or 4"):
         load_arrays("demo", (2, 8, 8))
@@ -210,14 +207,14 @@ def test_source_mistakes(tmp_path):
 
 
 def test_folder_mistakes(tmp_path):
-    with pytest.raises(SearcherError, match=_named("no class sub-folders", tmp_path)):
+    with pytest.raises(SearcherError, match=named("no class sub-folders", tmp_path)):
         load_arrays(str(tmp_path), (1, 8, 8))
     (tmp_path / "only").mkdir()
     Image.new("L", (8, 8)).save(tmp_path / "only" / "a.png")
-    with pytest.raises(SearcherError, match=_named("only the class 'only'", tmp_path)):
+    with pytest.raises(SearcherError, match=named("only the class 'only'", tmp_path)):
         load_arrays(str(tmp_path), (1, 8, 8))
     (tmp_path / "empty").mkdir()
-    with pytest.raises(SearcherError, match=_named("'empty' has no PNG or JPEG files", tmp_path / "empty")):
+    with pytest.raises(SearcherError, match=named("'empty' has no PNG or JPEG files", tmp_path / "empty")):
         load_arrays(str(tmp_path), (1, 8, 8))
 
 
@@ -280,7 +277,7 @@ def test_stored_split_is_reused_and_checked(demo, tmp_path):
     with pytest.raises(SearcherError, match="fingerprint .* differs from the stored 0000"):
         load_dataset("demo", (1, 32, 32), fingerprint="0000")
     (tmp_path / "s.npz").write_bytes(b"")
-    with pytest.raises(SearcherError, match=_named("cannot read the stored split", tmp_path / "s.npz")):
+    with pytest.raises(SearcherError, match=named("cannot read the stored split", tmp_path / "s.npz")):
         load_split(tmp_path / "s.npz")
 
 
@@ -344,3 +341,47 @@ def _reassemble(data) -> tuple[np.ndarray, np.ndarray]:
     for name, where in data.indices.items():
         images[where], labels[where] = getattr(data, name).images, getattr(data, name).labels
     return images, labels
+
+
+# --- .npz defects (each refused with the file and the key named) ---------------------------
+
+
+def test_npz_that_is_not_an_archive_says_so(tmp_path):
+    text, single = tmp_path / "notes.npz", tmp_path / "single.npz"
+    text.write_text("images,labels\n1,2\n")
+    np.save(tmp_path / "single.npy", np.zeros((4, 4, 4), np.uint8))
+    (tmp_path / "single.npy").rename(single)
+    with pytest.raises(SearcherError, match=named("not a NumPy .npz archive", text)):
+        load_arrays(str(text), (1, 4, 4))
+    with pytest.raises(SearcherError, match=named(r"single NumPy array \(.npy\), not an .npz archive", single)):
+        load_arrays(str(single), (1, 4, 4))
+
+
+@pytest.mark.parametrize("key", ["images", "labels", "class_names"])
+def test_npz_holding_pickled_objects_is_refused_without_unpickling(tmp_path, key):
+    arrays = {"images": NINE, "labels": np.arange(9) % 3, "class_names": np.array(["a", "b", "c"])}
+    arrays[key] = np.array([object()] * len(arrays[key]), dtype=object)
+    path = _npz(tmp_path, **arrays)
+    with pytest.raises(SearcherError, match=named(f"`{key}` holds Python objects \\(pickled\\)", path)):
+        load_arrays(str(path), (1, 4, 4))
+
+
+def test_labels_must_be_0_to_k_minus_1_before_anything_is_built(tmp_path):
+    gap = _npz(tmp_path, images=NINE, labels=np.array([0, 1, 3] * 3))
+    with pytest.raises(SearcherError, match=r"3 distinct labels \(0, 1, 3\), but labels must be the class numbers "
+                                            r"0 to K-1 with none skipped: 3 classes need 0 to 2"):
+        load_arrays(str(gap), (1, 4, 4))
+    # One label of 10^11 is reported at once: no list of 10^11 class names is built first.
+    huge = _npz(tmp_path, images=NINE, labels=np.array([0, 1, 2] * 2 + [0, 1, 10**11]))
+    with pytest.raises(SearcherError, match=r"\(0, 1, 2, 100000000000\).*4 classes need 0 to 3"):
+        load_arrays(str(huge), (1, 4, 4))
+    named = _npz(tmp_path, images=NINE, labels=np.arange(9) % 2, class_names=np.array(["ok", "dent", "scratch"]))
+    with pytest.raises(SearcherError, match=r"no image of class 2 \('scratch'\).*drop the unused names"):
+        load_arrays(str(named), (1, 4, 4))
+
+
+def test_16_bit_npz_is_scaled(tmp_path):
+    deep = (np.arange(9 * 16).reshape(9, 4, 4) * 455).astype(np.uint16)
+    path = _npz(tmp_path, images=deep, labels=np.arange(9) % 3)
+    images = load_arrays(str(path), (1, 4, 4))[0]
+    assert np.array_equal(images[:, 0], np.round(deep / 257).astype(np.uint8))  # 65535 -> 255, as for PNG

@@ -110,8 +110,9 @@ def _read_chunk(files: list[Path], channels: int, h: int, w: int) -> tuple[np.nd
 class Progress:
     """Logs 'what: done of total (rate/s, about T left)' at INFO, only once work has taken a while."""
 
-    def __init__(self, what: str, total: int, every: float = PROGRESS_AFTER) -> None:
-        self.what, self.total, self.every = what, total, every
+    def __init__(self, what: str, total: int, every: float | None = None) -> None:
+        self.what, self.total = what, total
+        self.every = PROGRESS_AFTER if every is None else every
         self.started = self.last = time.monotonic()
         self.done = 0
         self.shown = False  # whether a line was logged, so the end can be logged too

@@ -37,8 +37,8 @@ def warp(images: torch.Tensor, degrees: torch.Tensor, zoom: torch.Tensor, dy: to
     # Output pixel -> input pixel, in the normalised [-1, 1] coordinates grid_sample uses; the H/W factors
     # keep a rotation round on a non-square image.
     theta = torch.stack([
-        torch.stack([cos, sin * h / w, -2 * dx.float() / w], 1),
-        torch.stack([-sin * w / h, cos, -2 * dy.float() / h], 1),
+        torch.stack([cos, -sin * h / w, -2 * dx.float() / w], 1),
+        torch.stack([sin * w / h, cos, -2 * dy.float() / h], 1),
     ], 1)  # N×2×3
     grid = F.affine_grid(theta, list(images.shape), align_corners=False)
     return F.grid_sample(images, grid, mode="bilinear", padding_mode="border", align_corners=False)
