@@ -10,7 +10,7 @@ import pytest
 from searcher.core.space import Space
 from searcher.core.space_file import builtin_space, load_space
 
-SHIPPED_SPACES = ("mcu", "workstation", "classic")
+SHIPPED_SPACES = ("mcu", "workstation", "classic", "edge_rgb")
 
 # A tiny but complete space: variable depth and hidden count, 8,064 configurations. Tests
 # write variations of it (one key changed) to check what the reader refuses.
