@@ -3,9 +3,10 @@
 Run: python tests/bench_data.py [memory|decode|convert|augment|accuracy|all] [--images N] [--folder DIR]
 
 - memory: peak memory and load time for N generated RGB 64×64 PNGs (default 20,000), the old way
-  (serial decode into float32 tensors, then split copies, as searcher/data/load.py did at commit
-  ddd7eb6) against the new one (uint8, threads, split copies), each in a fresh process; also reading
-  the decoded copy a run folder keeps. Goal: about a quarter of the old memory.
+  (load_dataset of searcher/data/load.py at commit ddd7eb6, taken from git: serial decode into float32
+  tensors, kept whole in its cache beside the split copies) against the new one (uint8, threads, only
+  the parts kept), each in a fresh process; also reading back the decoded copy a run folder keeps.
+  Goal: a data set costs about its pixel count in bytes.
 - decode: the same folder decoded serially, by threads and by forked processes (runs of 64 files).
 - convert: training images per second on a 3×64×64 candidate, uint8 converted per batch against float32
   prepared up front (goal: at most 5% slower), one thread, rounds interleaved, median of paired ratios.
@@ -62,25 +63,23 @@ def make_folder(folder: Path, count: int) -> Path:
     return folder
 
 
+OLD_COMMIT = "ddd7eb6"  # the last commit whose loader held float32 tensors and decoded serially
+
+
 def _old_load(folder: Path) -> object:
-    """The loader as it was (commit ddd7eb6): serial Pillow decode, np.stack, float32 /255, split copies."""
-    import torch
-    from PIL import Image
+    """load_dataset as it was at OLD_COMMIT, its module read from git history and imported as it stood."""
+    import importlib.util
+    import tempfile
 
-    from searcher.data.split import split_indices
-
-    classes = sorted(p for p in folder.iterdir() if p.is_dir())
-    pixels, labels = [], []
-    for label, cls in enumerate(classes):
-        for file in sorted(cls.iterdir()):
-            with Image.open(file) as img:
-                pixels.append(np.asarray(img.convert("RGB"), dtype=np.uint8).reshape(64, 64, 3))
-            labels.append(label)
-    images = torch.from_numpy(np.stack(pixels)).permute(0, 3, 1, 2).float().div_(255).contiguous()
-    del pixels
-    labels_t = torch.tensor(labels)
-    parts = split_indices(np.asarray(labels), 0)
-    return {p: (images[torch.from_numpy(i)], labels_t[torch.from_numpy(i)]) for p, i in parts.items()}
+    source = subprocess.run(["git", "-C", str(ROOT), "show", f"{OLD_COMMIT}:searcher/data/load.py"], check=True,
+                            capture_output=True, text=True).stdout
+    path = Path(tempfile.mkdtemp()) / "old_load.py"
+    path.write_text(source)
+    spec = importlib.util.spec_from_file_location("old_load", path)
+    module = importlib.util.module_from_spec(spec)
+    sys.modules["old_load"] = module  # its dataclasses look their module up there
+    spec.loader.exec_module(module)
+    return module.load_dataset(str(folder), SHAPE)
 
 
 def _rss() -> int:

@@ -385,3 +385,14 @@ def test_16_bit_npz_is_scaled(tmp_path):
     path = _npz(tmp_path, images=deep, labels=np.arange(9) % 3)
     images = load_arrays(str(path), (1, 4, 4))[0]
     assert np.array_equal(images[:, 0], np.round(deep / 257).astype(np.uint8))  # 65535 -> 255, as for PNG
+
+
+def test_a_second_load_shares_the_parts_or_cuts_a_new_split_from_them():
+    demo = load_dataset("demo", (1, 32, 32), seed=0)
+    same = load_dataset("demo", (1, 32, 32), seed=0)
+    assert same.train.images is demo.train.images  # held once in memory, not copied per load
+    other = load_dataset("demo", (1, 32, 32), seed=1)
+    assert other.fingerprint == demo.fingerprint and not np.array_equal(other.indices["test"], demo.indices["test"])
+    # The new split is cut from the same bytes: image i is the same image whichever part holds it.
+    assert np.array_equal(other.rows(0, 3000)[0], demo.rows(0, 3000)[0])
+    assert np.array_equal(demo.rows(0, 3000)[0][:, 0], make_demo(3000, (32, 32), 0)[0])

@@ -1,10 +1,12 @@
 """Data sets held in memory as bytes: the demo, a .npz file or a folder of images, split reproducibly.
 
 Everything is decoded once into uint8 N×C×H×W, so a data set costs about its pixel count in bytes,
-and the trainer converts each batch to floats as it takes it. The decoded bytes can be kept in a run's
-folder (`save_decoded`) so a resumed run or an export reads them back instead of decoding again;
-the files' names, sizes and times decide whether that copy is still good. The split is kept as index
-arrays and a fingerprint of the data, so a resumed run can prove it sees the same data.
+and the trainer converts each batch to floats as it takes it. Only the three parts are kept (the
+decoded whole is let go once split), and a second load of the same data in one process shares them.
+The decoded bytes can be kept in a run's folder (`save_decoded`) so a resumed run or an export reads
+them back instead of decoding again; the files' names, sizes and times decide whether that copy is
+still good. The split is kept as index arrays and a fingerprint of the data, so a resumed run can
+prove it sees the same data.
 """
 
 from __future__ import annotations
@@ -16,6 +18,7 @@ import zipfile
 from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass, field
 from pathlib import Path
+from typing import BinaryIO
 
 import numpy as np
 
@@ -39,7 +42,7 @@ FEW_EXAMPLES = 10  # validation or test images per class below which its score i
 
 @dataclass(frozen=True, eq=False)
 class Split:
-    """One part of the data, in memory."""
+    """One part of the data, in memory; shared by the Datasets of one process, so never changed in place."""
 
     images: np.ndarray  # uint8 N×C×H×W, 0–255
     labels: np.ndarray  # int64 N, class numbers 0..K-1
@@ -59,12 +62,35 @@ class Dataset:
     indices: dict[str, np.ndarray]  # the split as index arrays, to store with a run
     unreadable: tuple[str, ...] = ()  # "path: reason" per skipped file
     modes: dict[str, int] = field(default_factory=dict)  # files per image mode as saved, for a folder
-    whole: Decoded | None = field(default=None, repr=False)  # all images before splitting, for save_decoded
     cache_key: str = ""  # what the source looked like when decoded (see `save_decoded`)
 
     @property
     def num_classes(self) -> int:
         return len(self.class_names)
+
+    @property
+    def count(self) -> int:
+        """Images in the three parts together."""
+        return sum(len(i) for i in self.indices.values())
+
+    def rows(self, start: int, stop: int, images: bool = True) -> tuple[np.ndarray | None, np.ndarray]:
+        """Images (unless `images` is false) and labels start..stop-1 in the source's own order, from the parts."""
+        count = stop - start
+        out = np.empty((count, *self.train.images.shape[1:]), np.uint8) if images else None
+        labels = np.empty(count, np.int64)
+        for name, where in self.indices.items():
+            inside = (where >= start) & (where < stop)
+            part = getattr(self, name)
+            labels[where[inside] - start] = part.labels[inside]
+            if out is not None:
+                out[where[inside] - start] = part.images[inside]
+        return out, labels
+
+    @property
+    def covers_all(self) -> bool:
+        """Whether the parts hold every image of the source (a stored split might leave some out)."""
+        every = np.concatenate(list(self.indices.values()))
+        return len(every) > 0 and int(every.max()) + 1 == len(every)
 
 
 def _check_shape(input_shape: tuple[int, int, int]) -> tuple[int, int, int]:
@@ -168,11 +194,11 @@ def _cache_key(source: str, shape: tuple[int, int, int], skip_unreadable: bool) 
     return hashlib.sha256(text.encode()).hexdigest()[:24]
 
 
-_CACHE: dict[str, tuple[Decoded, str]] = {}  # decoded sources by cache key, so a second load skips decoding
+_CACHE: dict[str, Dataset] = {}  # the last loads' parts by cache key, shared by a second load of the same data
 _CACHE_SIZE = 2  # sources kept; a data set may be large
 
 
-def _read_saved(folder: Path | None, key: str) -> tuple[Decoded, str] | None:
+def _read_saved(folder: Path | None, key: str, shape: tuple[int, int, int]) -> tuple[Decoded, str] | None:
     """The copy kept in `folder` by save_decoded, if it was made from the files as they are now."""
     path = None if folder is None else Path(folder) / CACHE_FILE
     if path is None or not path.is_file():
@@ -186,11 +212,39 @@ def _read_saved(folder: Path | None, key: str) -> tuple[Decoded, str] | None:
             decoded = Decoded(saved["images"], saved["labels"], tuple(str(n) for n in saved["class_names"]),
                               tuple(str(u) for u in saved["unreadable"]), modes)
             fingerprint = str(saved["fingerprint"])
+        if decoded.images.shape[1:] != shape or len(decoded.images) != len(decoded.labels):
+            raise ValueError(f"it holds images of shape {decoded.images.shape}, not N×{'×'.join(map(str, shape))}")
     except (OSError, ValueError, KeyError, EOFError, zipfile.BadZipFile) as err:
         log.warning("cannot read the decoded copy %s (%s); decoding again", path, err)
         return None
     log.info("read %d decoded images from %s", len(decoded.labels), path)
     return decoded, fingerprint
+
+
+def _saved_key(path: Path) -> str | None:
+    try:
+        with np.load(path, allow_pickle=False) as saved:
+            return str(saved["key"])
+    except (OSError, ValueError, KeyError, EOFError, zipfile.BadZipFile):
+        return None  # missing or unreadable: to be written anew
+
+
+def _write_decoded(handle: BinaryIO, dataset: Dataset, step: int = 4096) -> None:
+    """An .npz (as numpy.savez writes it) whose images are gathered from the parts a few thousand at a time,
+    so saving never needs a second full copy of the images in memory."""
+    count = dataset.count
+    small = {"labels": dataset.rows(0, count, images=False)[1], "class_names": np.array(dataset.class_names, dtype=str),
+             "unreadable": np.array(dataset.unreadable, dtype=str), "modes": np.array(json.dumps(dataset.modes)),
+             "key": np.array(dataset.cache_key), "fingerprint": np.array(dataset.fingerprint)}
+    with zipfile.ZipFile(handle, "w", zipfile.ZIP_STORED, allowZip64=True) as archive:
+        for name, array in small.items():
+            with archive.open(f"{name}.npy", "w", force_zip64=True) as member:
+                np.lib.format.write_array(member, array, allow_pickle=False)
+        with archive.open("images.npy", "w", force_zip64=True) as member:
+            shape = (count, *dataset.train.images.shape[1:])
+            np.lib.format.write_array_header_1_0(member, {"descr": "|u1", "fortran_order": False, "shape": shape})
+            for start in range(0, count, step):
+                member.write(dataset.rows(start, min(start + step, count))[0].tobytes())
 
 
 def save_decoded(folder: str | Path, dataset: Dataset) -> Path | None:
@@ -199,19 +253,11 @@ def save_decoded(folder: str | Path, dataset: Dataset) -> Path | None:
     folder = Path(folder)
     if dataset.unreadable:
         write_atomic(folder / UNREADABLE_FILE, "".join(f"{line}\n" for line in dataset.unreadable))
-    whole, path = dataset.whole, folder / CACHE_FILE
-    if whole is None or not dataset.cache_key:
+    path = folder / CACHE_FILE
+    if not dataset.cache_key or not dataset.covers_all:
         return None
-    try:
-        with np.load(path, allow_pickle=False) as saved:
-            if str(saved["key"]) == dataset.cache_key:
-                return path
-    except (OSError, ValueError, KeyError, EOFError, zipfile.BadZipFile):
-        pass  # missing or unreadable: write it anew
-    arrays = {"images": whole.images, "labels": whole.labels, "class_names": np.array(whole.class_names, dtype=str),
-              "unreadable": np.array(whole.unreadable, dtype=str), "modes": np.array(json.dumps(whole.modes)),
-              "key": np.array(dataset.cache_key), "fingerprint": np.array(dataset.fingerprint)}
-    write_atomic(path, lambda handle: np.savez(handle, **arrays))
+    if _saved_key(path) != dataset.cache_key:
+        write_atomic(path, lambda handle: _write_decoded(handle, dataset))
     return path
 
 
@@ -223,32 +269,46 @@ def load_dataset(source: str | Path, input_shape: tuple[int, int, int], *, seed:
 
     The decoded bytes come from this process's last loads or from `cache` (a folder that
     `save_decoded` wrote to) while the files are unchanged; otherwise the source is decoded
-    (a folder by `workers` threads). Nothing is written here. Each Dataset gets its own copies of the parts.
+    (a folder by `workers` threads). Nothing is written here. A load with the same split as an
+    earlier one in this process shares its parts; another split is cut from them anew.
     """
     source = str(source)
     shape = _check_shape(input_shape)
     key = _cache_key(source, shape, skip_unreadable)
-    if key not in _CACHE:
-        found = _read_saved(None if cache is None else Path(cache), key)
-        if found is None:
-            decoded = decode(source, shape, skip_unreadable, workers)
-            found = decoded, fingerprint_of(decoded.images, decoded.labels)
-        while len(_CACHE) >= _CACHE_SIZE:
-            _CACHE.pop(next(iter(_CACHE)))
-        _CACHE[key] = found
-    whole, found_fingerprint = _CACHE[key]
-    if fingerprint is not None and fingerprint != found_fingerprint:
-        raise SearcherError(f"data fingerprint {found_fingerprint} differs from the stored {fingerprint}; the data "
+    known = _CACHE.get(key)
+    if known is not None:  # images are gathered from its parts only if the split differs
+        whole = Decoded(None, known.rows(0, known.count, images=False)[1], known.class_names, known.unreadable,
+                        known.modes)
+        found = known.fingerprint
+    else:
+        saved = _read_saved(None if cache is None else Path(cache), key, shape)
+        if saved is None:
+            whole = decode(source, shape, skip_unreadable, workers)
+            found = fingerprint_of(whole.images, whole.labels)
+        else:
+            whole, found = saved
+    if fingerprint is not None and fingerprint != found:
+        raise SearcherError(f"data fingerprint {found} differs from the stored {fingerprint}; the data "
                             "has changed since the split was made", file=None if source == "demo" else source,
                             key="fingerprint")
     if split is None:
         indices = split_indices(whole.labels, seed, fractions, class_names=whole.class_names)
     else:
         indices = check_split(split, len(whole.labels))
-    parts = {p: Split(whole.images[i], whole.labels[i]) for p, i in indices.items()}
-    return Dataset(**parts, class_names=whole.class_names, source=source, fingerprint=found_fingerprint,
-                   skipped=len(whole.unreadable), indices=indices, unreadable=whole.unreadable, modes=whole.modes,
-                   whole=whole, cache_key=key)
+    if known is not None and all(np.array_equal(indices[p], known.indices[p]) for p in PARTS):
+        parts = {p: getattr(known, p) for p in PARTS}  # the same split again: share the parts
+    else:
+        images = whole.images if whole.images is not None else known.rows(0, known.count)[0]
+        parts = {p: Split(images[i], whole.labels[i]) for p, i in indices.items()}
+    dataset = Dataset(**parts, class_names=whole.class_names, source=source, fingerprint=found,
+                      skipped=len(whole.unreadable), indices=indices, unreadable=whole.unreadable, modes=whole.modes,
+                      cache_key=key)
+    if dataset.covers_all:
+        _CACHE.pop(key, None)
+        while len(_CACHE) >= _CACHE_SIZE:
+            _CACHE.pop(next(iter(_CACHE)))
+        _CACHE[key] = dataset
+    return dataset
 
 
 def few_examples(dataset: Dataset, minimum: int = FEW_EXAMPLES) -> list[tuple[str, str, int]]:
