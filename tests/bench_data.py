@@ -8,11 +8,13 @@ Run: python tests/bench_data.py [memory|decode|convert|augment|accuracy|all] [--
   the parts kept), each in a fresh process; also reading back the decoded copy a run folder keeps.
   Goal: a data set costs about its pixel count in bytes.
 - decode: the same folder decoded serially, by threads and by forked processes (runs of 64 files).
-- convert: training images per second on a 3×64×64 candidate, uint8 converted per batch against float32
-  prepared up front (goal: at most 5% slower), one thread, rounds interleaved, median of paired ratios.
+- convert: training images per second, uint8 converted per batch against float32 prepared up front
+  (goal: at most 5% slower), on a 3×64×64 candidate and a small 1×32×32 one, one thread, rounds
+  interleaved, median of paired ratios.
 - augment: the same with augmentation on against off (goal: at least 0.85×).
-- accuracy: test accuracy of fixed candidates retrained with and without augmentation on the demo and on
-  scikit-learn's digits, three seeds each (printed, not a goal).
+- accuracy: fixed candidates with and without augmentation on the demo and on scikit-learn's digits,
+  three seeds each: validation accuracy after the search's 6 epochs, and test accuracy after export's
+  retraining (18 epochs on train+validation). Printed, not a goal.
 The machine may be shared: rounds are interleaved so that outside load falls on both sides alike.
 """
 
@@ -40,7 +42,10 @@ from searcher.data import folder as folder_module  # noqa: E402
 from searcher.data.load import load_dataset, save_decoded  # noqa: E402
 
 SHAPE = (3, 64, 64)
-CONVERT_ARCH = "3x64x64_c16k3-m2_c32k3-m2_c64k3-m2_gap-o10_relu_bn"
+TRAIN_ARCHS = (  # a mid-size RGB candidate, and a small gray one where per-batch work weighs most
+    "3x64x64_c16k3-m2_c32k3-m2_c64k3-m2_gap-o10_relu_bn",
+    "1x32x32_c8k3-m2_c16k3-m2_flat-d32-o10_relu_bn",
+)
 
 
 def make_folder(folder: Path, count: int) -> Path:
@@ -161,23 +166,26 @@ def bench_decode(folder: Path, rounds: int) -> None:
               f"{best['serial'] / seconds:.2f}× serial")
 
 
-def _train_speed(images: object, labels: np.ndarray, settings: object, seed: int) -> float:
+def _train_speed(arch: str, images: object, labels: np.ndarray, settings: object, seed: int) -> float:
     from searcher.core.arch import parse_arch
     from searcher.model.build import build
     from searcher.model.train import train_candidate
 
-    model = build(parse_arch(CONVERT_ARCH))
+    model = build(parse_arch(arch))
     result = train_candidate(model, images, labels, images[:256], labels[:256], settings, seed=seed, threads=1)
     return result.images_per_second
 
 
-def bench_training(kind: str, rounds: int, count: int = 3072) -> None:
+def bench_training(kind: str, rounds: int, arch: str) -> None:
     import torch
 
+    from searcher.core.arch import parse_arch
     from searcher.core.train_settings import AugmentSettings, TrainSettings
 
+    shape = parse_arch(arch).input_shape
+    count = 3072 if shape[0] == 3 else 12288  # about the same seconds per round for either candidate
     rng = np.random.default_rng(0)
-    images = rng.integers(0, 256, (count, *SHAPE), dtype=np.uint8)
+    images = rng.integers(0, 256, (count, *shape), dtype=np.uint8)
     labels = (np.arange(count) % 10).astype(np.int64)
     plain = TrainSettings(epochs=1, batch_size=128)
     if kind == "convert":
@@ -193,10 +201,10 @@ def bench_training(kind: str, rounds: int, count: int = 3072) -> None:
     speeds: dict[str, list[float]] = {s: [] for s in sides}
     for r in range(rounds + 1):  # round 0 warms up and is not counted
         for side, (x, settings) in sides.items():
-            speed = _train_speed(x, labels, settings, seed=r)
+            speed = _train_speed(arch, x, labels, settings, seed=r)
             if r:
                 speeds[side].append(speed)
-    print(f"\n{kind}: {CONVERT_ARCH}, {count:,} images, batch 128, 1 thread, {rounds} rounds (goal {goal})")
+    print(f"\n{kind}: {arch}, {count:,} images, batch 128, 1 thread, {rounds} rounds (goal {goal})")
     for side in sides:
         ratios = [s / b for s, b in zip(speeds[side], speeds[base])]
         print(f"  {side:18} median {statistics.median(speeds[side]):7.0f} images/s   "
@@ -230,24 +238,28 @@ def bench_accuracy(folder: Path, seeds: int) -> None:
     from searcher.model.build import build
     from searcher.model.train import evaluate_scores, train_candidate
 
-    print(f"\naccuracy: test accuracy after retraining on train+val (export's way), seeds 0-{seeds - 1}")
+    print(f"\naccuracy, seeds 0-{seeds - 1}: the search's view (6 epochs on train, validation accuracy) and "
+          "export's (retrained on train+val, test accuracy)")
     for name, (source, arch_text, epochs, choices) in ACCURACY_SETS.items():
         arch = parse_arch(arch_text)
         data = load_dataset(str(_digits_npz(folder)) if source == "digits" else source, arch.input_shape)
         images = np.concatenate([data.train.images, data.val.images])
         labels = np.concatenate([data.train.labels, data.val.labels])
-        print(f"  {name}: {arch_text}, {epochs} epochs, {len(labels)} training / {len(data.test.labels)} test images")
+        print(f"  {name}: {arch_text}; {len(data.train.labels)} train, {len(data.val.labels)} validation, "
+              f"{len(data.test.labels)} test images")
         for label, augment in choices.items():
-            settings = TrainSettings(epochs=epochs, augment=AugmentSettings(**augment))
-            found = []
+            proxy, final = [], []
             for seed in range(seeds):
+                settings = TrainSettings(augment=AugmentSettings(**augment))
+                result = train_candidate(build(arch), data.train.images, data.train.labels, data.val.images,
+                                         data.val.labels, settings, seed=seed, threads=1)
+                proxy.append(result.val_accuracy)
                 model = build(arch)
-                train_candidate(model, images, labels, data.val.images, data.val.labels, settings, seed=seed,
-                                threads=1)
-                found.append(evaluate_scores(model, data.test.images, data.test.labels, data.num_classes)[0])
-            accuracy = [s.accuracy for s in found]
-            print(f"    {label:58} test accuracy mean {statistics.mean(accuracy):.4f} "
-                  f"({', '.join(f'{a:.4f}' for a in accuracy)})")
+                train_candidate(model, images, labels, data.val.images, data.val.labels,
+                                TrainSettings(epochs=epochs, augment=settings.augment), seed=seed, threads=1)
+                final.append(evaluate_scores(model, data.test.images, data.test.labels, data.num_classes)[0].accuracy)
+            print(f"    {label:58} search val {statistics.mean(proxy):.4f} ({', '.join(f'{a:.3f}' for a in proxy)})"
+                  f"   export test {statistics.mean(final):.4f} ({', '.join(f'{a:.3f}' for a in final)})")
 
 
 def main() -> None:
@@ -272,10 +284,10 @@ def main() -> None:
         bench_memory(folder, args.images)
     if args.what in ("decode", "all"):
         bench_decode(folder, args.rounds)
-    if args.what in ("convert", "all"):
-        bench_training("convert", args.rounds * 2)
-    if args.what in ("augment", "all"):
-        bench_training("augment", args.rounds * 2)
+    for kind in ("convert", "augment"):
+        if args.what in (kind, "all"):
+            for arch in TRAIN_ARCHS:
+                bench_training(kind, args.rounds * 2, arch)
     if args.what in ("accuracy", "all"):
         bench_accuracy(args.folder, args.seeds)
 

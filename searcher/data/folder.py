@@ -11,7 +11,7 @@ from __future__ import annotations
 import logging
 import os
 import time
-from collections import Counter
+from collections import Counter, deque
 from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass
 from pathlib import Path
@@ -176,11 +176,15 @@ def decode_folder(path: Path, channels: int, h: int, w: int, *, skip_unreadable:
         for rows in chunks:
             take(rows, _read_chunk(files[rows.start:rows.stop], channels, h, w))
     else:
+        ahead = 4 * workers  # runs decoded but not yet copied in: bounds the memory they hold
         with ThreadPoolExecutor(min(workers, len(chunks)), thread_name_prefix="decode") as pool:
-            jobs = [pool.submit(_read_chunk, files[r.start:r.stop], channels, h, w) for r in chunks]
+            jobs = deque(pool.submit(_read_chunk, files[r.start:r.stop], channels, h, w) for r in chunks[:ahead])
             try:
-                for rows, job in zip(chunks, jobs):
-                    take(rows, job.result())
+                for i, rows in enumerate(chunks):
+                    take(rows, jobs.popleft().result())
+                    if i + ahead < len(chunks):
+                        later = chunks[i + ahead]
+                        jobs.append(pool.submit(_read_chunk, files[later.start:later.stop], channels, h, w))
             finally:
                 for job in jobs:
                     job.cancel()
