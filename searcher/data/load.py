@@ -276,33 +276,33 @@ def load_dataset(source: str | Path, input_shape: tuple[int, int, int], *, seed:
     shape = _check_shape(input_shape)
     key = _cache_key(source, shape, skip_unreadable)
     known = _CACHE.get(key)
-    if known is not None:  # images are gathered from its parts only if the split differs
-        whole = Decoded(None, known.rows(0, known.count, images=False)[1], known.class_names, known.unreadable,
-                        known.modes)
-        found = known.fingerprint
+    images: np.ndarray | None = None  # for a known source, gathered from its parts only if the split differs
+    if known is not None:
+        labels, names, found = known.rows(0, known.count, images=False)[1], known.class_names, known.fingerprint
+        unreadable, modes = known.unreadable, known.modes
     else:
         saved = _read_saved(None if cache is None else Path(cache), key, shape)
         if saved is None:
-            whole = decode(source, shape, skip_unreadable, workers)
-            found = fingerprint_of(whole.images, whole.labels)
-        else:
-            whole, found = saved
+            decoded = decode(source, shape, skip_unreadable, workers)
+            saved = decoded, fingerprint_of(decoded.images, decoded.labels)
+        whole, found = saved
+        images, labels, names, unreadable, modes = (whole.images, whole.labels, whole.class_names, whole.unreadable,
+                                                    whole.modes)
     if fingerprint is not None and fingerprint != found:
         raise SearcherError(f"data fingerprint {found} differs from the stored {fingerprint}; the data "
                             "has changed since the split was made", file=None if source == "demo" else source,
                             key="fingerprint")
     if split is None:
-        indices = split_indices(whole.labels, seed, fractions, class_names=whole.class_names)
+        indices = split_indices(labels, seed, fractions, class_names=names)
     else:
-        indices = check_split(split, len(whole.labels))
+        indices = check_split(split, len(labels))
     if known is not None and all(np.array_equal(indices[p], known.indices[p]) for p in PARTS):
         parts = {p: getattr(known, p) for p in PARTS}  # the same split again: share the parts
     else:
-        images = whole.images if whole.images is not None else known.rows(0, known.count)[0]
-        parts = {p: Split(images[i], whole.labels[i]) for p, i in indices.items()}
-    dataset = Dataset(**parts, class_names=whole.class_names, source=source, fingerprint=found,
-                      skipped=len(whole.unreadable), indices=indices, unreadable=whole.unreadable, modes=whole.modes,
-                      cache_key=key)
+        images = images if images is not None else known.rows(0, known.count)[0]
+        parts = {p: Split(images[i], labels[i]) for p, i in indices.items()}
+    dataset = Dataset(**parts, class_names=names, source=source, fingerprint=found, skipped=len(unreadable),
+                      indices=indices, unreadable=unreadable, modes=modes, cache_key=key)
     if dataset.covers_all:
         _CACHE.pop(key, None)
         while len(_CACHE) >= _CACHE_SIZE:

@@ -124,19 +124,20 @@ def predict(model: nn.Module, images: Images, batch_size: int = 512,
 
 def evaluate(model: nn.Module, images: Images, labels: Images, batch_size: int = 512) -> tuple[float, torch.Tensor]:
     """Accuracy and predicted class per image, for validation and for export's test figures; mode restored."""
-    if len(images) != len(labels) or len(labels) == 0:
-        raise ValueError(f"need as many labels as images, at least one: {len(images)} images, {len(labels)} labels")
-    predictions = predict(model, images, batch_size)
-    return (predictions == as_tensor(labels)).float().mean().item(), predictions
+    found, predictions = evaluate_scores(model, images, labels, None, batch_size)
+    return found.accuracy, predictions
 
 
-def evaluate_scores(model: nn.Module, images: Images, labels: Images, classes: int,
+def evaluate_scores(model: nn.Module, images: Images, labels: Images, classes: int | None = None,
                     batch_size: int = 512) -> tuple[Scores, torch.Tensor]:
-    """Accuracy, balanced accuracy and recall per class (of `classes`), and the predictions."""
+    """Accuracy, balanced accuracy and recall per class (of `classes`; default: the largest class number seen,
+    plus one), and the predicted class per image; the model's mode is restored."""
     if len(images) != len(labels) or len(labels) == 0:
         raise ValueError(f"need as many labels as images, at least one: {len(images)} images, {len(labels)} labels")
-    predictions = predict(model, images, batch_size)
-    return scores(as_tensor(labels).numpy(), predictions.numpy(), classes), predictions
+    predictions = predict(model, images, batch_size).numpy()
+    truth = as_tensor(labels).numpy()
+    classes = classes or int(max(truth.max(), predictions.max())) + 1
+    return scores(truth, predictions, classes), torch.from_numpy(predictions)
 
 
 def train_candidate(
