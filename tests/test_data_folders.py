@@ -228,3 +228,14 @@ def test_the_capsule_example_folder_loads_with_its_rare_classes_reported(tmp_pat
     assert data.class_names == ("cracked", "empty", "ok") and sum(data.modes.values()) == sum(counts.values())
     assert set(data.modes) <= {"RGB"}  # PNGs and JPEGs alike decode as RGB
     assert {name for _, name, _ in few_examples(data)} == {"cracked", "empty"}
+
+
+def test_the_data_layer_loads_without_torch(tmp_path):
+    import subprocess
+    import sys
+
+    _classes(tmp_path, {"a": 3, "b": 3})
+    code = ("import sys; from searcher.data.load import load_dataset, save_decoded; "
+            f"d = load_dataset({str(tmp_path)!r}, (3, 8, 8)); save_decoded({str(tmp_path / 'run')!r}, d); "
+            "assert 'torch' not in sys.modules, 'torch was imported'")
+    subprocess.run([sys.executable, "-c", code], check=True, cwd=Path(__file__).resolve().parents[1])
