@@ -239,3 +239,30 @@ def test_the_data_layer_loads_without_torch(tmp_path):
             f"d = load_dataset({str(tmp_path)!r}, (3, 8, 8)); save_decoded({str(tmp_path / 'run')!r}, d); "
             "assert 'torch' not in sys.modules, 'torch was imported'")
     subprocess.run([sys.executable, "-c", code], check=True, cwd=Path(__file__).resolve().parents[1])
+
+
+def _png_rgb16(path: Path, pixels: np.ndarray) -> None:
+    """A 16-bit-per-channel RGB PNG written by hand (Pillow writes none): signature, IHDR, IDAT, IEND."""
+    import struct
+    import zlib
+
+    def chunk(kind: bytes, data: bytes) -> bytes:
+        return struct.pack(">I", len(data)) + kind + data + struct.pack(">I", zlib.crc32(kind + data))
+
+    h, w, _ = pixels.shape
+    rows = b"".join(b"\x00" + pixels[y].astype(">u2").tobytes() for y in range(h))  # filter type 0 per row
+    header = struct.pack(">IIBBBBB", w, h, 16, 2, 0, 0, 0)  # 16 bits, colour type 2 (RGB), PNG spec 11.2.2
+    path.write_bytes(b"\x89PNG\r\n\x1a\n" + chunk(b"IHDR", header) + chunk(b"IDAT", zlib.compress(rows))
+                     + chunk(b"IEND", b""))
+
+
+def test_16_bit_rgb_png_is_scaled_not_clipped(tmp_path):
+    deep = (np.arange(6 * 5 * 3).reshape(6, 5, 3) * 727).astype(np.uint16)  # 0 to 65,169
+    for cls in ("a", "b"):
+        (tmp_path / cls).mkdir()
+        for i in range(3):
+            _png_rgb16(tmp_path / cls / f"{i}.png", deep)
+    images = load_arrays(str(tmp_path), (3, 6, 5))[0]
+    # Pillow reads 16-bit RGB as 8-bit RGB keeping the high byte; within one level of value / 257.
+    assert np.array_equal(images[0], (deep >> 8).astype(np.uint8).transpose(2, 0, 1))
+    assert np.abs(images[0].astype(int) - np.round(deep / 257).transpose(2, 0, 1)).max() <= 1
