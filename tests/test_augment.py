@@ -110,13 +110,13 @@ def test_augment_table_in_a_space_file(tmp_path, write_space):
 
 def test_augmentation_touches_training_batches_only(monkeypatch):
     seen: list[int] = []
-    original = Augmenter.before_float
+    original = Augmenter.remap
 
-    def spy(self, batch):
-        seen.append(len(batch))
-        return original(self, batch)
+    def spy(self, n, h, w):
+        seen.append(n)
+        return original(self, n, h, w)
 
-    monkeypatch.setattr(augment_module.Augmenter, "before_float", spy)
+    monkeypatch.setattr(augment_module.Augmenter, "remap", spy)
     rng = np.random.default_rng(0)
     images = rng.integers(0, 256, (96, 1, 8, 8), dtype=np.uint8)
     labels = np.arange(96) % 3
@@ -137,3 +137,20 @@ def test_augmented_training_repeats_by_seed():
         train_candidate(model, images, labels, images, labels, settings, seed=seed, threads=1)
         weights.append(torch.cat([p.detach().flatten() for p in model.parameters()]))
     assert torch.equal(weights[0], weights[1]) and not torch.equal(weights[0], weights[2])
+
+
+def test_batches_cut_from_pixel_major_bytes_with_a_remap_equal_the_plain_gathers():
+    # The trainer folds shift and flip into the copy that cuts a batch from pixel-major bytes; the
+    # result must equal cutting the batch plainly and then shifting (numpy-checked shift_edge above).
+    from searcher.data.layout import pixel_major
+    from searcher.model.train import Batches
+
+    images = pixel_major(_pattern(n=10, c=3, h=7, w=6))
+    batches = Batches(torch.from_numpy(images), torch.channels_last)
+    index = torch.tensor([4, 0, 9, 4])
+    augmenter = Augmenter(AugmentSettings(shift=2, flip=True), seed=11)
+    remap = augmenter.remap(4, 7, 6)
+    got = batches(index, remap)
+    plain = torch.from_numpy(np.ascontiguousarray(images))[index]
+    assert got.is_contiguous(memory_format=torch.channels_last)
+    assert torch.equal(got, augment_module.remap_images(plain, remap)) and torch.equal(batches(index), plain)

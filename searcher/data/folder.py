@@ -18,6 +18,7 @@ from pathlib import Path
 
 import numpy as np
 
+from searcher.data import layout
 from searcher.errors import SearcherError
 
 log = logging.getLogger(__name__)
@@ -34,7 +35,7 @@ PROGRESS_AFTER = 2.0  # seconds of loading before a progress line is logged, and
 class Decoded:
     """A folder's images as bytes, with what was noticed on the way."""
 
-    images: np.ndarray  # uint8 N×C×H×W
+    images: np.ndarray  # uint8 N×C×H×W, laid out pixel-major (see searcher.data.layout)
     labels: np.ndarray  # int64 N, the class folder's position in sorted order
     class_names: tuple[str, ...]  # sub-folder names, sorted
     unreadable: tuple[str, ...]  # "path: reason" for each file skipped
@@ -153,7 +154,7 @@ def decode_folder(path: Path, channels: int, h: int, w: int, *, skip_unreadable:
     classes = class_folders(path)
     files = [f for _, members in classes for f in members]
     labels = np.concatenate([np.full(len(m), k, np.int64) for k, (_, m) in enumerate(classes)])
-    images = np.empty((len(files), channels, h, w), np.uint8)  # the one full-size allocation
+    images = layout.empty(len(files), channels, h, w)  # the one full-size allocation
     modes: Counter[str] = Counter()
     failed: list[tuple[int, str]] = []
     progress = Progress(f"decoding images in {path}", len(files))
@@ -162,7 +163,7 @@ def decode_folder(path: Path, channels: int, h: int, w: int, *, skip_unreadable:
 
     def take(rows: range, decoded: tuple[np.ndarray, list[str], list[str | None]]) -> None:
         pixels, chunk_modes, errors = decoded
-        images[rows.start:rows.stop] = pixels.transpose(0, 3, 1, 2)
+        np.moveaxis(images, 1, 3)[rows.start:rows.stop] = pixels  # pixel-major: rows of bytes as decoded
         modes.update(m for m in chunk_modes if m)
         for row, error in zip(rows, errors):
             if error is not None:
@@ -197,7 +198,7 @@ def decode_folder(path: Path, channels: int, h: int, w: int, *, skip_unreadable:
     unreadable = tuple(f"{files[row]}: {error}" for row, error in failed)
     if failed:
         log.warning("skipped %d unreadable image file(s) in %s, first: %s", len(failed), path, unreadable[0])
-        images, labels = images[keep], labels[keep]
+        images, labels = layout.take(images, keep), labels[keep]
     if len(modes) > 1:
         log.info("converted images from %d modes to %s: %s", len(modes), MODES[channels],
                  ", ".join(f"{count:,} {mode}" for mode, count in modes.most_common()))

@@ -22,6 +22,7 @@ from typing import BinaryIO
 
 import numpy as np
 
+from searcher.data import layout
 from searcher.data.demo import make_demo
 from searcher.data.folder import MODES, Decoded, decode_folder, default_workers
 from searcher.data.npz import read_npz
@@ -44,7 +45,7 @@ FEW_EXAMPLES = 10  # validation or test images per class below which its score i
 class Split:
     """One part of the data, in memory; shared by the Datasets of one process, so never changed in place."""
 
-    images: np.ndarray  # uint8 N×C×H×W, 0–255
+    images: np.ndarray  # uint8 N×C×H×W, 0–255, laid out pixel-major (see searcher.data.layout)
     labels: np.ndarray  # int64 N, class numbers 0..K-1
 
 
@@ -76,7 +77,7 @@ class Dataset:
     def rows(self, start: int, stop: int, images: bool = True) -> tuple[np.ndarray | None, np.ndarray]:
         """Images (unless `images` is false) and labels start..stop-1 in the source's own order, from the parts."""
         count = stop - start
-        out = np.empty((count, *self.train.images.shape[1:]), np.uint8) if images else None
+        out = layout.empty(count, *self.train.images.shape[1:]) if images else None
         labels = np.empty(count, np.int64)
         for name, where in self.indices.items():
             inside = (where >= start) & (where < stop)
@@ -112,17 +113,19 @@ def resize_images(images: np.ndarray, h: int, w: int) -> np.ndarray:
     if images.shape[-2:] == (h, w):
         return images
     log.info("resizing %d images from %d×%d to %d×%d", len(images), images.shape[-2], images.shape[-1], h, w)
-    planes = np.ascontiguousarray(images).reshape(-1, *images.shape[-2:])
-    out = np.empty((len(planes), h, w), np.uint8)
+    count, channels = images.shape[:2]
+    out = layout.empty(count, channels, h, w)
 
     def run(rows: range) -> None:
         for i in rows:
-            out[i] = np.asarray(Image.fromarray(planes[i]).resize((w, h), Image.Resampling.BILINEAR))
+            n, c = divmod(i, channels)
+            plane = np.ascontiguousarray(images[n, c])
+            out[n, c] = np.asarray(Image.fromarray(plane).resize((w, h), Image.Resampling.BILINEAR))
 
-    step = 1024
+    planes, step = count * channels, 1024
     with ThreadPoolExecutor(default_workers()) as pool:
-        list(pool.map(run, [range(i, min(i + step, len(planes))) for i in range(0, len(planes), step)]))
-    return out.reshape(*images.shape[:2], h, w)
+        list(pool.map(run, [range(i, min(i + step, planes)) for i in range(0, planes, step)]))
+    return out
 
 
 def _demo(shape: tuple[int, int, int]) -> Decoded:
@@ -133,7 +136,7 @@ def _demo(shape: tuple[int, int, int]) -> Decoded:
                             f"is {h}×{w}; choose an input size in that range, or give your own data",
                             key="input.size")
     gray, labels, names = make_demo(DEMO_COUNT, (h, w), DEMO_SEED)
-    images = np.ascontiguousarray(np.broadcast_to(gray[:, None], (len(gray), channels, h, w)))
+    images = layout.pixel_major(np.broadcast_to(gray[:, None], (len(gray), channels, h, w)))
     return Decoded(images, labels, names, (), {})
 
 
@@ -170,10 +173,10 @@ def load_arrays(source: str | Path, input_shape: tuple[int, int, int],
 
 def fingerprint_of(images: np.ndarray, labels: np.ndarray) -> str:
     """Short sha256 over the decoded images and labels (and their shapes and types)."""
-    images, labels = np.ascontiguousarray(images), np.ascontiguousarray(labels)
     digest = hashlib.sha256(repr((images.shape, str(images.dtype), labels.shape)).encode())
-    for array in (images, labels.astype(np.int64)):
-        digest.update(memoryview(array).cast("B"))
+    for start in range(0, len(images), 1024):  # the bytes in N×C×H×W order, however they lie in memory
+        digest.update(memoryview(np.ascontiguousarray(images[start:start + 1024])).cast("B"))
+    digest.update(memoryview(np.ascontiguousarray(labels, dtype=np.int64)).cast("B"))
     return digest.hexdigest()[:16]
 
 
@@ -300,7 +303,7 @@ def load_dataset(source: str | Path, input_shape: tuple[int, int, int], *, seed:
         parts = {p: getattr(known, p) for p in PARTS}  # the same split again: share the parts
     else:
         images = images if images is not None else known.rows(0, known.count)[0]
-        parts = {p: Split(images[i], labels[i]) for p, i in indices.items()}
+        parts = {p: Split(layout.take(images, i), labels[i]) for p, i in indices.items()}
     dataset = Dataset(**parts, class_names=names, source=source, fingerprint=found, skipped=len(unreadable),
                       indices=indices, unreadable=unreadable, modes=modes, cache_key=key)
     if dataset.covers_all:

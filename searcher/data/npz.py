@@ -13,6 +13,7 @@ from pathlib import Path
 
 import numpy as np
 
+from searcher.data import layout
 from searcher.data.folder import MODES
 from searcher.errors import SearcherError
 
@@ -179,4 +180,4 @@ def read_npz(path: Path, channels: int) -> tuple[np.ndarray, np.ndarray, tuple[s
                             file=path, key="class_names")
     images = channels_first(raw, channels, path, image_key)
     labels, names = check_labels(labels, len(images), names, path, label_key)
-    return np.ascontiguousarray(to_bytes(images, path, image_key)), labels, names
+    return layout.pixel_major(to_bytes(images, path, image_key)), labels, names
