@@ -266,3 +266,18 @@ def test_16_bit_rgb_png_is_scaled_not_clipped(tmp_path):
     # Pillow reads 16-bit RGB as 8-bit RGB keeping the high byte; within one level of value / 257.
     assert np.array_equal(images[0], (deep >> 8).astype(np.uint8).transpose(2, 0, 1))
     assert np.abs(images[0].astype(int) - np.round(deep / 257).transpose(2, 0, 1)).max() <= 1
+
+
+def test_parts_lie_pixel_major_and_read_as_plain_n_c_h_w(tmp_path):
+    from searcher.data import layout
+
+    _classes(tmp_path, {"a": 6, "b": 6})
+    data = load_dataset(str(tmp_path), (3, 8, 8))
+    for part in (data.train, data.val, data.test):
+        assert np.moveaxis(part.images, 1, 3).flags.c_contiguous  # each pixel's channels side by side
+    plain = np.arange(5 * 3 * 4 * 2, dtype=np.uint8).reshape(5, 3, 4, 2)
+    assert np.array_equal(layout.pixel_major(plain), plain) and np.array_equal(layout.take(plain, [3, 1]), plain[[3, 1]])
+    # The fingerprint reads the N×C×H×W values, however they lie in memory.
+    from searcher.data.load import fingerprint_of
+
+    assert fingerprint_of(layout.pixel_major(plain), np.arange(5)) == fingerprint_of(plain, np.arange(5))
