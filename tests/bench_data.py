@@ -39,6 +39,7 @@ ROOT = Path(__file__).resolve().parents[1]
 sys.path.insert(0, str(ROOT))  # run from a checkout without installing
 
 from searcher.data import folder as folder_module  # noqa: E402
+from searcher.data.layout import concatenate  # noqa: E402
 from searcher.data.load import load_dataset, save_decoded  # noqa: E402
 
 SHAPE = (3, 64, 64)
@@ -243,7 +244,7 @@ def bench_accuracy(folder: Path, seeds: int) -> None:
     for name, (source, arch_text, epochs, choices) in ACCURACY_SETS.items():
         arch = parse_arch(arch_text)
         data = load_dataset(str(_digits_npz(folder)) if source == "digits" else source, arch.input_shape)
-        images = np.concatenate([data.train.images, data.val.images])
+        images = concatenate([data.train.images, data.val.images])
         labels = np.concatenate([data.train.labels, data.val.labels])
         print(f"  {name}: {arch_text}; {len(data.train.labels)} train, {len(data.val.labels)} validation, "
               f"{len(data.test.labels)} test images")

@@ -277,6 +277,8 @@ def test_parts_lie_pixel_major_and_read_as_plain_n_c_h_w(tmp_path):
         assert np.moveaxis(part.images, 1, 3).flags.c_contiguous  # each pixel's channels side by side
     plain = np.arange(5 * 3 * 4 * 2, dtype=np.uint8).reshape(5, 3, 4, 2)
     assert np.array_equal(layout.pixel_major(plain), plain) and np.array_equal(layout.take(plain, [3, 1]), plain[[3, 1]])
+    joined = layout.concatenate([layout.pixel_major(plain), plain[:2]])
+    assert np.array_equal(joined, np.concatenate([plain, plain[:2]])) and np.moveaxis(joined, 1, 3).flags.c_contiguous
     # The fingerprint reads the N×C×H×W values, however they lie in memory.
     from searcher.data.load import fingerprint_of
 

@@ -25,3 +25,8 @@ def pixel_major(images: np.ndarray) -> np.ndarray:
 def take(images: np.ndarray, rows: np.ndarray) -> np.ndarray:
     """Images `rows` (N×C×H×W), laid out pixel-major: a copy of whole pixel-major rows."""
     return np.moveaxis(np.moveaxis(images, 1, 3)[rows], 3, 1)
+
+
+def concatenate(parts: list[np.ndarray]) -> np.ndarray:
+    """Images of several arrays (N×C×H×W) in one, laid out pixel-major; no transposing if they already are."""
+    return np.moveaxis(np.concatenate([np.moveaxis(p, 1, 3) for p in parts]), 3, 1)

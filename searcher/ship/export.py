@@ -72,6 +72,7 @@ def choose(frame: Any, budget: Budget, settings: ExportSettings, classes: int) -
 def export(settings: ExportSettings) -> ExportOutcome:
     """Retrain on train+validation, test once on the held-out split, and write runs/<name>/export/."""
     from searcher.model.build import build
+    from searcher.data.layout import concatenate
     from searcher.data.load import load_dataset, load_split
     from searcher.results.records import trials_frame
     from searcher.study.run import RunData
@@ -95,7 +96,7 @@ def export(settings: ExportSettings) -> ExportOutcome:
     base = TrainSettings(**config.train)
     epochs = settings.epochs or max(10, 3 * base.epochs)
     train_settings = replace(base, epochs=epochs, train_fraction=1.0)
-    images = np.concatenate([data.train.images, data.val.images])
+    images = concatenate([data.train.images, data.val.images])  # stays pixel-major: batches need no transposing
     labels = np.concatenate([data.train.labels, data.val.labels])
     model = build(arch)
     started = time.time()
