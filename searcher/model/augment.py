@@ -1,8 +1,9 @@
 """Random changes to training batches, in batched tensor operations on the CPU.
 
 Each batch is changed as a whole: one draw of every random number per image from the candidate's own
-generator, then a few tensor operations over the batch (an index gather for whole-pixel shifts, one
-resampling for rotation and zoom, arithmetic for brightness and contrast). Edges are repeated into
+generator, then a few tensor operations over the batch (whole-pixel shift and flip as a map of source
+pixels that the trainer folds into the copy cutting the batch, one resampling for rotation and zoom,
+arithmetic for brightness and contrast). Edges are repeated into
 whatever a move uncovers, as a camera would see more of the same background. The trainer calls this on
 training batches only; validation and test images are never changed.
 """
