@@ -9,10 +9,12 @@ mixed files is visible instead of silently coerced. 16-bit images are scaled to 
 from __future__ import annotations
 
 import logging
+import multiprocessing
 import os
+import sys
 import time
 from collections import Counter, deque
-from concurrent.futures import ThreadPoolExecutor
+from concurrent.futures import Executor, ProcessPoolExecutor, ThreadPoolExecutor
 from dataclasses import dataclass
 from pathlib import Path
 
@@ -136,11 +138,18 @@ def _duration(seconds: float) -> str:
 
 
 def default_workers() -> int:
-    """Threads for decoding: one per core this process may use (Pillow releases the GIL while decoding)."""
+    """Decoding workers: one per core this process may use."""
     try:
         return max(1, len(os.sched_getaffinity(0)))
     except AttributeError:  # not on Linux
         return max(1, os.cpu_count() or 1)
+
+
+def _pool(workers: int) -> Executor:
+    """Forked processes where Linux offers them, threads elsewhere (see decode_folder)."""
+    if sys.platform == "linux" and "fork" in multiprocessing.get_all_start_methods():
+        return ProcessPoolExecutor(workers, mp_context=multiprocessing.get_context("fork"))
+    return ThreadPoolExecutor(workers, thread_name_prefix="decode")
 
 
 def decode_folder(path: Path, channels: int, h: int, w: int, *, skip_unreadable: bool = False,
@@ -149,7 +158,11 @@ def decode_folder(path: Path, channels: int, h: int, w: int, *, skip_unreadable:
 
     Unreadable files stop the load with the file named, or are skipped and listed with
     `skip_unreadable`; a class left with no readable image is refused by name either way.
-    `workers` threads decode runs of CHUNK files (None: one per core; 1: in this thread).
+    `workers` decode runs of CHUNK files (None: one per core; 1: in this process). They are forked
+    processes where the system forks (Linux), threads elsewhere: per file, Pillow spends much of its
+    time in Python (opening, reading PNG chunks), which threads share one at a time. Measured on
+    20,000 RGB 64×64 PNGs with 2 cores (tests/bench_data.py decode, two runs): processes 1.29-1.67×,
+    threads 0.92-1.26× the serial rate. The children only decode files; they never touch torch.
     """
     classes = class_folders(path)
     files = [f for _, members in classes for f in members]
@@ -178,7 +191,7 @@ def decode_folder(path: Path, channels: int, h: int, w: int, *, skip_unreadable:
             take(rows, _read_chunk(files[rows.start:rows.stop], channels, h, w))
     else:
         ahead = 4 * workers  # runs decoded but not yet copied in: bounds the memory they hold
-        with ThreadPoolExecutor(min(workers, len(chunks)), thread_name_prefix="decode") as pool:
+        with _pool(min(workers, len(chunks))) as pool:
             jobs = deque(pool.submit(_read_chunk, files[r.start:r.stop], channels, h, w) for r in chunks[:ahead])
             try:
                 for i, rows in enumerate(chunks):
