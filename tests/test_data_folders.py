@@ -103,11 +103,11 @@ def _classes(root: Path, counts: dict[str, int], size: int = 8) -> None:
             Image.fromarray(rng.integers(0, 256, (size, size, 3), dtype=np.uint8)).save(root / name / f"{i:03d}.png")
 
 
-def test_threads_decode_the_same_bytes_in_the_same_order(tmp_path, monkeypatch):
+def test_parallel_workers_decode_the_same_bytes_in_the_same_order(tmp_path, monkeypatch):
     _classes(tmp_path, {"x": 23, "y": 17, "z": 9})
-    monkeypatch.setattr(folder_module, "CHUNK", 4)  # many small runs of files, so both threads take work
+    monkeypatch.setattr(folder_module, "CHUNK", 4)  # many small runs of files, so both workers take work
     serial = decode_folder(tmp_path, 3, 8, 8, workers=1)
-    threaded = decode_folder(tmp_path, 3, 8, 8, workers=2)
+    threaded = decode_folder(tmp_path, 3, 8, 8, workers=2)  # forked processes on Linux
     assert np.array_equal(serial.images, threaded.images) and np.array_equal(serial.labels, threaded.labels)
     assert serial.images.shape == (49, 3, 8, 8) and serial.images.dtype == np.uint8
 
