@@ -5,7 +5,9 @@ from __future__ import annotations
 import os
 import re
 import tempfile
+from collections.abc import Callable
 from pathlib import Path
+from typing import BinaryIO
 
 from searcher.errors import SearcherError, shown
 
@@ -33,13 +35,19 @@ def plain_name(text: str, fallback: str = "space") -> str:
     return name or fallback
 
 
-def write_atomic(path: Path, data: str | bytes) -> Path:
-    """Write a file whole or not at all: a temporary file in the same folder, then a rename."""
+def write_atomic(path: Path, data: str | bytes | Callable[[BinaryIO], object]) -> Path:
+    """Write a file whole or not at all: a temporary file in the same folder, then a rename.
+
+    `data` may be a function that writes to the open file, for contents too large to build in memory first.
+    """
     path.parent.mkdir(parents=True, exist_ok=True)
     fd, tmp = tempfile.mkstemp(dir=path.parent, prefix=f".{path.name}.", suffix=".tmp")
     try:
         with os.fdopen(fd, "wb") as handle:
-            handle.write(data.encode("utf-8") if isinstance(data, str) else data)
+            if callable(data):
+                data(handle)
+            else:
+                handle.write(data.encode("utf-8") if isinstance(data, str) else data)
             handle.flush()
             os.fsync(handle.fileno())  # on disk before the rename, so a power cut leaves old or new
         os.chmod(tmp, 0o644)  # mkstemp makes files private; results are for sharing

@@ -10,7 +10,7 @@ import pytest
 from searcher.core.space import Space
 from searcher.core.space_file import builtin_space, load_space
 
-SHIPPED_SPACES = ("mcu", "workstation", "classic")
+SHIPPED_SPACES = ("mcu", "workstation", "classic", "edge_rgb")
 
 # A tiny but complete space: variable depth and hidden count, 8,064 configurations. Tests
 # write variations of it (one key changed) to check what the reader refuses.
@@ -49,6 +49,13 @@ dropout = 0.0
 max_params = "300"
 max_macs = "20k"
 """
+
+
+def named(text: str, path: Path) -> str:
+    """A pattern for an error message that says `text` and names the file or folder `path`."""
+    import re
+
+    return f"{text}.*{re.escape(path.name)}"
 
 
 @pytest.fixture(scope="session")

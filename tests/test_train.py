@@ -4,6 +4,8 @@ from __future__ import annotations
 
 import math
 
+import numpy as np
+
 import pytest
 import torch
 from torch import nn
@@ -258,3 +260,64 @@ def test_digits_reach_published_range():
     result = train_candidate(model, images[fit], labels[fit], images[val], labels[val], seed=0, threads=1)
     # Classical classifiers exceed 0.97 on this set (recalled from memory); a short proxy run should clear 0.9.
     assert result.val_accuracy >= 0.9
+
+
+# --- images held as bytes, and the scores evaluation gives ------------------------------------
+
+
+def test_bytes_converted_per_batch_train_exactly_as_floats_converted_up_front(toy):
+    # The trainer takes uint8 N×C×H×W and converts each batch (× 1/255); converting the whole set the
+    # same way first must give the very same run.
+    as_bytes = (toy[0] * 255).round().to(torch.uint8)
+    val_bytes = (toy[2] * 255).round().to(torch.uint8)
+    runs = []
+    for train_images, val_images in ((as_bytes.numpy(), val_bytes.numpy()),
+                                     (as_bytes.float() * (1 / 255), val_bytes.float() * (1 / 255))):
+        model = small_net(widths=(8, 16))
+        result = train_candidate(model, train_images, toy[1].numpy(), val_images, toy[3].numpy(), FAST,
+                                 seed=3, threads=1)
+        runs.append((result.history, torch.cat([p.detach().flatten() for p in model.parameters()])))
+    assert runs[0][0] == runs[1][0] and torch.equal(runs[0][1], runs[1][1])
+
+
+@pytest.mark.filterwarnings("ignore:y_pred contains classes not in y_true")  # a class absent from one draw
+def test_balanced_accuracy_and_recall_match_scikit_learn():
+    from sklearn.metrics import balanced_accuracy_score, recall_score
+
+    from searcher.model.metrics import scores
+
+    rng = np.random.default_rng(0)
+    for classes, size in ((2, 30), (5, 200), (10, 57)):
+        truth = rng.choice(classes, size, p=np.arange(1, classes + 1) / np.arange(1, classes + 1).sum())
+        predicted = np.where(rng.random(size) < 0.6, truth, rng.integers(0, classes, size))
+        got = scores(truth, predicted, classes)
+        # Reference: scikit-learn's balanced_accuracy_score (mean recall over classes present) and recall_score.
+        assert got.balanced_accuracy == pytest.approx(balanced_accuracy_score(truth, predicted))
+        present = np.unique(truth)
+        assert np.allclose(np.asarray(got.recall)[present],
+                           recall_score(truth, predicted, labels=present, average=None, zero_division=0))
+        assert got.accuracy == pytest.approx((truth == predicted).mean())
+
+
+def test_a_model_that_never_predicts_the_rare_class_scores_half_balanced():
+    from searcher.model.metrics import scores
+
+    truth = np.array([0] * 95 + [1] * 5)
+    got = scores(truth, np.zeros(100, int), 3)  # class 2 has no images here: left out of the mean
+    assert got.accuracy == 0.95 and got.balanced_accuracy == 0.5
+    assert got.recall[:2] == (1.0, 0.0) and math.isnan(got.recall[2]) and got.counts == (95, 5, 0)
+
+
+def test_evaluation_reports_balanced_accuracy_and_recall_and_trains_for_the_chosen_metric(toy):
+    from searcher.model.train import evaluate_scores
+
+    model = small_net(widths=(8,))
+    seen = []
+    result = train_candidate(model, *toy, FAST, seed=0, metric="balanced_accuracy", classes=2,
+                             on_epoch=lambda epoch, score: seen.append(score))
+    assert result.val_scores is not None and list(result.history) == seen
+    assert seen[-1] == result.val_scores.balanced_accuracy and result.val_accuracy == result.val_scores.accuracy
+    found, predictions = evaluate_scores(model, toy[2], toy[3], classes=2)
+    assert found == result.val_scores and len(predictions) == len(toy[3])
+    with pytest.raises(ValueError, match="metric 'f1' is not one of"):
+        train_candidate(small_net(widths=(8,)), *toy, FAST, seed=0, metric="f1")

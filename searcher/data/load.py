@@ -1,22 +1,32 @@
-"""Data sets held in memory: the demo, a .npz file or a folder of images, split reproducibly.
+"""Data sets held in memory as bytes: the demo, a .npz file or a folder of images, split reproducibly.
 
-Everything is decoded once into float32 tensors in [0, 1] (N×C×H×W) so that short
-trials spend their time training, not reading files. The split is kept as index
-arrays and a fingerprint of the data, so a resumed run can prove it sees the same data.
+Everything is decoded once into uint8 N×C×H×W, so a data set costs about its pixel count in bytes,
+and the trainer converts each batch to floats as it takes it. Only the three parts are kept (the
+decoded whole is let go once split), and a second load of the same data in one process shares them.
+The decoded bytes can be kept in a run's folder (`save_decoded`) so a resumed run or an export reads
+them back instead of decoding again; the files' names, sizes and times decide whether that copy is
+still good. The split is kept as index arrays and a fingerprint of the data, so a resumed run can
+prove it sees the same data.
 """
 
 from __future__ import annotations
 
 import hashlib
-import io
+import json
 import logging
-from dataclasses import dataclass
+import zipfile
+from concurrent.futures import ThreadPoolExecutor
+from dataclasses import dataclass, field
 from pathlib import Path
+from typing import BinaryIO
 
 import numpy as np
-import torch
 
+from searcher.data import layout
 from searcher.data.demo import make_demo
+from searcher.data.folder import MODES, Decoded, decode_folder, default_workers
+from searcher.data.npz import read_npz
+from searcher.data.split import PARTS, check_split, load_split, save_split, split_indices  # noqa: F401  (re-exported)
 from searcher.errors import SearcherError
 from searcher.runs import write_atomic
 
@@ -24,19 +34,19 @@ log = logging.getLogger(__name__)
 
 DEMO_COUNT = 3000  # images in the built-in demo
 DEMO_SEED = 0  # seed the demo is drawn with; the split has its own seed
-PARTS = ("train", "val", "test")  # names of the three parts, in order
-IMAGE_KEYS = ("images", "x")  # accepted .npz keys for the image array, first found wins
-LABEL_KEYS = ("labels", "y")  # accepted .npz keys for the label array
-IMAGE_SUFFIXES = (".png", ".jpg", ".jpeg")  # files read from a class folder
-MODES = {1: "L", 3: "RGB", 4: "RGBA"}  # Pillow mode for each channel count
+DEMO_SIZES = (8, 128)  # smallest and largest side the demo is drawn at (1024² would take tens of GB)
+CACHE_FILE = "decoded.npz"  # decoded bytes kept in a run folder
+UNREADABLE_FILE = "unreadable.txt"  # files skipped as unreadable, one "path: reason" a line
+CACHE_VERSION = 1  # bump when the decoding changes, so old copies are not reused
+FEW_EXAMPLES = 10  # validation or test images per class below which its score is too coarse to trust
 
 
 @dataclass(frozen=True, eq=False)
 class Split:
-    """One part of the data, in memory."""
+    """One part of the data, in memory; shared by the Datasets of one process, so never changed in place."""
 
-    images: torch.Tensor  # float32 N×C×H×W in [0, 1]
-    labels: torch.Tensor  # int64 N, class numbers 0..K-1
+    images: np.ndarray  # uint8 N×C×H×W, 0–255, laid out pixel-major (see searcher.data.layout)
+    labels: np.ndarray  # int64 N, class numbers 0..K-1
 
 
 @dataclass(frozen=True, eq=False)
@@ -51,10 +61,37 @@ class Dataset:
     fingerprint: str  # short sha256 of the images and labels, to detect changed data
     skipped: int  # unreadable files skipped while loading
     indices: dict[str, np.ndarray]  # the split as index arrays, to store with a run
+    unreadable: tuple[str, ...] = ()  # "path: reason" per skipped file
+    modes: dict[str, int] = field(default_factory=dict)  # files per image mode as saved, for a folder
+    cache_key: str = ""  # what the source looked like when decoded (see `save_decoded`)
 
     @property
     def num_classes(self) -> int:
         return len(self.class_names)
+
+    @property
+    def count(self) -> int:
+        """Images in the three parts together."""
+        return sum(len(i) for i in self.indices.values())
+
+    def rows(self, start: int, stop: int, images: bool = True) -> tuple[np.ndarray | None, np.ndarray]:
+        """Images (unless `images` is false) and labels start..stop-1 in the source's own order, from the parts."""
+        count = stop - start
+        out = layout.empty(count, *self.train.images.shape[1:]) if images else None
+        labels = np.empty(count, np.int64)
+        for name, where in self.indices.items():
+            inside = (where >= start) & (where < stop)
+            part = getattr(self, name)
+            labels[where[inside] - start] = part.labels[inside]
+            if out is not None:
+                out[where[inside] - start] = part.images[inside]
+        return out, labels
+
+    @property
+    def covers_all(self) -> bool:
+        """Whether the parts hold every image of the source (a stored split might leave some out)."""
+        every = np.concatenate(list(self.indices.values()))
+        return len(every) > 0 and int(every.max()) + 1 == len(every)
 
 
 def _check_shape(input_shape: tuple[int, int, int]) -> tuple[int, int, int]:
@@ -68,305 +105,229 @@ def _check_shape(input_shape: tuple[int, int, int]) -> tuple[int, int, int]:
     return int(shape[0]), int(shape[1]), int(shape[2])
 
 
-def resize_images(images: torch.Tensor, h: int, w: int) -> torch.Tensor:
-    """Images N×C×H×W brought to h×w (bilinear, antialiased when shrinking); unchanged if already that size."""
+def resize_images(images: np.ndarray, h: int, w: int) -> np.ndarray:
+    """uint8 N×C×H×W brought to h×w, each channel on its own with Pillow's bilinear filter (which
+    averages over the source when shrinking); returned unchanged if already that size."""
+    from PIL import Image
+
     if images.shape[-2:] == (h, w):
         return images
-    log.info("resizing images from %d×%d to %d×%d", images.shape[-2], images.shape[-1], h, w)
-    out = torch.nn.functional.interpolate(images, size=(h, w), mode="bilinear", antialias=True, align_corners=False)
-    return out.clamp_(0.0, 1.0)
+    log.info("resizing %d images from %d×%d to %d×%d", len(images), images.shape[-2], images.shape[-1], h, w)
+    count, channels = images.shape[:2]
+    out = layout.empty(count, channels, h, w)
+
+    def run(rows: range) -> None:
+        for i in rows:
+            n, c = divmod(i, channels)
+            plane = np.ascontiguousarray(images[n, c])
+            out[n, c] = np.asarray(Image.fromarray(plane).resize((w, h), Image.Resampling.BILINEAR))
+
+    planes, step = count * channels, 1024
+    with ThreadPoolExecutor(default_workers()) as pool:
+        list(pool.map(run, [range(i, min(i + step, planes)) for i in range(0, planes, step)]))
+    return out
 
 
-def _to_unit(array: np.ndarray, path: Path, key: str) -> np.ndarray:
-    """Pixel values as float32 in [0, 1]: uint8 and 0–255 data are divided by 255."""
-    if array.dtype == np.uint8:
-        return array.astype(np.float32) / 255
-    if array.dtype.kind not in "biuf":
-        raise SearcherError(f"`{key}` holds {array.dtype} values; images must be numbers", file=path, key=key)
-    values = array.astype(np.float32)
-    if not np.isfinite(values).all():
-        raise SearcherError(f"`{key}` contains NaN or infinite values; pixels must be finite", file=path, key=key)
-    low, high = float(values.min()), float(values.max())
-    if low < 0 or high > 255:
-        raise SearcherError(f"`{key}` has values from {low:g} to {high:g}; pixels must lie in 0–1 or 0–255",
-                            file=path, key=key)
-    if high > 1.0:
-        log.info("%s: `%s` values reach %g, so they are read as 0–255 and divided by 255", path, key, high)
-        values /= 255
-    return values
+def _demo(shape: tuple[int, int, int]) -> Decoded:
+    channels, h, w = shape
+    low, high = DEMO_SIZES
+    if not (low <= h <= high and low <= w <= high):
+        raise SearcherError(f"the demo data is drawn at sizes from {low}×{low} to {high}×{high}, but the input size "
+                            f"is {h}×{w}; choose an input size in that range, or give your own data",
+                            key="input.size")
+    gray, labels, names = make_demo(DEMO_COUNT, (h, w), DEMO_SEED)
+    images = layout.pixel_major(np.broadcast_to(gray[:, None], (len(gray), channels, h, w)))
+    return Decoded(images, labels, names, (), {})
 
 
-def _channels_first(images: np.ndarray, channels: int, path: Path, key: str) -> np.ndarray:
-    """Bring N×H×W, N×H×W×C or N×C×H×W to N×C×H×W, choosing the axis that matches `channels`."""
-    layouts = "expected N×H×W, N×H×W×C or N×C×H×W"
-    if images.ndim == 3:
-        images, axis = images[:, None], 1
-    elif images.ndim == 4:
-        axes = [a for a in (3, 1) if images.shape[a] in MODES]
-        if not axes:
-            raise SearcherError(f"`{key}` has shape {images.shape}, with no channel axis of size 1, 3 or 4; {layouts}",
-                                file=path, key=key)
-        axis = next((a for a in axes if images.shape[a] == channels), axes[0])
-    else:
-        raise SearcherError(f"`{key}` has shape {images.shape}; {layouts}", file=path, key=key)
-    if images.shape[axis] != channels:
-        raise SearcherError(f"`{key}` has {images.shape[axis]} channel(s) but the input shape wants {channels}; "
-                            "convert the images or change the input shape's channels", file=path, key=key)
-    return np.moveaxis(images, axis, 1)
-
-
-def _check_labels(labels: np.ndarray, count: int, names: tuple[str, ...] | None, path: Path,
-                  key: str) -> tuple[np.ndarray, tuple[str, ...]]:
-    """Labels as int64 class numbers, with class names (given, or '0'..'K-1')."""
-
-    def bad(text: str) -> SearcherError:
-        return SearcherError(text, file=path, key=key)
-
-    labels = np.asarray(labels)
-    labels = labels[:, 0] if labels.ndim == 2 and labels.shape[1] == 1 else labels
-    if labels.ndim != 1:
-        raise bad(f"`{key}` has shape {labels.shape}; labels must be one class number per image")
-    if len(labels) != count:
-        raise bad(f"`{key}` has {len(labels)} labels for {count} images; there must be one label per image")
-    if labels.dtype.kind not in "iuf":
-        raise bad(f"`{key}` holds {labels.dtype} values; labels must be integer class numbers")
-    fractional = np.flatnonzero(~np.isfinite(labels) | (labels != np.round(labels))) if labels.dtype.kind == "f" else []
-    if len(fractional):
-        at = fractional[0]
-        raise bad(f"label {labels[at].item()!r} at position {at} in `{key}` is not a whole number; "
-                  "labels must be integer class numbers")
-    labels = labels.astype(np.int64)
-    if (labels < 0).any():
-        at = int(np.argmax(labels < 0))
-        raise bad(f"label {labels[at]} at position {at} in `{key}` is negative; labels must be class numbers from 0")
-    if names is None:
-        names = tuple(str(i) for i in range(int(labels.max()) + 1))
-    elif labels.max() >= len(names):
-        at = int(np.argmax(labels >= len(names)))
-        raise bad(f"label {labels[at]} at position {at} in `{key}` is out of range; with {len(names)} class names, "
-                  f"labels must be 0 to {len(names) - 1}")
-    if len(np.unique(labels)) < 2:
-        raise bad(f"`{key}` holds only class {names[labels[0]]!r}; a classifier needs at least 2 classes")
-    return labels, names
-
-
-def _find_key(archive: np.lib.npyio.NpzFile, keys: tuple[str, ...], what: str, path: Path) -> str:
-    found = next((k for k in keys if k in archive.files), None)
-    if found is None:
-        raise SearcherError(f"no {what} array in the file (it has {', '.join(archive.files) or 'no arrays'}); "
-                            f"name it one of {', '.join(repr(k) for k in keys)}", file=path, key=keys[0])
-    return found
-
-
-def _load_npz(path: Path, channels: int) -> tuple[torch.Tensor, np.ndarray, tuple[str, ...]]:
-    try:
-        archive = np.load(path, allow_pickle=False)
-    except (OSError, ValueError, EOFError) as err:
-        raise SearcherError(f"cannot read the file as .npz ({err}); save it with numpy.savez", file=path) from err
-    with archive:
-        image_key = _find_key(archive, IMAGE_KEYS, "image", path)
-        label_key = _find_key(archive, LABEL_KEYS, "label", path)
-        raw, labels = archive[image_key], archive[label_key]
-        names = tuple(str(n) for n in archive["class_names"].ravel()) if "class_names" in archive.files else None
-    if len(raw) == 0:
-        raise SearcherError(f"`{image_key}` holds no images", file=path, key=image_key)
-    if names is not None and len(set(names)) != len(names):
-        raise SearcherError(f"`class_names` {list(names)} repeats a name; each class needs its own",
-                            file=path, key="class_names")
-    images = _channels_first(raw, channels, path, image_key)
-    labels, names = _check_labels(labels, len(images), names, path, label_key)
-    return torch.from_numpy(np.ascontiguousarray(_to_unit(images, path, image_key))), labels, names
-
-
-def _read_image(file: Path, channels: int, h: int, w: int) -> np.ndarray:
-    from PIL import Image
-
-    with Image.open(file) as img:
-        img = img.convert(MODES[channels])
-        if img.size != (w, h):
-            img = img.resize((w, h), Image.Resampling.BILINEAR)
-        return np.asarray(img, dtype=np.uint8).reshape(h, w, channels)
-
-
-def _load_folder(path: Path, channels: int, h: int, w: int,
-                 skip_unreadable: bool) -> tuple[torch.Tensor, np.ndarray, tuple[str, ...], int]:
-    from PIL import Image
-
-    classes = sorted(p for p in path.iterdir() if p.is_dir() and not p.name.startswith("."))
-    if len(classes) < 2:
-        found = f"only the class {classes[0].name!r}" if classes else "no class sub-folders"
-        raise SearcherError(f"folder has {found}; put each class's images (at least 2 classes) in a sub-folder "
-                            "named after the class", file=path)
-    pixels, labels, skipped = [], [], 0
-    for label, folder in enumerate(classes):
-        files = sorted(f for f in folder.iterdir() if f.is_file() and f.suffix.lower() in IMAGE_SUFFIXES)
-        for file in files:
-            try:
-                pixels.append(_read_image(file, channels, h, w))
-                labels.append(label)
-            except (OSError, SyntaxError, ValueError, Image.DecompressionBombError) as err:
-                if not skip_unreadable:
-                    raise SearcherError(f"cannot read image ({err}); remove or replace it, or skip unreadable files",
-                                        file=file) from err
-                log.warning("skipping unreadable image %s: %s", file, err)
-                skipped += 1
-        if not labels or labels[-1] != label:
-            raise SearcherError(f"class folder {folder.name!r} has no readable PNG or JPEG images", file=folder)
-    images = torch.from_numpy(np.stack(pixels)).permute(0, 3, 1, 2).float().div_(255).contiguous()
-    return images, np.asarray(labels, dtype=np.int64), tuple(c.name for c in classes), skipped
-
-
-def load_arrays(source: str | Path, input_shape: tuple[int, int, int],
-                skip_unreadable: bool = False) -> tuple[torch.Tensor, torch.Tensor, tuple[str, ...], int]:
-    """Decode a whole source: (images float32 N×C×H×W in [0, 1], labels int64, class names, files skipped)."""
+def decode(source: str | Path, input_shape: tuple[int, int, int], skip_unreadable: bool = False,
+           workers: int | None = None) -> Decoded:
+    """Decode a whole source at `input_shape` into bytes: images uint8 N×C×H×W, labels, class names."""
     channels, h, w = _check_shape(input_shape)
-    source, skipped = str(source), 0
+    source = str(source)
     path = Path(source)
     if source == "demo":
-        gray, labels, names = make_demo(DEMO_COUNT, (h, w), DEMO_SEED)
-        images = torch.from_numpy(gray).float().div_(255)[:, None].expand(-1, channels, -1, -1).contiguous()
+        decoded = _demo((channels, h, w))
     elif not path.exists():
         raise SearcherError(f"data source {source!r} does not exist; give 'demo', a .npz file or a folder with "
                             "one sub-folder per class", key="data")
     elif path.is_dir():
-        images, labels, names, skipped = _load_folder(path, channels, h, w, skip_unreadable)
+        decoded = decode_folder(path, channels, h, w, skip_unreadable=skip_unreadable, workers=workers)
     elif path.suffix.lower() == ".npz":
-        images, labels, names = _load_npz(path, channels)
-        images = resize_images(images, h, w)
+        images, labels, names = read_npz(path, channels)
+        decoded = Decoded(resize_images(images, h, w), labels, names, (), {})
     else:
         raise SearcherError(f"data file type {path.suffix or '(none)'!r} is not supported; give a .npz file or a "
                             "folder of class sub-folders", file=path, key="data")
-    log.info("loaded %d images in %d classes from %s (%d skipped)", len(images), len(names), source, skipped)
-    return images, torch.from_numpy(np.asarray(labels, dtype=np.int64)), tuple(names), skipped
+    log.info("loaded %d images in %d classes from %s (%d skipped)", len(decoded.labels), len(decoded.class_names),
+             source, len(decoded.unreadable))
+    return decoded
 
 
-def fingerprint_of(images: torch.Tensor, labels: torch.Tensor) -> str:
-    """Short sha256 over the decoded images and labels (and their shapes)."""
-    digest = hashlib.sha256(repr((tuple(images.shape), tuple(labels.shape))).encode())
-    for tensor in (images, labels):
-        digest.update(memoryview(np.ascontiguousarray(tensor.numpy())).cast("B"))
+def load_arrays(source: str | Path, input_shape: tuple[int, int, int],
+                skip_unreadable: bool = False) -> tuple[np.ndarray, np.ndarray, tuple[str, ...], int]:
+    """Decode a whole source: (images uint8 N×C×H×W, labels int64, class names, files skipped)."""
+    decoded = decode(source, input_shape, skip_unreadable)
+    return decoded.images, decoded.labels, decoded.class_names, len(decoded.unreadable)
+
+
+def fingerprint_of(images: np.ndarray, labels: np.ndarray) -> str:
+    """Short sha256 over the decoded images and labels (and their shapes and types)."""
+    digest = hashlib.sha256(repr((images.shape, str(images.dtype), labels.shape)).encode())
+    for start in range(0, len(images), 1024):  # the bytes in N×C×H×W order, however they lie in memory
+        digest.update(memoryview(np.ascontiguousarray(images[start:start + 1024])).cast("B"))
+    digest.update(memoryview(np.ascontiguousarray(labels, dtype=np.int64)).cast("B"))
     return digest.hexdigest()[:16]
 
 
-def _check_fractions(fractions: tuple[float, float, float]) -> np.ndarray:
+def _stamp(source: str) -> tuple:
+    """What must stay the same for a decoded copy to be reused: names, sizes and times of the files."""
+    path = Path(source)
+    if source == "demo":
+        return ("demo", DEMO_COUNT, DEMO_SEED)
     try:
-        shares = np.asarray(fractions, dtype=float).reshape(-1) if np.ndim(fractions) == 1 else np.zeros(0)
-    except (TypeError, ValueError):
-        shares = np.zeros(0)
-    if (shares.shape != (3,) or not np.isfinite(shares).all() or (shares < 0).any() or shares[0] <= 0
-            or abs(shares.sum() - 1) > 1e-6):
-        raise SearcherError(f"split fractions {fractions!r} must be three shares for train, val and test, each at "
-                            "least 0 (train above 0), adding up to 1, such as (0.7, 0.15, 0.15)", key="fractions")
-    return shares
+        files = sorted(path.rglob("*")) if path.is_dir() else [path]
+        return tuple((str(f), f.stat().st_size, f.stat().st_mtime_ns) for f in files if f.is_file())
+    except OSError as err:  # decoding will name the unreadable file or folder
+        return ("unlisted", str(err))
 
 
-def _share(count: int, shares: np.ndarray) -> np.ndarray:
-    """Split `count` items by `shares` (largest remainder), giving each wanted part at least one."""
-    raw = count * shares
-    sizes = np.floor(raw).astype(int)
-    sizes[np.argsort(sizes - raw, kind="stable")[: count - sizes.sum()]] += 1
-    for part in np.flatnonzero((shares > 0) & (sizes == 0)):
-        sizes[np.argmax(sizes)] -= 1
-        sizes[part] += 1
-    return sizes
+def _cache_key(source: str, shape: tuple[int, int, int], skip_unreadable: bool) -> str:
+    text = repr((CACHE_VERSION, source, shape, skip_unreadable, _stamp(source)))
+    return hashlib.sha256(text.encode()).hexdigest()[:24]
 
 
-def split_indices(labels: np.ndarray, seed: int, fractions: tuple[float, float, float] = (0.7, 0.15, 0.15), *,
-                  class_names: tuple[str, ...] | None = None) -> dict[str, np.ndarray]:
-    """Stratified train/val/test index arrays: each class is split by `fractions` on its own.
-
-    Every class reaches every part with a share above 0, so validation accuracy covers all classes.
-    """
-    shares = _check_fractions(fractions)
-    labels = np.asarray(labels, dtype=np.int64)
-    names = class_names or tuple(str(i) for i in range(int(labels.max()) + 1))
-    needed = int((shares > 0).sum())
-    rng = np.random.default_rng(seed)
-    parts: list[list[np.ndarray]] = [[] for _ in PARTS]
-    for label, name in enumerate(names):
-        members = rng.permutation(np.flatnonzero(labels == label))
-        if len(members) < needed:
-            raise SearcherError(f"class {name!r} has {len(members)} image(s); a split into {needed} parts needs at "
-                                f"least {needed} per class", key="labels")
-        for part, chunk in zip(parts, np.split(members, np.cumsum(_share(len(members), shares))[:-1])):
-            part.append(chunk)
-    return {name: np.sort(np.concatenate(part)) for name, part in zip(PARTS, parts)}
-
-
-def _check_split(indices: dict[str, np.ndarray], count: int) -> dict[str, np.ndarray]:
-    missing = [p for p in PARTS if p not in indices]
-    if missing:
-        raise SearcherError(f"stored split lacks the part(s) {', '.join(missing)}; it needs {', '.join(PARTS)}",
-                            key="split")
-    checked = {p: np.asarray(indices[p]) for p in PARTS}
-    checked = {p: a.astype(np.int64) if a.size == 0 else a for p, a in checked.items()}
-    if any(a.ndim != 1 or a.dtype.kind not in "iu" for a in checked.values()):
-        raise SearcherError("stored split must hold one integer index array per part", key="split")
-    every = np.concatenate(list(checked.values()))
-    outside = every[(every < 0) | (every >= count)]
-    if len(outside):
-        raise SearcherError(f"stored split refers to image {int(outside[0])}, but the data has images 0 to "
-                            f"{count - 1}; the data has changed since the split was made", key="split")
-    if len(np.unique(every)) != len(every):
-        raise SearcherError("stored split uses an image twice; parts must not overlap", key="split")
-    return {p: a.astype(np.int64) for p, a in checked.items()}
-
-
-def save_split(path: str | Path, indices: dict[str, np.ndarray], fingerprint: str) -> None:
-    """Store the split and the data fingerprint in one .npz file (exactly at `path`)."""
-    parts = {p: np.asarray(indices[p], dtype=np.int64) for p in PARTS}
-    buffer = io.BytesIO()
-    np.savez(buffer, fingerprint=np.array(fingerprint), **parts)
-    write_atomic(Path(path), buffer.getvalue())  # a search starting beside this one never reads half a file
-
-
-def load_split(path: str | Path) -> tuple[dict[str, np.ndarray], str]:
-    """Read a split stored by `save_split`: (indices, fingerprint)."""
-    try:
-        with np.load(path, allow_pickle=False) as archive:
-            stored = {k: archive[k] for k in archive.files}
-    except (OSError, ValueError, EOFError) as err:
-        raise SearcherError(f"cannot read the stored split ({err})", file=path, key="split") from err
-    if "fingerprint" not in stored:
-        raise SearcherError("stored split has no fingerprint; store it with save_split", file=path, key="fingerprint")
-    return {p: stored[p] for p in PARTS if p in stored}, str(stored["fingerprint"])
-
-
-_CACHE: dict[tuple, tuple] = {}  # decoded sources, so a second load_dataset call skips decoding
+_CACHE: dict[str, Dataset] = {}  # the last loads' parts by cache key, shared by a second load of the same data
 _CACHE_SIZE = 2  # sources kept; a data set may be large
 
 
-def _stamp(source: str) -> tuple:
-    """What must stay the same for a cached decode to be reused: names, sizes and times of the files."""
-    path = Path(source)
-    if source == "demo" or not path.exists():
-        return ()
-    files = sorted(path.rglob("*")) if path.is_dir() else [path]
-    return tuple((str(f), f.stat().st_size, f.stat().st_mtime_ns) for f in files if f.is_file())
+def _read_saved(folder: Path | None, key: str, shape: tuple[int, int, int]) -> tuple[Decoded, str] | None:
+    """The copy kept in `folder` by save_decoded, if it was made from the files as they are now."""
+    path = None if folder is None else Path(folder) / CACHE_FILE
+    if path is None or not path.is_file():
+        return None
+    try:
+        with np.load(path, allow_pickle=False) as saved:
+            if str(saved["key"]) != key:
+                log.info("the decoded copy in %s is out of date (the files changed); decoding again", path)
+                return None
+            modes = json.loads(str(saved["modes"]))
+            decoded = Decoded(saved["images"], saved["labels"], tuple(str(n) for n in saved["class_names"]),
+                              tuple(str(u) for u in saved["unreadable"]), modes)
+            fingerprint = str(saved["fingerprint"])
+        if decoded.images.shape[1:] != shape or len(decoded.images) != len(decoded.labels):
+            raise ValueError(f"it holds images of shape {decoded.images.shape}, not N×{'×'.join(map(str, shape))}")
+    except (OSError, ValueError, KeyError, EOFError, zipfile.BadZipFile) as err:
+        log.warning("cannot read the decoded copy %s (%s); decoding again", path, err)
+        return None
+    log.info("read %d decoded images from %s", len(decoded.labels), path)
+    return decoded, fingerprint
+
+
+def _saved_key(path: Path) -> str | None:
+    try:
+        with np.load(path, allow_pickle=False) as saved:
+            return str(saved["key"])
+    except (OSError, ValueError, KeyError, EOFError, zipfile.BadZipFile):
+        return None  # missing or unreadable: to be written anew
+
+
+def _write_decoded(handle: BinaryIO, dataset: Dataset, step: int = 4096) -> None:
+    """An .npz (as numpy.savez writes it) whose images are gathered from the parts a few thousand at a time,
+    so saving never needs a second full copy of the images in memory."""
+    count = dataset.count
+    small = {"labels": dataset.rows(0, count, images=False)[1], "class_names": np.array(dataset.class_names, dtype=str),
+             "unreadable": np.array(dataset.unreadable, dtype=str), "modes": np.array(json.dumps(dataset.modes)),
+             "key": np.array(dataset.cache_key), "fingerprint": np.array(dataset.fingerprint)}
+    with zipfile.ZipFile(handle, "w", zipfile.ZIP_STORED, allowZip64=True) as archive:
+        for name, array in small.items():
+            with archive.open(f"{name}.npy", "w", force_zip64=True) as member:
+                np.lib.format.write_array(member, array, allow_pickle=False)
+        with archive.open("images.npy", "w", force_zip64=True) as member:
+            shape = (count, *dataset.train.images.shape[1:])
+            np.lib.format.write_array_header_1_0(member, {"descr": "|u1", "fortran_order": False, "shape": shape})
+            for start in range(0, count, step):
+                member.write(dataset.rows(start, min(start + step, count))[0].tobytes())
+
+
+def save_decoded(folder: str | Path, dataset: Dataset) -> Path | None:
+    """Keep `dataset`'s decoded bytes in `folder` for the next `load_dataset(..., cache=folder)`, and list
+    the files it skipped as unreadable there. Left as is when the copy there is already current."""
+    folder = Path(folder)
+    if dataset.unreadable:
+        write_atomic(folder / UNREADABLE_FILE, "".join(f"{line}\n" for line in dataset.unreadable))
+    path = folder / CACHE_FILE
+    if not dataset.cache_key or not dataset.covers_all:
+        return None
+    if _saved_key(path) != dataset.cache_key:
+        write_atomic(path, lambda handle: _write_decoded(handle, dataset))
+    return path
 
 
 def load_dataset(source: str | Path, input_shape: tuple[int, int, int], *, seed: int = 0,
                  fractions: tuple[float, float, float] = (0.7, 0.15, 0.15), skip_unreadable: bool = False,
-                 split: dict[str, np.ndarray] | None = None, fingerprint: str | None = None) -> Dataset:
+                 split: dict[str, np.ndarray] | None = None, fingerprint: str | None = None,
+                 cache: str | Path | None = None, workers: int | None = None) -> Dataset:
     """Load a source and split it; with `split` (and its `fingerprint`) reuse a stored split instead.
 
-    A second call with the same source and shape reuses the decoded tensors while the files are
-    unchanged, so only the split is redone; each Dataset still gets its own copies of the parts.
+    The decoded bytes come from this process's last loads or from `cache` (a folder that
+    `save_decoded` wrote to) while the files are unchanged; otherwise the source is decoded
+    (a folder by `workers` threads). Nothing is written here. A load with the same split as an
+    earlier one in this process shares its parts; another split is cut from them anew.
     """
     source = str(source)
-    key = (source, _check_shape(input_shape), skip_unreadable, _stamp(source))
-    if key not in _CACHE:
-        images, labels, names, skipped = load_arrays(source, input_shape, skip_unreadable)
+    shape = _check_shape(input_shape)
+    key = _cache_key(source, shape, skip_unreadable)
+    known = _CACHE.get(key)
+    images: np.ndarray | None = None  # for a known source, gathered from its parts only if the split differs
+    if known is not None:
+        labels, names, found = known.rows(0, known.count, images=False)[1], known.class_names, known.fingerprint
+        unreadable, modes = known.unreadable, known.modes
+    else:
+        saved = _read_saved(None if cache is None else Path(cache), key, shape)
+        if saved is None:
+            decoded = decode(source, shape, skip_unreadable, workers)
+            saved = decoded, fingerprint_of(decoded.images, decoded.labels)
+        whole, found = saved
+        images, labels, names, unreadable, modes = (whole.images, whole.labels, whole.class_names, whole.unreadable,
+                                                    whole.modes)
+    if fingerprint is not None and fingerprint != found:
+        raise SearcherError(f"data fingerprint {found} differs from the stored {fingerprint}; the data "
+                            "has changed since the split was made", file=None if source == "demo" else source,
+                            key="fingerprint")
+    if split is None:
+        indices = split_indices(labels, seed, fractions, class_names=names)
+    else:
+        indices = check_split(split, len(labels))
+    if known is not None and all(np.array_equal(indices[p], known.indices[p]) for p in PARTS):
+        parts = {p: getattr(known, p) for p in PARTS}  # the same split again: share the parts
+    else:
+        images = images if images is not None else known.rows(0, known.count)[0]
+        parts = {p: Split(layout.take(images, i), labels[i]) for p, i in indices.items()}
+    dataset = Dataset(**parts, class_names=names, source=source, fingerprint=found, skipped=len(unreadable),
+                      indices=indices, unreadable=unreadable, modes=modes, cache_key=key)
+    if dataset.covers_all:
+        _CACHE.pop(key, None)
         while len(_CACHE) >= _CACHE_SIZE:
             _CACHE.pop(next(iter(_CACHE)))
-        _CACHE[key] = (images, labels, names, skipped, fingerprint_of(images, labels))
-    images, labels, names, skipped, found = _CACHE[key]
-    if fingerprint is not None and fingerprint != found:
-        raise SearcherError(f"data fingerprint {found} differs from the stored {fingerprint}; the data has changed "
-                            "since the split was made", file=None if source == "demo" else source, key="fingerprint")
-    if split is None:
-        indices = split_indices(labels.numpy(), seed, fractions, class_names=names)
-    else:
-        indices = _check_split(split, len(labels))
-    parts = {p: Split(images[torch.from_numpy(i)], labels[torch.from_numpy(i)]) for p, i in indices.items()}
-    return Dataset(**parts, class_names=names, source=source, fingerprint=found, skipped=skipped, indices=indices)
+        _CACHE[key] = dataset
+    return dataset
+
+
+def few_examples(dataset: Dataset, minimum: int = FEW_EXAMPLES) -> list[tuple[str, str, int]]:
+    """(part, class name, images) for each class with fewer than `minimum` validation or test images:
+    a recall measured on so few images moves by 10 points or more with one image, so warn about it."""
+    found = []
+    for part in ("val", "test"):
+        counts = np.bincount(getattr(dataset, part).labels, minlength=dataset.num_classes)
+        found += [(part, dataset.class_names[k], int(n)) for k, n in enumerate(counts) if n < minimum]
+    return found
+
+
+def describe_few_examples(found: list[tuple[str, str, int]], minimum: int = FEW_EXAMPLES) -> str:
+    """One warning line for what `few_examples` found."""
+    parts = {"val": "validation", "test": "test"}
+    listed = ", ".join(f"{name!r} {n} {parts[part]}" for part, name, n in found[:8])
+    more = f" and {len(found) - 8} more" if len(found) > 8 else ""
+    return (f"{len(found)} class part(s) hold fewer than {minimum} images ({listed}{more}): their recall is coarse, "
+            "so scores can swing by chance; add images of those classes if you can")

@@ -1,7 +1,10 @@
 """Short CPU training of one candidate network: the proxy score a search trial reports.
 
-A search trains hundreds of candidates, so speed comes first: batches are cut from in-memory tensors
+A search trains hundreds of candidates, so speed comes first: batches are cut from in-memory images
 by index permutation, model and inputs run channels-last, and the loss is read back once per few steps.
+Images arrive as bytes (uint8 N×C×H×W, numpy or torch) and each batch is converted to floats in [0, 1]
+as it is taken, so the data set stays at a quarter of its float size; training batches are augmented
+(`settings.augment`) after that, evaluation batches never.
 """
 
 from __future__ import annotations
@@ -13,13 +16,17 @@ import time
 from collections.abc import Callable, Iterator
 from dataclasses import dataclass, field
 
+import numpy as np
 import torch
 import torch.nn.functional as F
 from torch import nn
 from torch.optim.lr_scheduler import LRScheduler
 
-
 from searcher.core.train_settings import OPTIMIZERS, SCHEDULES, TrainSettings  # noqa: F401  (re-exported)
+from searcher.model.augment import Augmenter, Remap, remap_images, seed_for
+from searcher.model.metrics import METRICS, Scores, scores
+
+Images = torch.Tensor | np.ndarray  # uint8 N×C×H×W (bytes, converted per batch) or float32 in [0, 1]
 
 log = logging.getLogger(__name__)
 
@@ -31,31 +38,33 @@ class TrainResult:
     """What one short training run measured."""
 
     val_accuracy: float  # accuracy after the last finished epoch; NaN if none finished
-    history: tuple[float, ...]  # validation accuracy after each finished epoch
+    history: tuple[float, ...]  # validation score (the `metric` trained for) after each finished epoch
     epochs: int  # epochs finished
     seconds: float  # wall time of the whole run, evaluation included, on_epoch calls not
     images_per_second: float  # training images processed per second of training (evaluation excluded)
     train_loss: float  # mean training loss of the last finished epoch; NaN if none finished
     train_size: int  # training images used per epoch, after train_fraction
+    val_scores: Scores | None = None  # accuracy, balanced accuracy and recall per class after the last epoch
 
 
 @dataclass
 class TrainProgress:
     """Filled in as training runs, so a caller whose `on_epoch` raised (to prune, say) still has the figures."""
 
-    history: list[float] = field(default_factory=list)  # validation accuracy per finished epoch
+    history: list[float] = field(default_factory=list)  # validation score per finished epoch
     train_loss: float = math.nan  # mean loss of the last finished epoch
     images_seen: int = 0  # training images processed, partial epochs included
     train_seconds: float = 0.0  # time spent in training steps
     seconds: float = 0.0  # wall time so far
     train_size: int = 0  # training images per epoch
+    val_scores: Scores | None = None  # all validation scores of the last finished epoch
 
     def result(self) -> TrainResult:
         """The figures so far as a TrainResult."""
         speed = self.images_seen / self.train_seconds if self.train_seconds > 0 else 0.0
-        last = self.history[-1] if self.history else math.nan
+        last = self.val_scores.accuracy if self.val_scores is not None else math.nan
         return TrainResult(last, tuple(self.history), len(self.history), self.seconds, speed, self.train_loss,
-                           self.train_size)
+                           self.train_size, self.val_scores)
 
 
 class TrainingStopped(Exception):
@@ -84,32 +93,102 @@ def reset_weights(model: nn.Module, seed: int) -> None:
                 module.reset_parameters()
 
 
-def evaluate(model: nn.Module, images: torch.Tensor, labels: torch.Tensor,
-             batch_size: int = 512) -> tuple[float, torch.Tensor]:
-    """Accuracy and predicted class per image, for validation and for export's test figures; mode restored."""
-    if len(images) != len(labels) or len(labels) == 0:
-        raise ValueError(f"need as many labels as images, at least one: {len(images)} images, {len(labels)} labels")
+def as_tensor(images: Images) -> torch.Tensor:
+    """A numpy array as a tensor sharing its memory and strides (no copy); a tensor as it is."""
+    return torch.from_numpy(images) if isinstance(images, np.ndarray) else images
+
+
+def to_float(batch: torch.Tensor, layout: torch.memory_format = torch.contiguous_format) -> torch.Tensor:
+    """A batch as float32 in [0, 1] in `layout`: bytes are divided by 255, floats pass unchanged (but laid out)."""
+    if batch.dtype != torch.uint8:
+        return batch.contiguous(memory_format=layout)
+    if layout == torch.channels_last and batch.is_contiguous(memory_format=torch.channels_last):
+        # Through the N×H×W×C view, which is plainly contiguous: the vectorised kernels take it
+        # (multiplying the channels-last N×C×H×W tensor itself ran ~6× slower, measured on CPU).
+        return batch.permute(0, 2, 3, 1).to(torch.float32).mul_(1 / 255).permute(0, 3, 1, 2)
+    return batch.to(torch.float32, memory_format=layout).mul_(1 / 255)
+
+
+class Batches:
+    """Cuts batches from a set of images without transposing them: bytes laid out pixel-major (channels last,
+    as searcher.data keeps them) are copied as whole rows, and a remap (shift, flip) picks the source pixels
+    in that same copy. Anything else is indexed as it lies."""
+
+    def __init__(self, images: torch.Tensor, layout: torch.memory_format) -> None:
+        self.pixel_major = images.dtype == torch.uint8 and layout == torch.channels_last
+        if self.pixel_major and not images.is_contiguous(memory_format=torch.channels_last):
+            images = images.contiguous(memory_format=torch.channels_last)  # once, for bytes given N×C×H×W
+        elif not self.pixel_major and images.dtype != torch.uint8:
+            images = images.contiguous(memory_format=layout)  # floats: laid out once; rows keep the layout
+        self.images = images
+        n, c, h, w = images.shape
+        if self.pixel_major:
+            nhwc = images.permute(0, 2, 3, 1)  # a view: N×H×W×C in memory order
+            self.rows, self.pixels = nhwc.reshape(n, h * w * c), nhwc.reshape(n * h * w, c)  # views as well
+
+    def __call__(self, index: torch.Tensor, remap: Remap | None = None) -> torch.Tensor:
+        """Images `index` (N×C×H×W, as stored: uint8 or float), with `remap` applied if given."""
+        n, c, h, w = self.images.shape
+        if not self.pixel_major:
+            batch = self.images[index]
+            return batch if remap is None else remap_images(batch, remap)
+        if remap is None:
+            picked = torch.index_select(self.rows, 0, index)
+        else:
+            rows, cols = remap
+            source = (index[:, None, None] * h + rows[:, :, None]) * w + cols[:, None, :]  # pixel numbers, B×H×W
+            picked = torch.index_select(self.pixels, 0, source.reshape(-1))
+        return picked.view(len(index), h, w, c).permute(0, 3, 1, 2)
+
+
+def predict(model: nn.Module, images: Images, batch_size: int = 512,
+            layout: torch.memory_format = torch.contiguous_format) -> torch.Tensor:
+    """Predicted class per image, batch by batch (bytes converted per batch); the model's mode is restored."""
+    images = as_tensor(images)
     was_training = model.training
     model.eval()
     with torch.inference_mode():
-        batches = [model(images[i : i + batch_size]).argmax(1) for i in range(0, len(images), batch_size)]
+        batches = [model(to_float(images[i : i + batch_size], layout)).argmax(1)
+                   for i in range(0, len(images), batch_size)]
         predictions = torch.cat(batches)
     model.train(was_training)
-    predictions = predictions.clone()  # a plain tensor, usable outside inference mode
-    return (predictions == labels).float().mean().item(), predictions
+    return predictions.clone()  # a plain tensor, usable outside inference mode
+
+
+def evaluate(model: nn.Module, images: Images, labels: Images, batch_size: int = 512) -> tuple[float, torch.Tensor]:
+    """Accuracy and predicted class per image, for validation and for export's test figures; mode restored."""
+    found, predictions = evaluate_scores(model, images, labels, None, batch_size)
+    return found.accuracy, predictions
+
+
+def evaluate_scores(model: nn.Module, images: Images, labels: Images, classes: int | None = None,
+                    batch_size: int = 512) -> tuple[Scores, torch.Tensor]:
+    """Accuracy, balanced accuracy and recall per class (of `classes`; default: the largest class number seen,
+    plus one), and the predicted class per image; the model's mode is restored."""
+    if len(images) != len(labels) or len(labels) == 0:
+        raise ValueError(f"need as many labels as images, at least one: {len(images)} images, {len(labels)} labels")
+    predictions = predict(model, images, batch_size).numpy()
+    truth = as_tensor(labels).numpy()
+    classes = classes or int(max(truth.max(), predictions.max())) + 1
+    return scores(truth, predictions, classes), torch.from_numpy(predictions)
 
 
 def train_candidate(
-    model: nn.Module, train_images: torch.Tensor, train_labels: torch.Tensor,
-    val_images: torch.Tensor, val_labels: torch.Tensor, settings: TrainSettings = TrainSettings(), *,
+    model: nn.Module, train_images: Images, train_labels: Images,
+    val_images: Images, val_labels: Images, settings: TrainSettings = TrainSettings(), *,
     seed: int, on_epoch: Callable[[int, float], None] | None = None, deadline: float | None = None,
     threads: int | None = None, progress: TrainProgress | None = None, init_weights: bool = True,
+    metric: str = "accuracy", classes: int | None = None,
 ) -> TrainResult:
-    """Train `model` in place for a short schedule and report its validation accuracy.
+    """Train `model` in place for a short schedule and report its validation scores.
 
-    Everything random comes from `seed`: subset, batch order, initial weights (re-drawn unless `init_weights`
-    is false) and dropout; torch's global generator is left as it was. One seed on one thread repeats exactly.
-    `on_epoch(epoch_index, val_accuracy)` runs after each epoch (index from 0); what it raises, such as
+    Images are uint8 N×C×H×W (numpy or torch; converted to floats per batch) or float32 tensors in [0, 1].
+    Everything random comes from `seed`: subset, batch order, augmentation, initial weights (re-drawn unless
+    `init_weights` is false) and dropout; torch's global generator is left as it was. One seed on one thread
+    repeats exactly, and turning augmentation on leaves the batch order as it was.
+    `metric` ("accuracy" or "balanced_accuracy") is the validation score kept in `history` and passed on;
+    `classes` is the class count for per-class recall (default: the largest label seen, plus one).
+    `on_epoch(epoch_index, score)` runs after each epoch (index from 0); what it raises, such as
     optuna.TrialPruned, propagates unchanged: pass a `progress` to keep the figures so far. Diverged and
     OutOfTime carry them as `.result`. `deadline` is a time.monotonic() value. `threads` sets torch's
     process-wide intra-op thread count for this call only, restoring it after; None leaves it alone.
@@ -117,17 +196,20 @@ def train_candidate(
     """
     started = time.monotonic()
     waited = 0.0  # seconds spent in on_epoch: the caller's bookkeeping, not training
-    _check_data(train_images, train_labels, "training")
-    _check_data(val_images, val_labels, "validation")
+    if metric not in METRICS:
+        raise ValueError(f"metric {metric!r} is not one of {METRICS}")
+    train_images, train_labels = _check_data(train_images, train_labels, "training")
+    val_images, val_labels = _check_data(val_images, val_labels, "validation")
+    classes = classes or int(max(train_labels.max(), val_labels.max())) + 1
     progress = TrainProgress() if progress is None else progress
     generator = torch.Generator().manual_seed(seed)
+    augmenter = Augmenter(settings.augment, seed_for(seed)) if settings.augment.active else None
     layout = torch.channels_last if settings.channels_last else torch.contiguous_format
     count = max(2, round(settings.train_fraction * len(train_labels)))
+    batches = Batches(train_images, layout)
     if count < len(train_labels):
         chosen = torch.randperm(len(train_labels), generator=generator)[:count]
-        train_images, train_labels = train_images[chosen], train_labels[chosen]
-    train_images = train_images.contiguous(memory_format=layout)  # indexing rows keeps the layout
-    val_images = val_images.contiguous(memory_format=layout)
+        batches, train_labels = Batches(batches(chosen), layout), train_labels[chosen]
     batch = min(settings.batch_size, count)
     steps = count // batch  # the short last batch is dropped; the order changes each epoch
     progress.train_size = count
@@ -142,20 +224,23 @@ def train_candidate(
             for epoch in range(settings.epochs):
                 order = torch.randperm(count, generator=generator)[: steps * batch].view(steps, batch)
                 try:
-                    loss = _train_epoch(model, train_images, train_labels, order, optimizer, schedule, settings,
-                                        deadline, progress, epoch)
+                    loss = _train_epoch(model, batches, train_labels, order, optimizer, schedule, settings,
+                                        deadline, progress, epoch, augmenter)
                 except TrainingStopped as stopped:
                     progress.seconds = time.monotonic() - started - waited
                     stopped.result = progress.result()
                     raise
                 progress.train_loss = loss
-                accuracy, _ = evaluate(model, val_images, val_labels, settings.eval_batch_size)
-                progress.history.append(accuracy)
+                predicted = predict(model, val_images, settings.eval_batch_size, layout)
+                progress.val_scores = scores(val_labels.numpy(), predicted.numpy(), classes)
+                score = progress.val_scores.get(metric)
+                progress.history.append(score)
                 progress.seconds = time.monotonic() - started - waited
-                log.debug("epoch %d: loss %.4f, val accuracy %.4f", epoch + 1, loss, accuracy)
+                log.debug("epoch %d: loss %.4f, val accuracy %.4f, balanced %.4f", epoch + 1, loss,
+                          progress.val_scores.accuracy, progress.val_scores.balanced_accuracy)
                 if on_epoch is not None:
                     called = time.monotonic()
-                    on_epoch(epoch, accuracy)
+                    on_epoch(epoch, score)
                     waited += time.monotonic() - called
         finally:
             model.eval()
@@ -163,18 +248,26 @@ def train_candidate(
     return progress.result()
 
 
-def _train_epoch(model: nn.Module, images: torch.Tensor, labels: torch.Tensor, order: torch.Tensor,
+def _train_epoch(model: nn.Module, batches: Batches, labels: torch.Tensor, order: torch.Tensor,
                  optimizer: torch.optim.Optimizer, schedule: LRScheduler | None, settings: TrainSettings,
-                 deadline: float | None, progress: TrainProgress, epoch: int) -> float:
+                 deadline: float | None, progress: TrainProgress, epoch: int,
+                 augmenter: Augmenter | None = None) -> float:
     """One pass, a batch per row of `order`; returns the mean loss. Counts its time even when it raises."""
     model.train()
+    layout = torch.channels_last if settings.channels_last else torch.contiguous_format
     losses: list[torch.Tensor] = []
     start = time.monotonic()
     try:
         for step, index in enumerate(order):
             if deadline is not None and time.monotonic() >= deadline:
                 raise OutOfTime(f"deadline passed in epoch {epoch + 1}, step {step + 1} of {len(order)}")
-            loss = F.cross_entropy(model(images[index]), labels[index], label_smoothing=settings.label_smoothing)
+            if augmenter is None:
+                batch = to_float(batches(index), layout)
+            else:
+                h, w = batches.images.shape[-2:]
+                batch = augmenter.after_float(to_float(batches(index, augmenter.remap(len(index), h, w)), layout))
+            loss = F.cross_entropy(model(to_float(batch, layout)), labels[index],
+                                   label_smoothing=settings.label_smoothing)
             optimizer.zero_grad(set_to_none=True)
             loss.backward()
             optimizer.step()
@@ -193,11 +286,14 @@ def _train_epoch(model: nn.Module, images: torch.Tensor, labels: torch.Tensor, o
         progress.train_seconds += time.monotonic() - start
 
 
-def _check_data(images: torch.Tensor, labels: torch.Tensor, split: str) -> None:
-    if images.dim() != 4 or images.dtype != torch.float32 or labels.dtype != torch.int64 or len(labels) < 2 \
-            or labels.shape != images.shape[:1]:
-        raise ValueError(f"{split} data must be ≥ 2 float32 N×C×H×W images and N int64 labels, got "
+def _check_data(images: Images, labels: Images, split: str) -> tuple[torch.Tensor, torch.Tensor]:
+    """Images and labels as tensors (sharing memory), refused unless uint8 or float32 N×C×H×W and int64 N."""
+    images, labels = as_tensor(images), as_tensor(labels)
+    if images.dim() != 4 or images.dtype not in (torch.uint8, torch.float32) or labels.dtype != torch.int64 \
+            or len(labels) < 2 or labels.shape != images.shape[:1]:
+        raise ValueError(f"{split} data must be ≥ 2 uint8 or float32 N×C×H×W images and N int64 labels, got "
                          f"{images.dtype} {tuple(images.shape)} and {labels.dtype} {tuple(labels.shape)}")
+    return images, labels
 
 
 def _optimizer(model: nn.Module, settings: TrainSettings) -> torch.optim.Optimizer:

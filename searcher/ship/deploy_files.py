@@ -25,7 +25,7 @@ from searcher.core.cost import cost
 from searcher.ship import c_build, int8_reference, onnx_files
 from searcher.ship.c_build import Footprint
 from searcher.ship.c_source import CSource, generate
-from searcher.ship.int8_check import quantized
+from searcher.ship.int8_check import quantized, unit_images
 from searcher.ship.quantize import IntegerNet, QuantSettings, to_pixels
 
 log = logging.getLogger(__name__)
@@ -121,14 +121,14 @@ def _check_c(code: CSource, net: IntegerNet, pixels: np.ndarray, expected: np.nd
 def write_deploy_files(folder: Path, model: Any, arch: Arch, train_images: Any, test_images: Any, test_labels: Any,
                        class_names: tuple[str, ...], settings: QuantSettings = QuantSettings()) -> DeployReport:
     """Quantize the trained `model` (calibrating on `train_images`), write the ONNX and C files into
-    `folder`, and check and time them on the held-out images (torch tensors, float N×C×H×W in [0, 1])."""
+    `folder`, and check and time them on the held-out images (uint8 pixels or floats in [0, 1], N×C×H×W)."""
     import torch
 
     net = quantized(model, arch, train_images, settings)
-    images = test_images.numpy()
+    images = unit_images(test_images)
     pixels = to_pixels(images)
     expected = int8_reference.scores(net, pixels)
-    accuracy = float(np.mean(expected.argmax(axis=1) == test_labels.numpy()))
+    accuracy = float(np.mean(expected.argmax(axis=1) == np.asarray(test_labels)))
 
     onnx_files.write_fp32(model, arch, folder / "model.onnx")
     fp32 = onnx_files.session(folder / "model.onnx")

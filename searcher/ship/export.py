@@ -33,6 +33,7 @@ from searcher.errors import SearcherError, check_int, shown
 from searcher.limits import MAX_EPOCHS, MAX_TRIAL
 from searcher.core.space_file import read_space_text
 from searcher.core.stats import wilson_interval
+from searcher.data.layout import concatenate
 from searcher.data.load import load_dataset, load_split
 from searcher.model.build import build
 from searcher.model.train import TrainSettings, evaluate, train_candidate
@@ -179,7 +180,7 @@ def export(settings: ExportSettings) -> ExportOutcome:
                             f"choose a smaller architecture", key="--arch" if settings.arch else "--trial")
     split_file = folder / "split.npz"
     stored = load_split(split_file)[0] if split_file.exists() else None
-    dataset = load_dataset(config.data, space_shape, seed=config.seed, split=stored)
+    dataset = load_dataset(config.data, space_shape, seed=config.seed, split=stored, cache=folder)
     if dataset.fingerprint != config.data_fingerprint:
         raise SearcherError(f"the data at {config.data} changed since run {settings.name!r} searched it "
                             f"(fingerprint {dataset.fingerprint}, was {config.data_fingerprint})", key="--data")
@@ -187,15 +188,15 @@ def export(settings: ExportSettings) -> ExportOutcome:
     base = TrainSettings(**config.train)
     epochs = settings.epochs or max(10, 3 * base.epochs)
     train_settings = replace(base, epochs=epochs, train_fraction=1.0)
-    images = torch.cat([data.train.images, data.val.images])
-    labels = torch.cat([data.train.labels, data.val.labels])
+    images = concatenate([data.train.images, data.val.images])  # stays pixel-major: batches need no transposing
+    labels = np.concatenate([data.train.labels, data.val.labels])
     model = build(arch)
     started = time.time()
     # the schedule's own validation pass reads the training data here: the test split stays unseen
     result = train_candidate(model, images, labels, data.train.images[:256], data.train.labels[:256],
                              train_settings, seed=config.seed)
     accuracy, predictions = evaluate(model, data.test.images, data.test.labels)
-    confusion = _confusion(data.test.labels.numpy(), predictions.numpy(), config.classes)
+    confusion = _confusion(data.test.labels, predictions.numpy(), config.classes)
     per_class = {name: float(confusion[i, i] / max(1, confusion[i].sum())) for i, name in enumerate(config.class_names)}
     totals = budget.totals(cost(arch, budget.activation_precision))
     fits = not budget.check(totals)

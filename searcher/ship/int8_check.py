@@ -29,17 +29,26 @@ def _numpy(values: Any) -> np.ndarray:
     return values.detach().cpu().numpy() if hasattr(values, "detach") else np.asarray(values)
 
 
+def unit_images(images: Any) -> np.ndarray:
+    """float32 N×C×H×W in [0, 1], contiguous: from uint8 pixels as the data layer holds them, or from
+    floats (torch or numpy). A pixel p becomes p/255, which to_pixels turns back into p exactly."""
+    array = _numpy(images)
+    floats = np.ascontiguousarray(array, dtype=np.float32)
+    return floats / 255 if array.dtype == np.uint8 else floats
+
+
 def quantized(model: Any, arch: Arch, train_images: Any, settings: QuantSettings = QuantSettings()) -> IntegerNet:
     """The integer network of a trained torch model, calibrated on the first training images."""
-    return quantize(arch, state_arrays(model), _numpy(train_images[: settings.images]), settings)
+    return quantize(arch, state_arrays(model), unit_images(train_images[: settings.images]), settings)
 
 
 def int8_accuracy(model: Any, arch: Arch, train_images: Any, images: Any, labels: Any, *,
                   settings: QuantSettings = QuantSettings(), fast: bool = True) -> float:
-    """Share of `images` (float N×C×H×W in [0, 1], torch or numpy) the int8 network classifies as `labels`.
+    """Share of `images` (uint8 pixels, or floats in [0, 1]; N×C×H×W, torch or numpy) the int8 network
+    classifies as `labels`.
 
     ``fast=False`` runs the reference's int64 engine instead; the answer is the same.
     """
     net = quantized(model, arch, train_images, settings)
-    predicted = int8_reference.classify(net, to_pixels(_numpy(images)), fast=fast)
+    predicted = int8_reference.classify(net, to_pixels(unit_images(images)), fast=fast)
     return float(np.mean(predicted == _numpy(labels)))

@@ -131,7 +131,7 @@ def prepare(settings: SearchSettings, budget: dict | None = None, train: dict | 
     split_file = folder / "split.npz"
     stored, known = load_split(split_file) if split_file.exists() else (None, None)
     dataset = load_dataset(settings.data, space.data_shape, seed=settings.seed,
-                           skip_unreadable=settings.skip_unreadable, split=stored, fingerprint=known)
+                           skip_unreadable=settings.skip_unreadable, split=stored, fingerprint=known, cache=folder)
     if dataset.skipped:
         log.warning("skipped %d unreadable image file(s) in %s", dataset.skipped, settings.data)
     _check_something_fits(space, budget, dataset.num_classes)

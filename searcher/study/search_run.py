@@ -16,7 +16,7 @@ from typing import Any
 
 import optuna
 
-from searcher.data.load import save_split
+from searcher.data.load import save_decoded, save_split
 from searcher.errors import SearcherError
 from searcher.redact import redact
 from searcher.results.confirmed import Confirmation
@@ -65,6 +65,7 @@ def search(settings: SearchSettings, budget: dict | None = None, train: dict | N
     study, _ = open_study(settings.name, run.url, run.config, settings.sampler)
     run.folder.mkdir(parents=True, exist_ok=True)
     save_split(run.folder / "split.npz", run.data.dataset.indices, run.data.dataset.fingerprint)
+    save_decoded(run.folder, run.data.dataset)  # resume and export read these bytes instead of decoding again
     write_atomic(run.folder / "run.json", json.dumps(
         {"settings": {k: str(v) if isinstance(v, Path) else v for k, v in asdict(settings).items()}
          | {"storage": redact(run.url)}, "config": run.config.to_dict()}, indent=2, default=str))

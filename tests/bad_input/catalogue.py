@@ -186,6 +186,14 @@ SPACE_KEYS: dict[str, Rule] = {
     "train.label_smoothing": number_rule(lambda v: 0 <= v < 1),
     "train.channels_last": bools_rule(many=False),
     "train.eval_batch_size": int_rule(1, MAX_BATCH),
+    # [train.augment], written here as dotted keys inside [train] (TOML: augment.shift = 4)
+    "train.augment": Rule("table", lambda v: isinstance(v, dict) and not v),  # an empty table: all off
+    "train.augment.shift": int_rule(0, 64),
+    "train.augment.flip": bools_rule(many=False),
+    "train.augment.rotate": number_rule(lambda v: 0 <= v <= 180),
+    "train.augment.scale": number_rule(lambda v: 0 <= v <= 0.5),
+    "train.augment.brightness": number_rule(lambda v: 0 <= v <= 0.5),
+    "train.augment.contrast": number_rule(lambda v: 0 <= v <= 0.9),
 }
 
 # A small space that reads cleanly and censuses in milliseconds; each case changes one key.

@@ -80,7 +80,7 @@ DATA_FORMS: dict[str, Callable[[Path], str]] = {
     "npz: no images at all": npz(images=np.zeros((0, 12, 12), np.uint8), labels=np.zeros(0, np.int64)),
     "npz: images of text": npz(images=np.full((30, 12, 12), "a"), labels=LABELS),
     "npz: NaN pixels": npz(images=np.full((30, 12, 12), np.nan, np.float32), labels=LABELS),
-    "npz: pixels above 255": npz(images=np.full((30, 12, 12), 300, np.uint16), labels=LABELS),
+    "npz: pixels above 255": npz(images=np.full((30, 12, 12), 300, np.int32), labels=LABELS),  # uint16 is 16-bit
     "npz: negative pixels": npz(images=np.full((30, 12, 12), -1.0, np.float32), labels=LABELS),
     "npz: one-dimensional images": npz(images=np.zeros(30, np.uint8), labels=LABELS),
     "npz: two channels": npz(images=np.zeros((30, 12, 12, 2), np.uint8), labels=LABELS),
