@@ -37,7 +37,7 @@ from searcher.core.space_file import load_space  # noqa: E402
 from searcher.model.train import TrainSettings, evaluate  # noqa: E402
 from searcher.ship import c_build, int8_reference, onnx_files  # noqa: E402
 from searcher.ship.c_source import generate  # noqa: E402
-from searcher.ship.int8_check import int8_accuracy, quantized  # noqa: E402
+from searcher.ship.int8_check import int8_accuracy, quantized, unit_images  # noqa: E402
 from searcher.ship.quantize import QuantSettings, to_pixels  # noqa: E402
 
 CALIBRATIONS = {"minmax": QuantSettings(), "p99.99": QuantSettings(calibration="percentile", percentile=99.99),
@@ -81,7 +81,7 @@ def speed(count: int) -> None:
         ref_s, ref_acc = timed(lambda: int8_accuracy(*args, fast=False))
         assert fast_acc == ref_acc, (arch, fast_acc, ref_acc)
         net = quantized(model, arch, data.train.images)
-        pixels = to_pixels(data.test.images.numpy())
+        pixels = to_pixels(unit_images(data.test.images))
         ref_run, expected = timed(lambda: int8_reference.scores(net, pixels))
         fast_run, _ = timed(lambda: int8_reference.scores(net, pixels, fast=True), 2)
         c_rate = float("nan")
@@ -94,7 +94,7 @@ def speed(count: int) -> None:
         with c_build.scratch() as folder:
             onnx_files.write_fp32(model, arch, Path(folder) / "model.onnx")
             ort_rate = 1 / onnx_files.median_latency(onnx_files.session(Path(folder) / "model.onnx"),
-                                                     data.test.images.numpy()[:128], 1)
+                                                     unit_images(data.test.images[:128]), 1)
         shares.append(fast_s / result.seconds)
         print(f"{arch.to_text():<68}{cost(arch).macs:>9,}{result.seconds:>9.2f}{fast_s:>10.3f}s{fast_s / result.seconds:>7.1%}"
               f"{ref_s:>9.3f}s{ref_s / result.seconds:>7.1%}{len(pixels) / ref_run:>10.0f}{len(pixels) / fast_run:>11.0f}"

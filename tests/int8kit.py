@@ -18,6 +18,7 @@ from typing import Any
 import numpy as np
 import torch
 
+from searcher.ship.int8_check import unit_images
 from searcher.core.arch import Arch
 from searcher.data.load import Dataset, Split, load_dataset, resize_images, split_indices
 from searcher.model.build import build
@@ -56,7 +57,7 @@ def trained(arch: Arch, data: Dataset, settings: TrainSettings = TrainSettings()
     return model.eval(), result
 
 
-def torch_ptq_accuracy(model: Any, calibration: torch.Tensor, images: torch.Tensor, labels: torch.Tensor) -> float:
+def torch_ptq_accuracy(model: Any, calibration: Any, images: Any, labels: Any) -> float:
     """Accuracy of PyTorch's own FX post-training int8 quantization of `model` (see the module notes).
 
     The qnnpack engine: fbgemm's x86 kernels multiply uint8 by int8 in 16-bit pairs that can
@@ -66,6 +67,8 @@ def torch_ptq_accuracy(model: Any, calibration: torch.Tensor, images: torch.Tens
     from torch.ao.quantization import MinMaxObserver, PerChannelMinMaxObserver, QConfig, QConfigMapping
     from torch.ao.quantization.quantize_fx import convert_fx, prepare_fx
 
+    calibration, images = (torch.from_numpy(unit_images(x)) for x in (calibration, images))
+    labels = torch.as_tensor(np.asarray(labels))
     qconfig = QConfig(
         activation=MinMaxObserver.with_args(dtype=torch.quint8, qscheme=torch.per_tensor_affine),
         weight=PerChannelMinMaxObserver.with_args(dtype=torch.qint8, qscheme=torch.per_channel_symmetric))

@@ -185,9 +185,12 @@ class StandIn:
         self.started: list[int] = []
 
     def __call__(self, arch, *, seed, on_epoch, deadline, progress):
+        from searcher.model.metrics import Scores
+
         self.started.append(seed)
         for epoch in range(self.epochs):
             progress.history.append(self.accuracy)
+            progress.val_scores = Scores(self.accuracy, self.accuracy, (self.accuracy,), (1,))
             on_epoch(epoch, self.accuracy)
             if self.stop_early:
                 raise optuna.TrialPruned()  # as the loop's own policy would after a poor epoch

@@ -28,7 +28,7 @@ from searcher.model.build import build
 from searcher.model.train import TrainSettings, evaluate, reset_weights
 from searcher.ship import c_build, deploy_files, int8_reference, onnx_files
 from searcher.ship.c_source import generate
-from searcher.ship.int8_check import int8_accuracy, quantized, state_arrays
+from searcher.ship.int8_check import int8_accuracy, quantized, state_arrays, unit_images
 from searcher.ship.model_card import int8_section
 from searcher.ship.quantize import QuantSettings, float_forward, fold, quantize, to_pixels
 
@@ -71,12 +71,12 @@ def images_for(arch: Arch, count: int) -> np.ndarray:
     """Demo images (held-out split) at the candidate's input size; uniform noise for colour inputs."""
     if arch.input_shape[0] != 1:
         return np.random.default_rng(0).integers(0, 256, (count, *arch.input_shape)).astype(np.float32) / 255
-    return demo_data(arch.input_shape).test.images[:count].numpy()
+    return unit_images(demo_data(arch.input_shape).test.images[:count])
 
 
 def random_net(arch: Arch, seed: int = 0):
     model = seeded_model(arch, seed)
-    calibration = demo_data(arch.input_shape).train.images[:16].numpy() if arch.input_shape[0] == 1 else \
+    calibration = unit_images(demo_data(arch.input_shape).train.images[:16]) if arch.input_shape[0] == 1 else \
         np.random.default_rng(1).random((16, *arch.input_shape), dtype=np.float32)
     return model, quantize(arch, state_arrays(model), calibration)
 
@@ -270,7 +270,7 @@ def test_search_check_fast_and_reference_agree_on_validation(trained_case):
 def test_int8_onnx_agrees_with_the_reference_on_held_out_images(trained_case):
     _, arch, model, data = trained_case
     net = quantized(model, arch, data.train.images)
-    pixels = to_pixels(data.test.images.numpy())
+    pixels = to_pixels(unit_images(data.test.images))
     got = onnx_files.run(onnx_files.session(onnx_files.int8_model(net), fused=False), pixels.astype(np.float32) / 255)
     # onnxruntime, the file as written: top-1 agrees with the integer reference on ≥ 99% of held-out images.
     # (onnxruntime's default fused int8 kernels saturate 16-bit pair sums on x86 without VNNI: see onnx_files)

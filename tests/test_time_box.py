@@ -76,7 +76,7 @@ def test_prediction_for_a_measured_candidate_is_not_shorter_than_it_took(tmp_pat
 
     g = torch.Generator().manual_seed(0)
     split = Split(torch.rand(TRAIN_IMAGES, 1, 16, 16, generator=g), torch.randint(0, 8, (TRAIN_IMAGES,), generator=g))
-    data = SimpleNamespace(train=split, val=Split(split.images[:64], split.labels[:64]))
+    data = SimpleNamespace(num_classes=8, train=split, val=Split(split.images[:64], split.labels[:64]))
     data.at = lambda shape: data
     worker = memory_worker(tmp_path, trainer=TorchTrainer(data, TrainSettings(epochs=2, train_fraction=0.5, batch_size=16)))
     assert worker.step() in (TRAINED, STOPPED)

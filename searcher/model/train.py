@@ -45,6 +45,8 @@ class TrainResult:
     train_loss: float  # mean training loss of the last finished epoch; NaN if none finished
     train_size: int  # training images used per epoch, after train_fraction
     val_scores: Scores | None = None  # accuracy, balanced accuracy and recall per class after the last epoch
+    val_accuracy_int8: float | None = None  # the int8 model's validation accuracy, when the trainer measured it
+    int8_seconds: float = 0.0  # what measuring it took (quantizing and scoring)
 
 
 @dataclass
@@ -187,6 +189,7 @@ def train_candidate(
     `init_weights` is false) and dropout; torch's global generator is left as it was. One seed on one thread
     repeats exactly, and turning augmentation on leaves the batch order as it was.
     `metric` ("accuracy" or "balanced_accuracy") is the validation score kept in `history` and passed on;
+    with balanced accuracy the loss also weighs each class by the inverse of its share (`class_weights`);
     `classes` is the class count for per-class recall (default: the largest label seen, plus one).
     `on_epoch(epoch_index, score)` runs after each epoch (index from 0); what it raises, such as
     optuna.TrialPruned, propagates unchanged: pass a `progress` to keep the figures so far. Diverged and
@@ -213,6 +216,7 @@ def train_candidate(
     batch = min(settings.batch_size, count)
     steps = count // batch  # the short last batch is dropped; the order changes each epoch
     progress.train_size = count
+    weights = class_weights(train_labels, classes) if metric == "balanced_accuracy" else None
     with _thread_count(threads), torch.random.fork_rng(devices=[]):
         torch.manual_seed(seed)  # dropout and the like draw from here
         if init_weights:
@@ -225,7 +229,7 @@ def train_candidate(
                 order = torch.randperm(count, generator=generator)[: steps * batch].view(steps, batch)
                 try:
                     loss = _train_epoch(model, batches, train_labels, order, optimizer, schedule, settings,
-                                        deadline, progress, epoch, augmenter)
+                                        deadline, progress, epoch, augmenter, weights)
                 except TrainingStopped as stopped:
                     progress.seconds = time.monotonic() - started - waited
                     stopped.result = progress.result()
@@ -248,10 +252,20 @@ def train_candidate(
     return progress.result()
 
 
+def class_weights(labels: torch.Tensor, classes: int) -> torch.Tensor:
+    """Loss weights that make every class count alike: each class weighed by the inverse of its share of
+    the training images (common practice when balanced accuracy is the score), 1 for a class with none."""
+    counts = torch.bincount(labels, minlength=classes)[:classes].double()
+    present = counts > 0
+    weights = torch.ones(classes, dtype=torch.float64)
+    weights[present] = counts.sum() / (present.sum() * counts[present])
+    return weights.float()
+
+
 def _train_epoch(model: nn.Module, batches: Batches, labels: torch.Tensor, order: torch.Tensor,
                  optimizer: torch.optim.Optimizer, schedule: LRScheduler | None, settings: TrainSettings,
                  deadline: float | None, progress: TrainProgress, epoch: int,
-                 augmenter: Augmenter | None = None) -> float:
+                 augmenter: Augmenter | None = None, weights: torch.Tensor | None = None) -> float:
     """One pass, a batch per row of `order`; returns the mean loss. Counts its time even when it raises."""
     model.train()
     layout = torch.channels_last if settings.channels_last else torch.contiguous_format
@@ -266,7 +280,7 @@ def _train_epoch(model: nn.Module, batches: Batches, labels: torch.Tensor, order
             else:
                 h, w = batches.images.shape[-2:]
                 batch = augmenter.after_float(to_float(batches(index, augmenter.remap(len(index), h, w)), layout))
-            loss = F.cross_entropy(model(to_float(batch, layout)), labels[index],
+            loss = F.cross_entropy(model(to_float(batch, layout)), labels[index], weight=weights,
                                    label_smoothing=settings.label_smoothing)
             optimizer.zero_grad(set_to_none=True)
             loss.backward()

@@ -19,11 +19,11 @@ from searcher.core.stats import accuracy_se, spearman
 from searcher.errors import check_int, check_number
 from searcher.limits import MAX_CONFIRM_CANDIDATES, MAX_CONFIRM_SEEDS
 from searcher.results.pareto import COST_COLUMNS, feasible_mask
-from searcher.results.records import SCORED, TRAINED, distinct_rows
+from searcher.results.records import ACCURACY, METRICS, SCORED, TRAINED, Metric, distinct_rows
 
 RELIABLE_SPEARMAN = 0.6  # below this the proxy's ranking is called unreliable
-CONFIRMED_COLUMNS = ("trial", "arch", "seeds", "accuracy_mean", "accuracy_sd", "proxy_accuracy", "params", "macs",
-                     "peak_activation_bytes", "weight_bytes", "chosen_because")
+CONFIRMED_COLUMNS = ("trial", "arch", "seeds", *(c for m in METRICS.values() for c in (m.mean, m.sd, m.proxy)),
+                     "accuracy_int8_mean", "params", "macs", "peak_activation_bytes", "weight_bytes", "chosen_because")
 
 
 @dataclass(frozen=True)
@@ -60,7 +60,7 @@ def cost_columns(caps: dict[str, float], objective_cost: str | None) -> list[str
 
 
 def select(frame: pd.DataFrame, caps: dict[str, float], columns: Sequence[str], val_images: int,
-           settings: ConfirmSettings, seed: int) -> list[tuple[int, str]]:
+           settings: ConfirmSettings, seed: int, metric: Metric = ACCURACY) -> list[tuple[int, str]]:
     """Trial numbers to confirm, most important first, each with why it was chosen.
 
     On or near a front: a fully trained candidate within the caps that no candidate costing no more
@@ -69,10 +69,10 @@ def select(frame: pd.DataFrame, caps: dict[str, float], columns: Sequence[str], 
     accurate first), then the nearest. Then ``settings.extra`` other trained candidates at random.
     """
     rows = distinct_rows(frame)
-    trained = rows[(rows["state"] == TRAINED) & rows["val_accuracy"].notna()]
+    trained = rows[(rows["state"] == TRAINED) & rows[metric.column].notna()]
     trained = trained[feasible_mask(trained, caps)]
     gaps = np.full(len(trained), -np.inf)
-    acc = trained["val_accuracy"].to_numpy(dtype=float)
+    acc = trained[metric.column].to_numpy(dtype=float)
     noise = np.array([2 * accuracy_se(a, val_images) for a in acc])
     for column in columns:
         cost = trained[column].to_numpy(dtype=float)
@@ -83,35 +83,40 @@ def select(frame: pd.DataFrame, caps: dict[str, float], columns: Sequence[str], 
     chosen = [(int(trained.iloc[i]["trial"]), "on a front" if gaps[i] <= 0 else "within noise of a front")
               for i in order if gaps[i] <= 1.0][: settings.most]
     taken = {t for t, _ in chosen}
-    others = sorted(int(t) for t in rows.loc[rows["state"].isin(SCORED) & rows["val_accuracy"].notna(), "trial"]
+    others = sorted(int(t) for t in rows.loc[rows["state"].isin(SCORED) & rows[metric.column].notna(), "trial"]
                     if int(t) not in taken)
     chosen += [(t, "drawn at random") for t in random.Random(seed).sample(others, min(settings.extra, len(others)))]
     return chosen
 
 
 def confirmed_table(jobs: pd.DataFrame, frame: pd.DataFrame) -> pd.DataFrame:
-    """One row per confirmed candidate: its seeds' mean and sd, beside its proxy accuracy and costs.
+    """One row per confirmed candidate: its seeds' mean and sd of every score, beside its proxy's scores
+    and its costs (confirmed.csv).
 
-    ``jobs`` has one row per finished confirmation training: ``trial``, ``seed_index``,
-    ``val_accuracy`` and ``reason`` (why it was chosen); failed seeds carry a NaN accuracy and are
-    left out of the mean.
+    ``jobs`` has one row per finished confirmation training: ``trial``, ``seed_index``, a column per
+    score (``val_accuracy``, ``val_balanced_accuracy``, ``val_accuracy_int8``) and ``reason`` (why
+    it was chosen); a failed seed has NaN scores and is left out of the means.
     """
     if jobs.empty:
         return pd.DataFrame(columns=list(CONFIRMED_COLUMNS))
     done = jobs[jobs["val_accuracy"].notna()]
-    grouped = done.groupby("trial")["val_accuracy"]
-    table = pd.DataFrame({"seeds": grouped.size(), "accuracy_mean": grouped.mean(), "accuracy_sd": grouped.std(ddof=1)})
+    grouped = done.groupby("trial")
+    table = pd.DataFrame({"seeds": grouped.size()})
+    for m in METRICS.values():
+        table[m.mean], table[m.sd] = grouped[m.column].mean(), grouped[m.column].std(ddof=1)
+    table["accuracy_int8_mean"] = grouped["val_accuracy_int8"].mean()
     table["chosen_because"] = jobs.groupby("trial")["reason"].first()
     trials = frame.set_index("trial")
-    table = table.join(trials[["arch", "val_accuracy", *COST_COLUMNS]].rename(columns={"val_accuracy": "proxy_accuracy"}))
+    proxies = {m.column: m.proxy for m in METRICS.values()}
+    table = table.join(trials[["arch", *proxies, *COST_COLUMNS]].rename(columns=proxies))
     table = table.reset_index().rename(columns={"index": "trial"})
     return table[list(CONFIRMED_COLUMNS)].sort_values("params", kind="stable").reset_index(drop=True)
 
 
-def proxy_spearman(table: pd.DataFrame) -> float:
-    """Spearman's rho between proxy accuracy and confirmed mean over the confirmed set (NaN below 3)."""
-    usable = table[table["accuracy_mean"].notna() & table["proxy_accuracy"].notna()]
-    return spearman(usable["proxy_accuracy"], usable["accuracy_mean"]) if len(usable) >= 3 else math.nan
+def proxy_spearman(table: pd.DataFrame, metric: Metric = ACCURACY) -> float:
+    """Spearman's rho between the proxy's score and the confirmed mean over the confirmed set (NaN below 3)."""
+    usable = table[table[metric.mean].notna() & table[metric.proxy].notna()]
+    return spearman(usable[metric.proxy], usable[metric.mean]) if len(usable) >= 3 else math.nan
 
 
 @dataclass(frozen=True)
@@ -124,55 +129,56 @@ class Pick:
     reason: str
 
 
-def within_noise(best: pd.Series, other: pd.Series, tolerance: float | None) -> bool:
+def within_noise(best: pd.Series, other: pd.Series, tolerance: float | None, metric: Metric = ACCURACY) -> bool:
     """Is ``other``'s confirmed mean not credibly below ``best``'s?
 
     Credibly below: behind by more than ``tolerance``, or without one, by more than two standard
     errors of the difference of the two means, from the seeds' spread of each.
     """
-    behind = best["accuracy_mean"] - other["accuracy_mean"]
+    behind = best[metric.mean] - other[metric.mean]
     if tolerance is not None:
         return behind <= tolerance
-    spread = (best["accuracy_sd"] ** 2 / best["seeds"]) + (other["accuracy_sd"] ** 2 / other["seeds"])
+    spread = (best[metric.sd] ** 2 / best["seeds"]) + (other[metric.sd] ** 2 / other["seeds"])
     return behind <= 2 * math.sqrt(spread)
 
 
-def default_pick(table: pd.DataFrame, caps: dict[str, float], cost: str, tolerance: float | None) -> Pick | None:
+def default_pick(table: pd.DataFrame, caps: dict[str, float], cost: str, tolerance: float | None,
+                 metric: Metric = ACCURACY) -> Pick | None:
     """The cheapest confirmed candidate (by ``cost``) within the caps whose confirmed mean is not credibly
     below the best confirmed mean; None when no candidate has two confirmed seeds."""
-    usable = table[(table["seeds"] >= 2) & table["accuracy_mean"].notna()]
+    usable = table[(table["seeds"] >= 2) & table[metric.mean].notna()]
     usable = usable[feasible_mask(usable, caps)]
     if usable.empty:
         return None
-    best = usable.sort_values(["accuracy_mean", cost], ascending=[False, True]).iloc[0]
-    for _, row in usable.sort_values([cost, "accuracy_mean"], ascending=[True, False]).iterrows():
-        if within_noise(best, row, tolerance):
+    best = usable.sort_values([metric.mean, cost], ascending=[False, True]).iloc[0]
+    for _, row in usable.sort_values([cost, metric.mean], ascending=[True, False]).iterrows():
+        if within_noise(best, row, tolerance, metric):
             break
     rule = f"within {tolerance:.3f} of" if tolerance is not None else "within noise (2 standard errors) of"
     if int(row["trial"]) == int(best["trial"]):
-        reason = (f"trial {int(row['trial'])} has the best confirmed accuracy ({_mean(row)}) and no cheaper "
-                  f"candidate comes {rule} it")
+        reason = (f"trial {int(row['trial'])} has the best confirmed {metric.label} ({_mean(row, metric)}) and "
+                  f"no cheaper candidate comes {rule} it")
     else:
-        reason = (f"trial {int(row['trial'])} is the cheapest candidate {rule} the best: {_mean(row)} at "
-                  f"{int(row[cost]):,} {cost}, against trial {int(best['trial'])}'s {_mean(best)} at "
-                  f"{int(best[cost]):,} ({best[cost] / row[cost]:.1f}x the {cost})")
+        reason = (f"trial {int(row['trial'])} is the cheapest candidate {rule} the best: {_mean(row, metric)} "
+                  f"{metric.label} at {int(row[cost]):,} {cost}, against trial {int(best['trial'])}'s "
+                  f"{_mean(best, metric)} at {int(best[cost]):,} ({best[cost] / row[cost]:.1f}x the {cost})")
     return Pick(int(row["trial"]), str(row["arch"]), int(best["trial"]), reason)
 
 
-def _mean(row: pd.Series) -> str:
-    sd = row["accuracy_sd"]
-    return f"{row['accuracy_mean']:.4f} ± {sd:.4f} over {int(row['seeds'])} seeds" if math.isfinite(sd) else \
-        f"{row['accuracy_mean']:.4f} (1 seed)"
+def _mean(row: pd.Series, metric: Metric) -> str:
+    mean, sd = row[metric.mean], row[metric.sd]
+    return f"{mean:.4f} ± {sd:.4f} over {int(row['seeds'])} seeds" if math.isfinite(sd) else f"{mean:.4f} (1 seed)"
 
 
-def ranking_after(jobs: pd.DataFrame, table: pd.DataFrame, epochs: int) -> float:
-    """How the confirmation runs' own accuracy after ``epochs`` epochs ranks the candidates, against their
-    final confirmed means (Spearman's rho): what a proxy of that length on this schedule would give."""
+def ranking_after(jobs: pd.DataFrame, table: pd.DataFrame, epochs: int, metric: Metric = ACCURACY) -> float:
+    """How the confirmation runs' own score after ``epochs`` epochs (their per-epoch history is the run's
+    metric) ranks the candidates, against their final confirmed means (Spearman's rho): what a proxy of
+    that length on this schedule would give."""
     done = jobs[jobs["val_accuracy"].notna()]
     early = done.assign(early=[h[epochs - 1] if len(h) >= epochs else math.nan for h in done["history"]])
     means = early.groupby("trial")["early"].mean()
-    joined = table.set_index("trial")[["accuracy_mean"]].join(means, how="inner").dropna()
-    return spearman(joined["early"], joined["accuracy_mean"]) if len(joined) >= 3 else math.nan
+    joined = table.set_index("trial")[[metric.mean]].join(means, how="inner").dropna()
+    return spearman(joined["early"], joined[metric.mean]) if len(joined) >= 3 else math.nan
 
 
 @dataclass(frozen=True)
@@ -185,6 +191,7 @@ class Confirmation:
     pick: Pick | None
     queued: int  # jobs still waiting (a time box cut them) or running
     proxy_epochs: int
+    metric: Metric = ACCURACY  # the score ranked
 
     @property
     def reliable(self) -> bool:
@@ -207,6 +214,7 @@ class Confirmation:
                 "proxy_reliable": self.reliable, "proxy_epochs": self.proxy_epochs,
                 "ranking_after_epochs": {str(e): (None if not math.isfinite(r) else round(r, 4))
                                          for e, r in self.early.items()},
+                "metric": self.metric.name,
                 "confirmed": int((self.table["seeds"] > 0).sum()) if len(self.table) else 0,
                 "jobs_waiting": self.queued,
                 "pick": None if self.pick is None else {"trial": self.pick.trial, "arch": self.pick.arch,
@@ -214,10 +222,11 @@ class Confirmation:
 
 
 def confirmation(frame: pd.DataFrame, jobs: pd.DataFrame, caps: dict[str, float], cost: str, tolerance: float | None,
-                 proxy_epochs: int, full_epochs: int) -> Confirmation:
+                 proxy_epochs: int, full_epochs: int, metric: Metric = ACCURACY) -> Confirmation:
     """The confirmed table, the proxy's ranking quality and the default pick, from the stored jobs."""
     table = confirmed_table(jobs, frame)
-    early = {e: ranking_after(jobs, table, e) for e in sorted({proxy_epochs, 2 * proxy_epochs}) if e < full_epochs}
+    early = {e: ranking_after(jobs, table, e, metric) for e in sorted({proxy_epochs, 2 * proxy_epochs})
+             if e < full_epochs}
     waiting = int(jobs["state"].isin(["queued", "running"]).sum()) if len(jobs) else 0
-    return Confirmation(table, proxy_spearman(table), early, default_pick(table, caps, cost, tolerance), waiting,
-                        proxy_epochs)
+    return Confirmation(table, proxy_spearman(table, metric), early, default_pick(table, caps, cost, tolerance, metric),
+                        waiting, proxy_epochs, metric)

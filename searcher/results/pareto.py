@@ -98,8 +98,9 @@ def front(
     cost_column: str | Sequence[str],
     *,
     caps: Mapping[str, float | None] | None = None,
+    score: str = "val_accuracy",
 ) -> pd.DataFrame:
-    """The scored, feasible rows on the accuracy-vs-cost front, cheapest first.
+    """The scored, feasible rows on the score-vs-cost front, cheapest first (``score``: the column ranked).
 
     Only trained and stopped-early rows count, and only those meeting every cap:
     a candidate over budget is no answer however accurate. Several cost columns give
@@ -113,9 +114,9 @@ def front(
             raise SearcherError(f"cost {column!r} is not a cost column; use {one_of(column, COST_COLUMNS)}")
     scored = trials["state"].isin(SCORED).to_numpy() & feasible_mask(trials, caps)
     pool = trials[scored]
-    on_front = pareto_mask(pool["val_accuracy"].to_numpy(dtype=float), pool[columns].to_numpy(dtype=float))
+    on_front = pareto_mask(pool[score].to_numpy(dtype=float), pool[columns].to_numpy(dtype=float))
     chosen = pool[on_front]
-    return chosen.sort_values([columns[0], "val_accuracy"], ascending=[True, False], kind="stable")
+    return chosen.sort_values([columns[0], score], ascending=[True, False], kind="stable")
 
 
 def accuracy_per_doubling(accuracy: Sequence[float] | np.ndarray, cost: Sequence[float] | np.ndarray) -> np.ndarray:
@@ -140,13 +141,13 @@ def accuracy_per_doubling(accuracy: Sequence[float] | np.ndarray, cost: Sequence
     return gain
 
 
-def front_steps(front_rows: pd.DataFrame, cost_column: str) -> pd.DataFrame:
+def front_steps(front_rows: pd.DataFrame, cost_column: str, score: str = "val_accuracy") -> pd.DataFrame:
     """For each front row after the first: accuracy gained, cost multiplied, gain per doubling.
 
     ``front_rows`` is a front sorted by ``cost_column`` (what :func:`front` returns); the
     first row has NaN in every column, having no cheaper neighbour to compare with.
     """
-    acc = front_rows["val_accuracy"].to_numpy(dtype=float)
+    acc = front_rows[score].to_numpy(dtype=float)
     costs = front_rows[cost_column].to_numpy(dtype=float)
     with np.errstate(divide="ignore", invalid="ignore"):
         ratio = costs / np.r_[np.nan, costs[:-1]]

@@ -11,6 +11,7 @@ import math
 import os
 import socket
 import time
+from dataclasses import dataclass
 from typing import Any
 
 import optuna
@@ -18,11 +19,13 @@ import pandas as pd
 from optuna.trial import TrialState
 
 from searcher.core.arch import Arch
+from searcher.model.metrics import METRICS as SCORE_NAMES
 
 RECORD = "searcher"
 HEARTBEAT = "heartbeat"
 COLUMNS = (
-    "trial", "arch", "state", "reason", "rejected_by", "val_accuracy", "train_seconds", "epochs",
+    "trial", "arch", "state", "reason", "rejected_by", "val_accuracy", "val_balanced_accuracy", "val_accuracy_int8",
+    "val_recall", "train_seconds", "epochs",
     "params", "macs", "peak_activation_bytes", "weight_bytes", "training_bytes",
     "stages", "convs", "first_width", "last_width", "worker", "retry_of", "repeat_of",
 )
@@ -41,6 +44,24 @@ STATES = (TRAINED, STOPPED, REJECTED, FAILED, INTERRUPTED, RUNNING, NOT_STARTED,
 JUDGED = (TRAINED, STOPPED, REJECTED, FAILED, INTERRUPTED)  # 'tried': neither left for later nor yielded
 SCORED = (TRAINED, STOPPED)  # outcomes with a validation accuracy that can be compared
 SPENT = (TRAINED, STOPPED, FAILED)  # outcomes that cost training time
+
+
+@dataclass(frozen=True)
+class Metric:
+    """A score a search can rank by, and where each table keeps it."""
+
+    name: str  # as --metric takes it
+    label: str  # in words, for reports
+    column: str  # in the trials table: the proxy's validation score
+    mean: str  # in confirmed.csv: the seeds' mean
+    sd: str  # in confirmed.csv: the seeds' sample standard deviation
+    proxy: str  # in confirmed.csv: the proxy's score beside them
+
+
+# each score --metric can name, with its columns: val_accuracy, accuracy_mean, proxy_accuracy ...
+METRICS = {name: Metric(name, name.replace("_", " "), f"val_{name}", f"{name}_mean", f"{name}_sd", f"proxy_{name}")
+           for name in SCORE_NAMES}
+ACCURACY = METRICS["accuracy"]
 
 
 def worker_id() -> dict[str, Any]:
@@ -82,8 +103,9 @@ def row_of(trial: optuna.trial.FrozenTrial) -> dict[str, Any]:
                rejected_by=record.get("rejected_by", ""), arch=record.get("arch", ""))
     worker = trial.user_attrs.get("worker") or {}
     row["worker"] = f"{worker.get('host', '')}:{worker.get('pid', '')}" if worker else ""
-    if row["val_accuracy"] is None:
-        row["val_accuracy"] = math.nan
+    for column in ("val_accuracy", "val_balanced_accuracy", "val_accuracy_int8"):
+        if row[column] is None:
+            row[column] = math.nan
     return row
 
 
@@ -119,14 +141,13 @@ def distinct_rows(frame: pd.DataFrame) -> pd.DataFrame:
     return frame[frame["repeat_of"].isna()]
 
 
-def best_row(frame: pd.DataFrame, caps: dict[str, int]) -> dict[str, Any] | None:
-    """The fully trained candidate with the best validation accuracy that meets every cap (fewest
-    parameters on a tie): what ``export`` takes by default and what the summary and report call best."""
+def best_row(frame: pd.DataFrame, caps: dict[str, int], metric: Metric = ACCURACY) -> dict[str, Any] | None:
+    """The fully trained candidate with the best validation score that meets every cap (fewest parameters
+    on a tie): what the summary and report call best by the proxy."""
     rows = distinct_rows(frame)
-    rows = rows[(rows["state"] == TRAINED) & rows["val_accuracy"].notna()]
+    rows = rows[(rows["state"] == TRAINED) & rows[metric.column].notna()]
     for column, limit in caps.items():
         rows = rows[rows[column] <= limit]
     if rows.empty:
         return None
-    return rows.sort_values(["val_accuracy", "params"], ascending=[False, True]).iloc[0].to_dict()
-
+    return rows.sort_values([metric.column, "params"], ascending=[False, True]).iloc[0].to_dict()

@@ -19,6 +19,7 @@ import plotly.io as pio
 from plotly.offline import get_plotlyjs
 
 from searcher.errors import SearcherError
+from searcher.results.records import ACCURACY, Metric
 from searcher.results.records import (
     FAILED, INTERRUPTED, REJECTED, SCORED, TRAINED, best_row,
     counts as trial_counts, distinct_rows,
@@ -38,8 +39,9 @@ _TEXT_COLUMNS = ("arch", "state", "reason", "rejected_by")
 _NUMBER_COLUMNS = ("trial", "val_accuracy", *COST_COLUMNS, "stages", "first_width")
 
 
-def prepare(trials: pd.DataFrame) -> pd.DataFrame:
-    """A copy with every column the report reads, text blanks as '' and numbers as floats."""
+def prepare(trials: pd.DataFrame, metric: Metric = ACCURACY) -> pd.DataFrame:
+    """A copy with every column the report reads, text blanks as '' and numbers as floats; ``score`` is
+    the column of the run's metric (accuracy unless the search ranked by another)."""
     table = trials.copy()
     missing = [c for c in (*_TEXT_COLUMNS, *_NUMBER_COLUMNS) if c not in table.columns]
     if missing and len(table):
@@ -49,6 +51,7 @@ def prepare(trials: pd.DataFrame) -> pd.DataFrame:
         table[column] = text.where(text.notna(), "").astype(str)
     for column in _NUMBER_COLUMNS:
         table[column] = pd.to_numeric(table[column], errors="coerce") if column in table else np.nan
+    table["score"] = pd.to_numeric(table[metric.column], errors="coerce") if metric.column in table else np.nan
     if unknown := sorted(set(table["state"]) - set(STATE_LABELS)):
         log.warning("trials table has unknown states %s; the report counts them in no tile", unknown)
     return table
@@ -61,15 +64,15 @@ def _hover(rows: pd.DataFrame) -> list[str]:
         costs = " · ".join(f"{COST_LABELS[c][0]} {cost_text(c, getattr(row, c))}" for c in COST_COLUMNS)
         trial, state = "?" if math.isnan(row.trial) else int(row.trial), STATE_LABELS.get(row.state, row.state)
         lines.append(f"<b>{html.escape(row.arch, quote=False)}</b><br>trial {trial} · {state} · "
-                     f"accuracy {percent(row.val_accuracy)}<br>{costs}")
+                     f"score {percent(row.score)}<br>{costs}")
     return lines
 
 
 def _scored(table: pd.DataFrame) -> pd.DataFrame:
-    return table[table["state"].isin(SCORED) & table["val_accuracy"].notna()]
+    return table[table["state"].isin(SCORED) & table["score"].notna()]
 
 
-def _cost_figure(table: pd.DataFrame, cost: str, caps: dict[str, float]) -> go.Figure:
+def _cost_figure(table: pd.DataFrame, cost: str, caps: dict[str, float], metric: Metric) -> go.Figure:
     """Accuracy against one cost: every scored point, the feasible front, the cap line."""
     scored = _scored(table)
     fits = feasible_mask(scored, caps)
@@ -77,14 +80,14 @@ def _cost_figure(table: pd.DataFrame, cost: str, caps: dict[str, float]) -> go.F
     for state in SCORED:
         rows = scored[scored["state"] == state]
         fig.add_scatter(
-            x=rows[cost], y=rows["val_accuracy"], mode="markers", name=STATE_LABELS[state],
+            x=rows[cost], y=rows["score"], mode="markers", name=STATE_LABELS[state],
             marker={"color": COLOURS[state], "size": 8, "opacity": 0.8,
                     "symbol": np.where(fits[(scored["state"] == state).to_numpy()], "circle", "circle-open")},
             text=_hover(rows), hovertemplate="%{text}<extra></extra>",
         )
-    best = front(table, cost, caps=caps)
+    best = front(table, cost, caps=caps, score="score")
     fig.add_scatter(
-        x=best[cost], y=best["val_accuracy"], mode="lines+markers", name="Pareto front (within caps)",
+        x=best[cost], y=best["score"], mode="lines+markers", name="Pareto front (within caps)",
         line={"color": COLOURS["front"], "width": 2, "shape": "hv"},
         marker={"color": COLOURS["front"], "size": 11, "symbol": "diamond"},
         text=_hover(best), hovertemplate="%{text}<extra></extra>",
@@ -96,24 +99,24 @@ def _cost_figure(table: pd.DataFrame, cost: str, caps: dict[str, float]) -> go.F
                            xshift=4, showarrow=False, bgcolor="rgba(255,255,255,0.8)",
                            text=f"cap {cost_text(cost, limit)}", font={"color": COLOURS["cap"]})
     log_axis(fig, cost, [*scored[cost].tolist(), *([caps[cost]] if cost in caps else [])])
-    fig.update_yaxes(title="validation accuracy", tickformat=".0%", range=[0, 1] if scored.empty else None)
+    fig.update_yaxes(title=f"validation {metric.label}", tickformat=".0%", range=[0, 1] if scored.empty else None)
     return empty_note(fig, "no trained candidates yet", scored.empty)
 
 
-def _group_figure(table: pd.DataFrame, column: str, label: str) -> go.Figure:
+def _group_figure(table: pd.DataFrame, column: str, label: str, metric: Metric) -> go.Figure:
     """Accuracy spread for each value of one shape setting, every point shown."""
     scored = _scored(table)
     groups = ["?" if math.isnan(v) else f"{v:g}" for v in scored[column]]  # '?' where the table has no value
     names = sorted(set(groups) - {"?"}, key=float) + (["?"] if "?" in groups else [])
     fig = go.Figure(layout={"template": TEMPLATE, "title": f"Accuracy by {label}", "showlegend": False})
     fig.add_box(
-        x=groups, y=scored["val_accuracy"],
+        x=groups, y=scored["score"],
         boxpoints="all", jitter=0.4, pointpos=0, hoveron="points", marker={"color": COLOURS[TRAINED], "size": 6},
         line={"color": "#555"}, fillcolor="rgba(59,110,168,0.12)",
         text=_hover(scored), hovertemplate="%{text}<extra></extra>",
     )
     fig.update_xaxes(title=label, type="category", categoryorder="array", categoryarray=names)
-    fig.update_yaxes(title="validation accuracy", tickformat=".0%", range=[0, 1] if scored.empty else None)
+    fig.update_yaxes(title=f"validation {metric.label}", tickformat=".0%", range=[0, 1] if scored.empty else None)
     return empty_note(fig, "no trained candidates yet", scored.empty)
 
 
@@ -136,29 +139,30 @@ def _rejected_figure(table: pd.DataFrame) -> go.Figure:
 
 
 def build_figures(trials: pd.DataFrame, caps: Mapping[str, float | None] | None = None,
-                  confirmation: Confirmation | None = None) -> dict[str, go.Figure]:
+                  confirmation: Confirmation | None = None, metric: Metric = ACCURACY) -> dict[str, go.Figure]:
     """Every chart of the report, keyed by the column it is about, in page order."""
-    table, set_caps = prepare(trials), check_caps(caps)
-    figures = {cost: _cost_figure(table, cost, set_caps) for cost in COST_COLUMNS}
+    table, set_caps = prepare(trials, metric), check_caps(caps)
+    figures = {cost: _cost_figure(table, cost, set_caps, metric) for cost in COST_COLUMNS}
     for cost in COST_COLUMNS:
         add_confirmed(figures[cost], confirmation, cost)
     figures["proxy"] = proxy_figure(confirmation)
-    figures["stages"] = _group_figure(table, "stages", "depth (stages)")
-    figures["first_width"] = _group_figure(table, "first_width", "first width (channels)")
+    figures["stages"] = _group_figure(table, "stages", "depth (stages)", metric)
+    figures["first_width"] = _group_figure(table, "first_width", "first width (channels)", metric)
     figures["rejected_by"] = _rejected_figure(table)
     return figures
 
 
-def front_table_html(trials: pd.DataFrame, cost: str, caps: Mapping[str, float | None] | None = None) -> str:
-    """The front by one cost as an HTML table, with the accuracy each doubling of it buys."""
-    best = front(prepare(trials), cost, caps=caps)
+def front_table_html(trials: pd.DataFrame, cost: str, caps: Mapping[str, float | None] | None = None,
+                     metric: Metric = ACCURACY) -> str:
+    """The front by one cost as an HTML table, with the score each doubling of it buys."""
+    best = front(prepare(trials, metric), cost, caps=caps, score="score")
     if best.empty:
         return '<p class="quiet">No trained candidate within the caps yet, so no front.</p>'
-    steps = front_steps(best, cost)
-    heads = ["trial", "architecture", "accuracy", *(COST_LABELS[c][0] for c in COST_COLUMNS),
-             "step from the row above", f"accuracy per 2× {COST_LABELS[cost][0]}"]
+    steps = front_steps(best, cost, score="score")
+    heads = ["trial", "architecture", metric.label, *(COST_LABELS[c][0] for c in COST_COLUMNS),
+             "step from the row above", f"{metric.label} per 2× {COST_LABELS[cost][0]}"]
     rows = [
-        [str(int(row.trial)), f"<code>{html.escape(row.arch)}</code>", percent(row.val_accuracy),
+        [str(int(row.trial)), f"<code>{html.escape(row.arch)}</code>", percent(row.score),
          *(cost_text(c, getattr(row, c)) for c in COST_COLUMNS),
          "—" if math.isnan(step) else f"{step * 100:+.1f} pts for ×{ratio:.2f} cost",
          "—" if math.isnan(gain) else f"{gain * 100:+.1f} pts"]
@@ -179,7 +183,7 @@ def _failures_html(table: pd.DataFrame, most: int = 30) -> str:
 
 
 def _header_html(table: pd.DataFrame, caps: dict[str, float], title: str, notes: list[str],
-                 confirmation: Confirmation | None, sizes: dict[str, int]) -> str:
+                 confirmation: Confirmation | None, sizes: dict[str, int], metric: Metric) -> str:
     """Counts over every trial, as the search command's summary gives them; the best among distinct ones."""
     counts = trial_counts(table)
     tiles = [("tried", counts["tried"])]
@@ -188,10 +192,10 @@ def _header_html(table: pd.DataFrame, caps: dict[str, float], title: str, notes:
     if counts["repeats"]:
         tiles.append(("reused a known outcome", counts["repeats"]))
     tile_html = "".join(f'<div class="tile"><b>{n}</b><span>{html.escape(w)}</span></div>' for w, n in tiles)
-    top = best_row(table, caps)  # the best is fully trained, as exported; fewest params wins a tie
+    top = best_row(table, caps, metric)  # fully trained; fewest params wins a tie
     best = "No candidate within the caps has been fully trained yet." if top is None else (
-        f"Best fully trained within the caps: <b>{percent(top['val_accuracy'])}</b> by "
-        f"<code>{html.escape(top['arch'])}</code> (trial {int(top['trial'])}).")
+        f"Best fully trained within the caps by the proxy: <b>{percent(top[metric.column])}</b> "
+        f"{html.escape(metric.label)} by <code>{html.escape(top['arch'])}</code> (trial {int(top['trial'])}).")
     cap_words = ", ".join(f"{COST_LABELS[c][0]} ≤ {cost_text(c, v)}" for c, v in caps.items()) or "none set"
     note_html = "".join(f"<li>{html.escape(line)}</li>" for line in notes)
     return (f"<header><h1>{html.escape(title)}</h1><div class='tiles'>{tile_html}</div><p>{best}</p>"
@@ -215,13 +219,26 @@ tbody tr:nth-child(odd) { background: #fafafa; } .numbers td, .numbers th { text
 @media (min-width: 900px) { .pair { grid-template-columns: 1fr 1fr; } }"""
 
 
+def recall_html(table: pd.DataFrame, caps: dict[str, float], metric: Metric, class_names: tuple[str, ...]) -> str:
+    """Validation recall of each class for the best candidate: where a rare class is missed, it shows."""
+    top = best_row(table, caps, metric)
+    recall = None if top is None else top.get("val_recall")
+    if not isinstance(recall, (list, tuple)) or not recall:
+        return ""
+    names = class_names if len(class_names) == len(recall) else tuple(str(i) for i in range(len(recall)))
+    rows = [[html.escape(name), percent(value if value is not None else math.nan)] for name, value in zip(names, recall)]
+    return (f"<h2>Recall per class, trial {int(top['trial'])} (validation split)</h2>"
+            + table_html(["class", "recall"], rows, "numbers"))
+
+
 def render_html(trials: pd.DataFrame, *, caps: Mapping[str, float | None] | None, title: str,
                 notes: list[str] | None = None, confirmation: Confirmation | None = None,
-                sizes: dict[str, int] | None = None) -> str:
+                sizes: dict[str, int] | None = None, metric: Metric = ACCURACY,
+                class_names: tuple[str, ...] = ()) -> str:
     """The whole page as text: header, one section per cost with its fronts, then the rest."""
-    everything, set_caps = prepare(trials), check_caps(caps)
+    everything, set_caps = prepare(trials, metric), check_caps(caps)
     table = distinct_rows(everything)  # a repeat of a known outcome is shown once, where it was trained
-    figures = build_figures(table, set_caps, confirmation)
+    figures = build_figures(table, set_caps, confirmation, metric)
 
     def div(key: str) -> str:
         return pio.to_html(figures[key], config=CONFIG, include_plotlyjs=False, full_html=False, div_id=f"fig-{key}")
@@ -229,10 +246,10 @@ def render_html(trials: pd.DataFrame, *, caps: Mapping[str, float | None] | None
     sections = [
         f"<section>{div(c)}<h2>Pareto front by {html.escape(COST_LABELS[c][0])}</h2>"
         f"{confirmed_front_html(confirmation, c, set_caps)}<h3>Proxy front by {html.escape(COST_LABELS[c][0])}</h3>"
-        f"{front_table_html(table, c, set_caps)}</section>"
+        f"{front_table_html(table, c, set_caps, metric)}</section>"
         for c in COST_COLUMNS
     ]
-    sections.insert(0, f"<section>{div('proxy')}</section>")
+    sections.insert(0, f"<section>{div('proxy')}{recall_html(table, set_caps, metric, class_names)}</section>")
     sections.append(f"<section><h2>Shape</h2><div class='pair'>{div('stages')}{div('first_width')}</div></section>")
     sections.append(
         f"<section><h2>Rejected, failed or interrupted</h2>{div('rejected_by')}{_failures_html(table)}</section>"
@@ -241,17 +258,19 @@ def render_html(trials: pd.DataFrame, *, caps: Mapping[str, float | None] | None
         f"<!doctype html>\n<html lang='en'><head><meta charset='utf-8'><title>{html.escape(title)}</title>"
         f"<style>{_STYLE}</style><script>window.PlotlyConfig = {{MathJaxConfig: 'local'}};</script>"
         f"<script>{get_plotlyjs()}</script></head>\n<body><main>"
-        f"{_header_html(everything, set_caps, title, list(notes or []), confirmation, sizes or {})}"
+        f"{_header_html(everything, set_caps, title, list(notes or []), confirmation, sizes or {}, metric)}"
         f"{''.join(sections)}</main></body></html>\n"
     )
 
 
 def write_report(trials: pd.DataFrame, path: Path, *, caps: dict[str, float], title: str,
                  notes: list[str] | None = None, confirmation: Confirmation | None = None,
-                 sizes: dict[str, int] | None = None) -> Path:
+                 sizes: dict[str, int] | None = None, metric: Metric = ACCURACY,
+                 class_names: tuple[str, ...] = ()) -> Path:
     """Write the report to ``path`` atomically, so a reader never sees half a page."""
     path = Path(path)
-    text = render_html(trials, caps=caps, title=title, notes=notes, confirmation=confirmation, sizes=sizes)
+    text = render_html(trials, caps=caps, title=title, notes=notes, confirmation=confirmation, sizes=sizes,
+                       metric=metric, class_names=class_names)
     write_atomic(path, text)
     log.info("wrote report %s (%d trials)", path, len(trials))
     return path

@@ -16,7 +16,7 @@ from optuna.trial import TrialState
 
 from searcher.core.budget import Budget
 from searcher.redact import redact
-from searcher.results.records import HEARTBEAT, best_row, counts, trials_frame
+from searcher.results.records import HEARTBEAT, METRICS, best_row, counts, trials_frame
 from searcher.results.tables import gather, write_results
 from searcher.runs import RUNS
 from searcher.study.liveness import Registry, is_dead
@@ -46,13 +46,14 @@ class RunStatus:
 
     def lines(self) -> list[str]:
         c, config = self.counts, self.config
+        metric = METRICS[config.metric]
         lines = [
             f"run {self.name}: space {config.space_name}, data {redact(config.data)}, objective {config.objective}",
             f"budget: {Budget(**config.budget).describe()}",
             f"tried {c['tried']}: rejected {c['rejected']}, trained {c['trained']}, stopped early "
             f"{c['stopped_early']}, failed {c['failed']}, interrupted {c['interrupted']}, running {c['running']}",
             f"training time used: {self.training_seconds / 60:.1f} min",
-            "best fitting: " + (f"trial {self.best['trial']} accuracy {self.best['val_accuracy']:.4f} "
+            "best fitting: " + (f"trial {self.best['trial']} {metric.label} {self.best[metric.column]:.4f} "
                                 f"{self.best['arch']}" if self.best else "none yet"),
         ]
         for t in self.running:
@@ -79,7 +80,7 @@ def status(name: str, storage: str | None = None, root: Path = RUNS) -> RunStatu
         running.append(RunningTrial(t.number, f"{worker.get('host', '?')}:{worker.get('pid', '?')}",
                                     None if beat is None else now - beat, is_dead(t, now, host, alone)))
     return RunStatus(name, config, counts(frame), float(frame["train_seconds"].sum()),
-                     best_row(frame, Budget(**config.budget).caps()), tuple(running))
+                     best_row(frame, Budget(**config.budget).caps(), METRICS[config.metric]), tuple(running))
 
 
 def report(name: str, storage: str | None = None, root: Path = RUNS) -> list[Path]:

@@ -21,7 +21,7 @@ from searcher.core.train_settings import TrainSettings
 from searcher.data.load import load_split
 from searcher.results.confirmed import Confirmation, confirmation
 from searcher.results.pareto import front
-from searcher.results.records import best_row, counts, distinct_rows, trials_frame
+from searcher.results.records import METRICS, Metric, best_row, counts, distinct_rows, trials_frame
 from searcher.results.report import write_report
 from searcher.runs import write_atomic
 from searcher.study.confirm import full_schedule, read_jobs
@@ -43,6 +43,10 @@ class RunResults:
         return Budget(**self.config.budget)
 
     @property
+    def metric(self) -> Metric:
+        return METRICS[self.config.metric]
+
+    @property
     def cost(self) -> str:
         """The cost the default pick is cheapest in: the objective's, or parameters."""
         return OBJECTIVES[self.config.objective] or "params"
@@ -56,7 +60,7 @@ def gather(name: str, study: optuna.Study, url: str, config: RunConfig, folder: 
     proxy = TrainSettings(**config.train)
     confirmed = None if jobs.empty else confirmation(frame, jobs, Budget(**config.budget).caps(),
                                                      OBJECTIVES[config.objective] or "params", tolerance,
-                                                     proxy.epochs, full_schedule(proxy).epochs)
+                                                     proxy.epochs, full_schedule(proxy).epochs, METRICS[config.metric])
     split = folder / "split.npz"
     sizes = {part: len(indices) for part, indices in load_split(split)[0].items()} if split.exists() else {}
     return RunResults(name, config, frame, confirmed, sizes)
@@ -74,11 +78,11 @@ def fronts(frame: pd.DataFrame, budget: Budget) -> pd.DataFrame:
 def summary(results: RunResults, extra: dict | None = None) -> dict:
     """summary.json: counts, the best proxy candidate, the split sizes with the noise of an accuracy on
     each, and what confirmation found (``proxy_spearman`` is null below 3 confirmed candidates)."""
-    best = best_row(results.frame, results.budget.caps())
+    best = best_row(results.frame, results.budget.caps(), results.metric)
     noise = {part: {"images": n, "accuracy_se_at_0.9": round(accuracy_se(0.9, n), 4)} for part, n in results.sizes.items()}
-    data = {"run": results.name, "counts": counts(results.frame),
+    data = {"run": results.name, "metric": results.metric.name, "counts": counts(results.frame),
             "best_proxy": None if best is None else {"trial": int(best["trial"]), "arch": best["arch"],
-                                                     "val_accuracy": float(best["val_accuracy"])},
+                                                     results.metric.column: float(best[results.metric.column])},
             "splits": noise, "proxy_spearman": None}
     if results.confirmation is not None:
         data |= results.confirmation.summary()
@@ -97,7 +101,8 @@ def write_results(folder: Path, results: RunResults, *, title: str, notes: list[
     written.append(write_atomic(folder / "summary.json", json.dumps(_plain(summary(results, extra)), indent=2)))
     notes = [f"budget: {budget.describe()}", *notes]
     written.append(write_report(frame, folder / "report.html", caps=budget.caps(), title=title, notes=notes,
-                                confirmation=results.confirmation, sizes=results.sizes))
+                                confirmation=results.confirmation, sizes=results.sizes, metric=results.metric,
+                                class_names=tuple(results.config.class_names)))
     return written
 
 

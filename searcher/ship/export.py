@@ -16,6 +16,7 @@ entry point of its own ahead-of-time and on-device tool chains.
 from __future__ import annotations
 
 import json
+import math
 import logging
 import shutil
 import time
@@ -36,7 +37,8 @@ from searcher.core.stats import wilson_interval
 from searcher.data.layout import concatenate
 from searcher.data.load import load_dataset, load_split
 from searcher.model.build import build
-from searcher.model.train import TrainSettings, evaluate, train_candidate
+from searcher.model.train import TrainSettings, evaluate_scores, train_candidate
+from searcher.study.confirm import full_schedule
 from searcher.results.confirmed import check_tolerance, default_pick
 from searcher.results.records import FAILED, REJECTED, TRAINED, best_row
 from searcher.results.tables import RunResults, gather
@@ -94,6 +96,7 @@ class ExportOutcome:
     fits: bool
     model: Any = None  # the retrained torch module, in eval mode
     deploy: DeployReport | None = None  # the int8 model's accuracy, the ONNX and C checks and figures
+    test_balanced_accuracy: float = math.nan  # mean recall over the classes of the held-out split
 
     @property
     def test_accuracy_int8(self) -> float | None:
@@ -124,7 +127,9 @@ def choose(results: RunResults, settings: ExportSettings) -> Choice:
         if confirmed is None or trial not in confirmed.index:
             return None
         row = confirmed.loc[trial]
-        return {"mean": float(row["accuracy_mean"]), "sd": float(row["accuracy_sd"]), "seeds": int(row["seeds"])}
+        metric = results.metric
+        return {"metric": metric.name, "mean": float(row[metric.mean]), "sd": float(row[metric.sd]),
+                "seeds": int(row["seeds"])}
 
     if settings.trial is not None:
         rows = frame[frame["trial"] == settings.trial]
@@ -132,19 +137,22 @@ def choose(results: RunResults, settings: ExportSettings) -> Choice:
             raise SearcherError(f"`--trial` {settings.trial} is not a trial of run {settings.name!r} with an architecture "
                                 f"(trials 0-{len(frame) - 1})", key="--trial")
         row = rows.iloc[0]
-        how = f"trial {settings.trial} ({row['state']}, proxy validation accuracy {row['val_accuracy']:.4f}), named with --trial"
+        how = (f"trial {settings.trial} ({row['state']}, proxy validation {results.metric.label} "
+               f"{row[results.metric.column]:.4f}), named with --trial")
         return Choice(parse_arch(row["arch"]), settings.trial, how, str(row["state"]), facts(settings.trial))
     pick = None
     if results.confirmation is not None:
-        pick = default_pick(results.confirmation.table, results.budget.caps(), results.cost, settings.tolerance)
+        pick = default_pick(results.confirmation.table, results.budget.caps(), results.cost, settings.tolerance,
+                            results.metric)
     if pick is not None:
         return Choice(parse_arch(pick.arch), pick.trial, pick.reason, TRAINED, facts(pick.trial))
-    best = best_row(frame, results.budget.caps())
+    best = best_row(frame, results.budget.caps(), results.metric)
     if best is None:
         raise SearcherError(f"run {settings.name!r} has no fully trained candidate that fits the budget yet; "
                             f"let the search run longer, or name one with --trial or --arch", key="--name")
     how = (f"trial {int(best['trial'])} has the best proxy validation accuracy among fitting candidates "
-           f"({best['val_accuracy']:.4f}); no candidate has two confirmed seeds yet, so this rests on one short training")
+           f"({results.metric.label} {best[results.metric.column]:.4f}); no candidate has two confirmed seeds yet, so "
+           f"this rests on one short training")
     return Choice(parse_arch(best["arch"]), int(best["trial"]), how, TRAINED, facts(int(best["trial"])))
 
 
@@ -185,28 +193,30 @@ def export(settings: ExportSettings) -> ExportOutcome:
         raise SearcherError(f"the data at {config.data} changed since run {settings.name!r} searched it "
                             f"(fingerprint {dataset.fingerprint}, was {config.data_fingerprint})", key="--data")
     data = RunData(dataset).at(arch.input_shape)
-    base = TrainSettings(**config.train)
-    epochs = settings.epochs or max(10, 3 * base.epochs)
-    train_settings = replace(base, epochs=epochs, train_fraction=1.0)
+    train_settings = full_schedule(TrainSettings(**config.train))
+    if settings.epochs:
+        train_settings = replace(train_settings, epochs=settings.epochs)
+    epochs = train_settings.epochs
     images = concatenate([data.train.images, data.val.images])  # stays pixel-major: batches need no transposing
     labels = np.concatenate([data.train.labels, data.val.labels])
     model = build(arch)
     started = time.time()
     # the schedule's own validation pass reads the training data here: the test split stays unseen
     result = train_candidate(model, images, labels, data.train.images[:256], data.train.labels[:256],
-                             train_settings, seed=config.seed)
-    accuracy, predictions = evaluate(model, data.test.images, data.test.labels)
+                             train_settings, seed=config.seed, metric=config.metric, classes=config.classes)
+    scores, predictions = evaluate_scores(model, data.test.images, data.test.labels, config.classes)
     confusion = _confusion(data.test.labels, predictions.numpy(), config.classes)
     per_class = {name: float(confusion[i, i] / max(1, confusion[i].sum())) for i, name in enumerate(config.class_names)}
     totals = budget.totals(cost(arch, budget.activation_precision))
     fits = not budget.check(totals)
-    outcome = ExportOutcome(folder / "export", arch, accuracy, per_class, confusion.tolist(), totals, fits, model)
+    outcome = ExportOutcome(folder / "export", arch, scores.accuracy, per_class, confusion.tolist(), totals, fits,
+                            model, test_balanced_accuracy=scores.balanced_accuracy)
     extra = {"run": settings.name, "how": how, "trial": choice.trial, "confirmed": choice.confirmed, "epochs": epochs,
              "train_seconds": result.seconds, "train_size": len(labels),
              "sizes": {p: len(getattr(data, p).labels) for p in ("train", "val", "test")},
              "settings": asdict(train_settings), "budget": budget, "config": config}
     _write(outcome, model, extra, data)
-    log.info("exported %s: test accuracy %.4f (int8 %.4f) on %d held-out images (%.0f s in all)", arch, accuracy,
+    log.info("exported %s: test accuracy %.4f (int8 %.4f) on %d held-out images (%.0f s in all)", arch, scores.accuracy,
              outcome.test_accuracy_int8, len(data.test.labels), time.time() - started)
     return outcome
 
@@ -243,7 +253,8 @@ def _write(outcome: ExportOutcome, model: Any, extra: dict, data: Any) -> None:
         torch.export.save(program, str(temp / "model.pt2"))
         outcome.deploy = write_deploy_files(temp, model, arch, data.train.images, data.test.images, data.test.labels,
                                             extra["config"].class_names)
-        metrics = {"arch": arch.to_text(), "test_accuracy": outcome.test_accuracy, "per_class": outcome.per_class,
+        metrics = {"arch": arch.to_text(), "test_accuracy": outcome.test_accuracy,
+                   "test_balanced_accuracy": outcome.test_balanced_accuracy, "per_class": outcome.per_class,
                    "confusion": outcome.confusion, "costs": outcome.costs, "fits_budget": outcome.fits,
                    "sizes": extra["sizes"], "epochs": extra["epochs"], "chosen": extra["how"], "trial": extra["trial"],
                    "confirmed": extra["confirmed"], "test_accuracy_interval95": list(test_interval(outcome)),

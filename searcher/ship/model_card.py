@@ -94,7 +94,8 @@ def model_card(outcome: Any, extra: dict) -> str:
                                 int(sum(map(sum, outcome.confusion))))
     facts = extra.get("confirmed")
     confirmed = ("\nNot confirmed: its validation accuracy comes from one short proxy training." if not facts else
-                 f"\nConfirmed before export: validation accuracy {facts['mean']:.4f} ± {facts['sd']:.4f} (mean ± sd) "
+                 f"\nConfirmed before export: validation {facts['metric'].replace('_', ' ')} {facts['mean']:.4f} ± "
+                 f"{facts['sd']:.4f} (mean ± sd) "
                  f"over {facts['seeds']} seeds of the full schedule on the training split.")
     return f"""# Model card: `{arch.to_text()}`
 
@@ -118,9 +119,10 @@ stratified by class: {sizes['train']} training, {sizes['val']} validation, {size
 The test split was not used by the search or by this training.
 
 ## Test accuracy (held-out split, {sizes['test']} images)
-| fp32 (torch) | int8 (integer reference) |
-|---|---|
-| **{outcome.test_accuracy:.4f}** | **{outcome.test_accuracy_int8:.4f}** |
+| score | fp32 (torch) | int8 (integer reference) |
+|---|---|---|
+| accuracy | **{outcome.test_accuracy:.4f}** | **{outcome.test_accuracy_int8:.4f}** |
+| balanced accuracy (mean recall per class) | **{outcome.test_balanced_accuracy:.4f}** | — |
 
 fp32: 95% interval {low:.4f}–{high:.4f} (Wilson's score interval at {sizes['test']} images).
 {confirmed}

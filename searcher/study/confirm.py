@@ -29,6 +29,7 @@ from searcher.core.cost import cost
 from searcher.core.train_settings import TrainSettings
 from searcher.model.train import Diverged, OutOfTime, TrainProgress
 from searcher.results.confirmed import ConfirmSettings, cost_columns, select
+from searcher.results.records import ACCURACY, Metric
 from searcher.results.records import (
     DUPLICATE, FAILED, INTERRUPTED, NOT_STARTED, RECORD, TRAINED, TRAINING, record_of, trials_frame,
 )
@@ -37,11 +38,12 @@ from searcher.study.liveness import Heartbeat, Registry, claim, queue_retry, rec
 from searcher.study.optuna_private import queued_params
 from searcher.study.storage import OBJECTIVES, open_storage, trial_seed
 from searcher.study.timebox import Throughput
-from searcher.study.worker import RECOVER_SECONDS, Trainer
+from searcher.study.worker import RECOVER_SECONDS, Trainer, scores_of
 
 log = logging.getLogger(__name__)
 
 EMPTY = "empty"  # a trial asked when another worker had just taken the last queued job: nothing to do
+SCORES = ("val_accuracy", "val_balanced_accuracy", "val_accuracy_int8")  # each job's scores, as confirmed.csv reads them
 
 
 def confirm_name(name: str) -> str:
@@ -83,21 +85,22 @@ def jobs_frame(study: optuna.Study | None) -> pd.DataFrame:
             continue
         state = "running" if t.state == TrialState.RUNNING else "queued" if t.state == TrialState.WAITING \
             else record.get("state", FAILED)
-        accuracy = record.get("val_accuracy") if state == TRAINED else None
+        scores = {key: (record.get(key) if state == TRAINED else None) for key in SCORES}
         rows.append({"job": t.number, "trial": record["trial"], "seed_index": record["seed_index"], "state": state,
-                     "val_accuracy": math.nan if accuracy is None else accuracy, "reason": record.get("chosen", ""),
-                     "train_seconds": record.get("train_seconds", 0.0), "history": record.get("history", [])})
-    return pd.DataFrame(rows, columns=["job", "trial", "seed_index", "state", "val_accuracy", "reason",
-                                       "train_seconds", "history"])
+                     **{key: math.nan if value is None else value for key, value in scores.items()},
+                     "reason": record.get("chosen", ""), "train_seconds": record.get("train_seconds", 0.0),
+                     "history": record.get("history", [])})
+    return pd.DataFrame(rows, columns=["job", "trial", "seed_index", "state", *SCORES, "reason", "train_seconds",
+                                       "history"])
 
 
 def plan(study: optuna.Study, main: optuna.Study, budget: Budget, objective: str, val_images: int,
-         settings: ConfirmSettings, seed: int) -> int:
+         settings: ConfirmSettings, seed: int, metric: Metric = ACCURACY) -> int:
     """Queue every job of the current selection that has no trial yet (seed-major, most important first,
     so a time box cut leaves every candidate with as many seeds as possible); the number queued."""
     frame = trials_frame(main)
     chosen = select(frame, budget.caps(), cost_columns(budget.caps(), OBJECTIVES[objective]), val_images,
-                    settings, seed)
+                    settings, seed, metric)
     have = set()
     for t in study.get_trials(deepcopy=False):
         params = t.params or queued_params(t) or {}
@@ -221,16 +224,18 @@ class Confirmer:
         else:
             self.throughput.add(self._macs(arch), progress.images_seen, result.seconds)
             self.tally.trained += state == TRAINED
-        record |= {"val_accuracy": result.val_accuracy if math.isfinite(result.val_accuracy) else None,
-                   "history": list(result.history), "train_seconds": round(result.seconds, 3), "epochs": result.epochs,
-                   "seed": seed}
-        return self._end(trial, record, state, reason, TrialState.COMPLETE if state == TRAINED else TrialState.FAIL)
+        record |= scores_of(result) | {"history": list(result.history), "train_seconds": round(result.seconds, 3),
+                                       "epochs": result.epochs, "seed": seed}
+        score = result.history[-1] if result.history else math.nan  # the run's metric, as the search told it
+        record["score"] = score if math.isfinite(score) else None
+        return self._end(trial, record, state, reason, TrialState.COMPLETE if state == TRAINED and record["score"]
+                         is not None else TrialState.FAIL)
 
     def _end(self, trial: optuna.Trial, record: dict, state: str, reason: str, optuna_state: TrialState) -> str:
         record = record | {"state": state, "reason": reason}
         trial.set_user_attr(RECORD, record)
         if optuna_state == TrialState.COMPLETE:
-            self.study.tell(trial, record["val_accuracy"])
+            self.study.tell(trial, record["score"])
         else:
             self.study.tell(trial, state=optuna_state)
         if self.plan.flush is not None and state in (TRAINED, FAILED):

@@ -19,8 +19,9 @@ from searcher.core.arch import Arch, parse_arch
 from searcher.core.train_settings import TrainSettings
 from searcher.model.build import build
 from searcher.model.train import TrainProgress, TrainResult, train_candidate
+from searcher.ship.int8_check import int8_accuracy
 from searcher.results.confirmed import ConfirmSettings, cost_columns, select
-from searcher.results.records import REJECTED, TRAINED, trials_frame
+from searcher.results.records import METRICS, REJECTED, TRAINED, trials_frame
 from searcher.study.confirm import ConfirmPlan, Confirmer, ConfirmTally, full_schedule, open_confirm_study, plan
 from searcher.study.ending import Ending, Phases, StopReason
 from searcher.study.ledger import Ledger
@@ -34,22 +35,35 @@ log = logging.getLogger(__name__)
 
 @dataclass(frozen=True)
 class TorchTrainer:
-    """The default :class:`searcher.study.worker.Trainer`: build the candidate and train it on the run's data."""
+    """The default :class:`searcher.study.worker.Trainer`: build the candidate and train it on the run's data.
+
+    With ``int8``, a candidate that finished its schedule is also quantized and scored in integers
+    on the validation split (:func:`searcher.ship.int8_check.int8_accuracy`), so a budget in int8
+    sees the accuracy of the model that will ship.
+    """
 
     data: RunData
     settings: TrainSettings
     threads: int | None = None  # torch threads while training; None leaves torch's setting alone
+    metric: str = "accuracy"  # the validation score reported each epoch
+    int8: bool = False  # measure the int8 validation accuracy after training
 
     @classmethod
     def for_run(cls, run: PreparedRun, threads: int | None = None) -> TorchTrainer:
-        return cls(run.data, run.train, threads)
+        return cls(run.data, run.train, threads, run.settings.metric, run.budget.weight_precision == "int8")
 
     def __call__(self, arch: Arch, *, seed: int, on_epoch: Callable[[int, float], None], deadline: float | None,
                  progress: TrainProgress) -> TrainResult:
         split = self.data.at(arch.input_shape)
-        return train_candidate(build(arch), split.train.images, split.train.labels, split.val.images,
-                               split.val.labels, self.settings, seed=seed, on_epoch=on_epoch, deadline=deadline,
-                               threads=self.threads, progress=progress)
+        model = build(arch)
+        result = train_candidate(model, split.train.images, split.train.labels, split.val.images, split.val.labels,
+                                 self.settings, seed=seed, on_epoch=on_epoch, deadline=deadline, threads=self.threads,
+                                 progress=progress, metric=self.metric, classes=self.data.num_classes)
+        if not self.int8:
+            return result
+        started = time.monotonic()
+        accuracy = int8_accuracy(model, arch, split.train.images, split.val.images, split.val.labels)
+        return replace(result, val_accuracy_int8=accuracy, int8_seconds=time.monotonic() - started)
 
 
 TrainerFor = Callable[[PreparedRun, "int | None"], Trainer]  # (prepared run, torch threads) -> its trainer
@@ -76,7 +90,8 @@ def run_worker(run: PreparedRun, study: optuna.Study, deadline: float | None, in
         reserve=confirmation_reserve(run, confirm, deadline - time.time()) if confirm and confirm.on and deadline else None,
     )
     trainer = (trainer_for or TorchTrainer.for_run)(run, threads)
-    worker = Worker(study, run.space, run.budget, run.train, s.objective, run.data.num_classes, plan, trainer)
+    worker = Worker(study, run.space, run.budget, run.train, s.objective, run.data.num_classes, plan, trainer,
+                    METRICS[s.metric])
     worker.on_proposal = progress_printer(deadline, prefix=f"[worker {index}] " if s.workers > 1 else "")
     return worker.run()
 
@@ -99,13 +114,14 @@ def confirmation_reserve(run: PreparedRun, confirm: ConfirmSettings, box: float)
     columns = cost_columns(caps, OBJECTIVES[run.settings.objective])
     epochs_images = full_schedule(run.train).epochs * len(run.data.train.labels)
     val_images = len(run.data.dataset.val.labels)
+    metric = METRICS[run.settings.metric]
     seen: dict[str, float] = {"count": -1, "seconds": 0.0}
 
     def reserve(ledger: Ledger, throughput: Throughput) -> float:
         if len(ledger.trained) != seen["count"]:
             rows = [record | {"trial": number, "state": TRAINED} for number, record in ledger.trained.items()]
-            frame = pd.DataFrame(rows) if rows else pd.DataFrame(columns=["trial", "state", "val_accuracy", "params"])
-            chosen = select(frame, caps, columns, val_images, confirm, run.settings.seed) if rows else []
+            frame = pd.DataFrame(rows) if rows else pd.DataFrame(columns=["trial", "state", metric.column, "params"])
+            chosen = select(frame, caps, columns, val_images, confirm, run.settings.seed, metric) if rows else []
             predicted = [throughput.predict(ledger.trained[t]["macs"], epochs_images) for t, _ in chosen
                          if t in ledger.trained]
             seen["count"] = len(ledger.trained)
@@ -122,7 +138,7 @@ def run_confirmation(run: PreparedRun, main: optuna.Study, deadline: float | Non
     """Queue the jobs the current front calls for (if not queued yet) and work through the queue."""
     study = open_confirm_study(run.settings.name, run.url)
     queued = plan(study, main, run.budget, run.settings.objective, len(run.data.dataset.val.labels), confirm,
-                  run.settings.seed)
+                  run.settings.seed, METRICS[run.settings.metric])
     log.info("confirmation: %d job(s) queued now; each candidate retrained %d times with the export's schedule",
              queued, confirm.seeds)
     frame = trials_frame(main)

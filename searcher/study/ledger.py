@@ -33,12 +33,13 @@ class Outcome:
 class Ledger:
     """Finished trials by state, spent candidates, the best accuracy and each architecture's outcome."""
 
-    def __init__(self) -> None:
+    def __init__(self, score: str = "val_accuracy") -> None:
+        self.score = score  # the record's column the search ranks by
         self.seen: set[int] = set()
         self.by_state: Counter[str] = Counter()  # searcher state -> finished trials (repeats included)
         self.repeats = 0
         self.spent = 0  # candidates that used training time (trained, stopped early, failed; repeats excluded)
-        self.best = math.nan  # best validation accuracy of a trained candidate
+        self.best = math.nan  # best validation score of a trained candidate
         self.outcomes: dict[str, Outcome] = {}  # arch text -> its first spent trial's outcome
         self.trained: dict[int, dict] = {}  # trial number -> record, of fully trained candidates (repeats excluded)
 
@@ -65,7 +66,7 @@ class Ledger:
             return
         self.spent += 1
         self.outcomes.setdefault(record["arch"], Outcome(number, optuna_state, values, record))
-        accuracy = record.get("val_accuracy")
+        accuracy = record.get(self.score)
         if state == TRAINED and accuracy is not None:
             self.best = accuracy if math.isnan(self.best) else max(accuracy, self.best)
             self.trained[number] = record

@@ -17,10 +17,13 @@ from searcher.core.census_report import CensusSettings, run_census
 from searcher.core.space import Space
 from searcher.core.space_file import load_space
 from searcher.core.train_settings import TrainSettings
-from searcher.data.load import Dataset, Split, load_dataset, load_split, resize_images
+from searcher.data.load import (
+    Dataset, Split, describe_few_examples, few_examples, load_dataset, load_split, resize_images,
+)
 from searcher.errors import SearcherError, check_int, check_number, one_of, shown
 from searcher.limits import MAX_CAP, MAX_MINUTES, MAX_SEED, MAX_TRIALS, MAX_WORKERS
 from searcher.results.confirmed import ConfirmSettings
+from searcher.results.records import METRICS
 from searcher.runs import RUNS, run_folder
 from searcher.study.storage import OBJECTIVES, SAMPLERS, RunConfig, storage_kind, storage_url
 
@@ -36,7 +39,8 @@ class SearchSettings:
     data: str = "demo"  # "demo", an .npz file, or a folder of class sub-folders
     trials: int = 30  # candidates to train over the study's life (resuming counts what is done)
     minutes: float | None = None  # wall-clock limit for this invocation
-    objective: str = "accuracy"  # accuracy alone, or accuracy against params | macs | activation
+    objective: str = "accuracy"  # the score alone, or the score against params | macs | activation
+    metric: str = "accuracy"  # the score: accuracy, or balanced_accuracy (mean recall per class) for rare classes
     sampler: str = "tpe"  # tpe | nsga2 | random
     storage: str | None = None  # Optuna storage URL or .journal path; default SQLite in the run folder
     workers: int = 1  # worker processes on this machine
@@ -53,6 +57,9 @@ class SearchSettings:
         if self.objective not in OBJECTIVES:
             raise SearcherError(f"`--objective` must be {one_of(self.objective, tuple(OBJECTIVES))}, "
                                 f"got {shown(self.objective)}", key="--objective")
+        if self.metric not in METRICS:
+            raise SearcherError(f"`--metric` must be {one_of(self.metric, tuple(METRICS))}, got {shown(self.metric)}",
+                                key="--metric")
         if self.sampler not in SAMPLERS:
             raise SearcherError(f"`--sampler` must be {one_of(self.sampler, SAMPLERS)}, got {shown(self.sampler)}",
                                 key="--sampler")
@@ -134,12 +141,14 @@ def prepare(settings: SearchSettings, budget: dict | None = None, train: dict | 
                            skip_unreadable=settings.skip_unreadable, split=stored, fingerprint=known, cache=folder)
     if dataset.skipped:
         log.warning("skipped %d unreadable image file(s) in %s", dataset.skipped, settings.data)
+    if found := few_examples(dataset):
+        log.warning("%s", describe_few_examples(found))
     _check_something_fits(space, budget, dataset.num_classes)
     config = RunConfig(
         space_name=space.name, space_text=Path(space.file).read_text(encoding="utf-8"),
         budget=asdict(budget), train=asdict(train_settings), data=settings.data,
         data_fingerprint=dataset.fingerprint, classes=dataset.num_classes, class_names=tuple(dataset.class_names),
-        objective=settings.objective, seed=settings.seed,
+        objective=settings.objective, seed=settings.seed, metric=settings.metric,
     )
     url = storage_url(settings.storage, folder)
     return PreparedRun(settings, space, budget, train_settings, RunData(dataset), config, folder, url)

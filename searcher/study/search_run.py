@@ -20,7 +20,7 @@ from searcher.data.load import save_decoded, save_split
 from searcher.errors import SearcherError
 from searcher.redact import redact
 from searcher.results.confirmed import Confirmation
-from searcher.results.records import REJECTED, best_row, counts
+from searcher.results.records import ACCURACY, REJECTED, Metric, best_row, counts
 from searcher.results.tables import gather, write_results
 from searcher.runs import write_atomic
 from searcher.study.ending import Phases, StopReason
@@ -46,6 +46,7 @@ class SearchOutcome:
     proxy_seconds: float = 0.0  # wall time of the proxy search (the slowest worker's)
     confirm_seconds: float = 0.0  # wall time of the confirmation that followed
     confirmation: Confirmation | None = None  # what confirmation found (None when it is off or nothing ran)
+    metric: Metric = ACCURACY  # the score the search ranked by
 
     @property
     def exit_status(self) -> int:
@@ -92,9 +93,9 @@ def finish(run: PreparedRun, study: optuna.Study, phases: Phases, seconds: float
     blocks = [proposals[i:i + 50] for i in range(0, len(proposals), 50)]
     share = [sum(p == REJECTED for p in b) / len(b) for b in blocks if b]
     rejected_by = frame.loc[frame["state"] == REJECTED, "rejected_by"].value_counts().to_dict()
-    return SearchOutcome(run.folder, counts(frame), best_row(frame, run.budget.caps()), phases.stop, share,
+    return SearchOutcome(run.folder, counts(frame), best_row(frame, run.budget.caps(), results.metric), phases.stop, share,
                          {str(k): int(v) for k, v in rejected_by.items()}, seconds, phases.proxy_seconds,
-                         phases.confirm_seconds, results.confirmation)
+                         phases.confirm_seconds, results.confirmation, results.metric)
 
 
 RESULT_FILES = ("trials.csv", "front.csv", "confirmed.csv", "summary.json", "report.html", "run.json", "search.log",

@@ -206,6 +206,7 @@ class RunConfig:
     class_names: tuple[str, ...]
     objective: str  # a key of OBJECTIVES
     seed: int
+    metric: str = "accuracy"  # the score ranked, pruned, fronted and exported by (runs before --metric: accuracy)
 
     def digest(self) -> str:
         return hashlib.sha256(json.dumps(self.__dict__, sort_keys=True, default=list).encode()).hexdigest()[:12]

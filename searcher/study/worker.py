@@ -39,6 +39,7 @@ from searcher.core.gate import judge
 from searcher.core.space import Space
 from searcher.core.train_settings import TrainSettings
 from searcher.model.train import Diverged, OutOfTime, TrainProgress, TrainResult
+from searcher.results.records import ACCURACY, Metric
 from searcher.results.records import (
     DUPLICATE, FAILED, INTERRUPTED, NOT_STARTED, RECORD, REJECTED, STOPPED, TRAINED, describe, record_of,
 )
@@ -100,12 +101,13 @@ class Worker:
     """One worker's loop over a study; see the module docstring for the states."""
 
     def __init__(self, study: optuna.Study, space: Space, budget: Budget, settings: TrainSettings,
-                 objective: str, classes: int, plan: WorkerPlan, trainer: Trainer) -> None:
+                 objective: str, classes: int, plan: WorkerPlan, trainer: Trainer, metric: Metric = ACCURACY) -> None:
         self.study, self.space, self.budget, self.settings = study, space, budget, settings
         self.objective, self.classes, self.plan, self.trainer = objective, classes, plan, trainer
+        self.metric = metric  # the score told to Optuna, pruned and ranked by
         self.tally = WorkerTally()
         self.signals = StopSignals()
-        self.ledger = Ledger()
+        self.ledger = Ledger(metric.column)
         self.on_proposal: Callable[[str, WorkerTally, Ledger], None] | None = None  # after each proposal
         self.registry: Registry | None = None  # this run's local worker registry, when its store is local
         self._recovered_at = -math.inf  # time.monotonic() of the last look for dead workers' trials
@@ -232,10 +234,12 @@ class Worker:
             queue_retry(self.study, trial)
         if state in (TRAINED, STOPPED):
             self.tally.throughput.add(totals["macs"], progress.images_seen, result.seconds)
-        record.update(val_accuracy=_finite(result.val_accuracy), history=list(result.history),
-                      train_seconds=round(result.seconds, 3), epochs=result.epochs)
+        record.update(scores_of(result), history=[_finite(h) for h in result.history],
+                      train_seconds=round(result.seconds, 3), epochs=result.epochs,
+                      int8_seconds=round(result.int8_seconds, 3))
         optuna_state = {TRAINED: TrialState.COMPLETE, STOPPED: TrialState.PRUNED}.get(state, TrialState.FAIL)
-        values = self._values(result.val_accuracy, totals) if state == TRAINED else None
+        score = result.history[-1] if result.history else math.nan  # the metric's score after the last epoch
+        values = self._values(score, totals) if state == TRAINED else None
         return self._end(trial, record, state, reason, values=values, optuna_state=optuna_state)
 
     def _early_stop(self, trial: optuna.Trial, totals: dict) -> EarlyStop:
@@ -272,8 +276,8 @@ class Worker:
     def _repeat(self, trial: optuna.Trial, record: dict, known: Outcome) -> str:
         """Reuse the outcome of the same architecture trained before, whatever it was; no training time."""
         earlier = known.record
-        record = record | {"repeat_of": known.number, "val_accuracy": earlier.get("val_accuracy"),
-                           "history": earlier.get("history", []), "epochs": earlier.get("epochs"), "train_seconds": 0.0}
+        record = record | {key: earlier.get(key) for key in (*SCORE_KEYS, "history", "epochs")}
+        record |= {"repeat_of": known.number, "train_seconds": 0.0}
         reason = f"same architecture as trial {known.number}" + (f": {earlier['reason']}" if earlier.get("reason") else "")
         self._end(trial, record, earlier["state"], reason, values=known.values, optuna_state=known.optuna_state)
         return REPEAT
@@ -294,6 +298,18 @@ def _monotonic(wall: float | None) -> float | None:
     return None if wall is None else time.monotonic() + (wall - time.time())
 
 
-def _finite(value: float) -> float | None:
+def _finite(value: float | None) -> float | None:
     return value if value is not None and math.isfinite(value) else None
+
+
+SCORE_KEYS = ("val_accuracy", "val_balanced_accuracy", "val_recall", "val_accuracy_int8")  # what scores_of records
+
+
+def scores_of(result: TrainResult) -> dict[str, object]:
+    """A training's validation scores as a record keeps them (NaN as None, so the record stays plain JSON)."""
+    scores = result.val_scores
+    return {"val_accuracy": _finite(result.val_accuracy),
+            "val_balanced_accuracy": None if scores is None else _finite(scores.balanced_accuracy),
+            "val_recall": None if scores is None else [_finite(r) for r in scores.recall],
+            "val_accuracy_int8": _finite(result.val_accuracy_int8)}
 

@@ -332,6 +332,7 @@ COMMAND_FLAGS: dict[str, list[Flag]] = {
         Flag("--space", "path"), Flag("--data", "data"), name_flag(), int_flag("--trials", 1, MAX_TRIALS),
         float_flag("--minutes", lambda v: 0 < v <= MAX_MINUTES),
         Flag("--objective", "word", lambda t: t in ("accuracy", "params", "macs", "activation")),
+        Flag("--metric", "word", lambda t: t in ("accuracy", "balanced_accuracy")),
         Flag("--sampler", "word", lambda t: t in ("tpe", "nsga2", "random")), Flag("--storage", "url"),
         int_flag("--workers", 1, MAX_WORKERS), int_flag("--seed", 0, MAX_SEED), int_flag("--epochs", 1, MAX_EPOCHS),
         float_flag("--train-fraction", lambda v: 0 < v <= 1), int_flag("--batch-size", 2, MAX_BATCH),
