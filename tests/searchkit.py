@@ -145,7 +145,7 @@ def in_process() -> Iterator[None]:
 
 
 def search_here(folder: Path, space: Path, name: str, train: dict | None = None, trainer_for: Any = None,
-                **fields: Any):
+                budget: dict | None = None, **fields: Any):
     """searcher.search in this process on the demo data, runs under folder/runs; returns its outcome.
     Confirmation is off unless ``confirm`` is given."""
     from searcher.results.confirmed import ConfirmSettings
@@ -155,7 +155,8 @@ def search_here(folder: Path, space: Path, name: str, train: dict | None = None,
     fields.setdefault("confirm", ConfirmSettings(seeds=0))
     settings = SearchSettings(name=name, space=str(space), root=folder / "runs", **fields)
     with in_process():
-        return search(settings, train={"epochs": 1, "train_fraction": 0.2, **(train or {})}, trainer_for=trainer_for)
+        return search(settings, budget, train={"epochs": 1, "train_fraction": 0.2, **(train or {})},
+                      trainer_for=trainer_for)
 
 
 def recording_trainer(built: list[str]):

@@ -18,6 +18,7 @@ from pathlib import Path
 
 import numpy as np
 import onnx
+import pandas as pd
 import pytest
 import torch
 
@@ -292,3 +293,20 @@ def test_sums_beyond_32_bits_are_accumulated_in_64(tmp_path):
     _, _, scores, _ = compile_and_run(net, arch, tmp_path, pixels)  # gcc
     assert np.array_equal(scores, expected)
     assert expected[0, 0] == 127 and expected[0, 1] == -128  # the extremes land on the grid's ends
+
+
+def test_search_records_int8_accuracy_when_weights_are_int8(tmp_path):
+    """With int8 weights in the budget every fully trained candidate gets its int8 validation accuracy
+    (trials.csv's val_accuracy_int8, the report's front tables); with fp32 weights none does."""
+    from searchkit import search_here, write_space
+
+    space = write_space(tmp_path)
+    int8 = search_here(tmp_path, space, "int8", trials=2, budget={"weight_precision": "int8"})
+    fp32 = search_here(tmp_path, space, "fp32", trials=2)
+    table = pd.read_csv(int8.folder / "trials.csv")
+    trained = table[table["state"] == "trained"]
+    assert len(trained) >= 1 and trained["val_accuracy_int8"].between(0, 1).all()
+    # an int8 model of a trained network scores close to it (common practice: within a few points)
+    assert (trained["val_accuracy_int8"] - trained["val_accuracy"]).abs().max() < 0.15
+    assert pd.read_csv(fp32.folder / "trials.csv")["val_accuracy_int8"].isna().all()
+    assert "int8 accuracy" in (int8.folder / "report.html").read_text()

@@ -159,14 +159,19 @@ def front_table_html(trials: pd.DataFrame, cost: str, caps: Mapping[str, float |
     if best.empty:
         return '<p class="quiet">No trained candidate within the caps yet, so no front.</p>'
     steps = front_steps(best, cost, score="score")
-    heads = ["trial", "architecture", metric.label, *(COST_LABELS[c][0] for c in COST_COLUMNS),
+    int8 = pd.to_numeric(best.get("val_accuracy_int8", pd.Series(dtype=float)), errors="coerce")
+    shows_int8 = bool(int8.notna().any())  # measured when the budget's weights are int8
+    heads = ["trial", "architecture", metric.label, *(["int8 accuracy"] if shows_int8 else []),
+             *(COST_LABELS[c][0] for c in COST_COLUMNS),
              "step from the row above", f"{metric.label} per 2× {COST_LABELS[cost][0]}"]
     rows = [
         [str(int(row.trial)), f"<code>{html.escape(row.arch)}</code>", percent(row.score),
+         *([percent(float(q))] if shows_int8 else []),
          *(cost_text(c, getattr(row, c)) for c in COST_COLUMNS),
          "—" if math.isnan(step) else f"{step * 100:+.1f} pts for ×{ratio:.2f} cost",
          "—" if math.isnan(gain) else f"{gain * 100:+.1f} pts"]
-        for (step, ratio, gain), row in zip(steps.itertuples(index=False), best.itertuples(index=False))
+        for (step, ratio, gain), row, q in zip(steps.itertuples(index=False), best.itertuples(index=False),
+                                              int8.reindex(best.index) if shows_int8 else [math.nan] * len(best))
     ]
     return table_html(heads, rows, "numbers")
 

@@ -285,7 +285,9 @@ class Worker:
     def _log(self, number: int, record: dict) -> None:
         acc = record.get("val_accuracy")
         line = (f"{time.strftime('%Y-%m-%d %H:%M:%S')} trial {number} {record['state']}"
-                f" acc={'-' if acc is None else f'{acc:.4f}'} params={record['params']} macs={record['macs']}"
+                f" acc={'-' if acc is None else f'{acc:.4f}'}"
+                + (f" int8={record['val_accuracy_int8']:.4f}" if record.get("val_accuracy_int8") is not None else "")
+                + f" params={record['params']} macs={record['macs']}"
                 f" seconds={record.get('train_seconds', 0):.1f} arch={record['arch']}"
                 + (f" reason={record['reason']}" if record.get("reason") else ""))
         log.debug(line)
