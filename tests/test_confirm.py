@@ -140,10 +140,10 @@ def _main_study(accuracies: dict[int, float]) -> tuple[optuna.Study, dict]:
     return study, archs
 
 
-def _confirmer(study, archs, trainer, deadline=None):
+def _confirmer(study, main, trainer, deadline=None):
     from searcher.core.train_settings import TrainSettings
 
-    return Confirmer(study, archs, TrainSettings(epochs=2), ConfirmPlan(deadline=deadline, run_seed=0, images=100),
+    return Confirmer(study, main, TrainSettings(epochs=2), ConfirmPlan(deadline=deadline, run_seed=0, images=100),
                      trainer, Throughput())
 
 
@@ -154,7 +154,7 @@ def test_jobs_are_shared_by_two_workers_and_never_trained_twice():
     assert plan(jobs_study, main, Budget(), "params", VAL, settings, 0) == 6
     assert plan(jobs_study, main, Budget(), "params", VAL, settings, 0) == 0  # a second worker queues nothing new
     trainer = Counting()
-    first, second = _confirmer(jobs_study, archs, trainer), _confirmer(jobs_study, archs, trainer)
+    first, second = _confirmer(jobs_study, main, trainer), _confirmer(jobs_study, main, trainer)
     while first.stop_reason() is None or second.stop_reason() is None:
         for worker in (first, second):
             if worker.stop_reason() is None:
@@ -170,7 +170,7 @@ def test_a_job_queued_twice_by_racing_workers_is_trained_once():
     for _ in range(2):  # two workers that both found nothing queued and both queued the job
         jobs_study.enqueue_trial({"trial": 0, "seed_index": 0}, user_attrs={"chosen": "on a front"})
     trainer = Counting()
-    worker = _confirmer(jobs_study, archs, trainer)
+    worker = _confirmer(jobs_study, main, trainer)
     states = []
     while worker.stop_reason() is None:
         states.append(worker.step())
@@ -185,13 +185,13 @@ def test_a_time_box_leaves_jobs_queued_and_the_next_run_does_only_those(tmp_path
     jobs_study = open_confirm_study("r", url)
     plan(jobs_study, main, Budget(), "params", VAL, ConfirmSettings(seeds=2, most=2, extra=0), 0)
     trainer = Counting()
-    worker = _confirmer(jobs_study, archs, trainer, deadline=time.time() + 3600)
+    worker = _confirmer(jobs_study, main, trainer, deadline=time.time() + 3600)
     worker.throughput.add(macs=10**6, images=10, seconds=1.0)  # measured: 0.1 us per MAC-image
     worker.step()
     worker.step()  # two of four jobs done
     worker.plan = ConfirmPlan(deadline=time.time() + 1e-4, run_seed=0, images=10**9)  # nothing more fits now
     assert worker.step() == "not_started"
-    resumed = _confirmer(open_confirm_study("r", url), archs, trainer)
+    resumed = _confirmer(open_confirm_study("r", url), main, trainer)
     resumed.run()
     assert len(trainer.calls) == 4 and len(set(trainer.calls)) == 4  # no finished seed redone
     assert (jobs_frame(resumed.study)["state"] == TRAINED).sum() == 4

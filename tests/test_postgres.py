@@ -17,6 +17,7 @@ import pytest
 from test_workers import check_study, finish, search_command, start, stored
 
 from searcher.redact import redact
+from searcher.study.confirm import read_jobs
 
 MACHINES = 3
 
@@ -40,7 +41,8 @@ def test_three_searches_share_one_postgres_study(postgres_database: str, tmp_pat
     for home in homes:
         home.mkdir()
     name = "shared"
-    processes = [start(search_command(space, name, "--storage", postgres_database), home) for home in homes]
+    confirm = ("--confirm", "2", "--confirm-candidates", "2", "--confirm-random", "0")  # shared after the search
+    processes = [start(search_command(space, name, "--storage", postgres_database, *confirm), home) for home in homes]
 
     reader = tmp_path / "reader"
     reader.mkdir()
@@ -66,6 +68,11 @@ def test_three_searches_share_one_postgres_study(postgres_database: str, tmp_pat
         frame = check_study(study, home / "runs" / name / "trials.csv", workers=MACHINES, last_writer=False)
     pids = {int(w.rsplit(":", 1)[1]) for w in frame["worker"]}
     assert pids == {p.pid for p in processes}, "some search's host:pid is missing from the trials"
+
+    jobs = read_jobs(name, postgres_database)
+    done = jobs[jobs["state"] == "trained"]
+    assert len(done) == 4, jobs.to_string()  # two candidates, two seeds each
+    assert not done.duplicated(["trial", "seed_index"]).any(), "a seed was trained twice"
 
     said = outputs + [during.stdout, during.stderr, after.stdout, after.stderr]
     assert not [text for text in said if password in text], "the password was printed"

@@ -149,3 +149,20 @@ def test_two_workers_share_a_journal_file_store(tmp_path: Path, write_space) -> 
                             cwd=tmp_path, capture_output=True, text=True, timeout=120)
     assert status.returncode == 0, status.stderr
     assert "running 0" in status.stdout
+
+
+@pytest.mark.slow
+def test_two_worker_processes_share_confirmation_without_training_a_seed_twice(tmp_path: Path, write_space) -> None:
+    from searcher.study.confirm import read_jobs
+
+    space = write_space()
+    folder = tmp_path / "runs" / "share"
+    finish([start(search_command(space, "share", "--workers", "2", "--confirm", "2", "--confirm-candidates", "3",
+                                 "--confirm-random", "0"), tmp_path)])
+    jobs = read_jobs("share", f"sqlite:///{folder / 'study.db'}")
+    done = jobs[jobs["state"] == "trained"]
+    assert len(done) == 2 * done["trial"].nunique() and 2 <= done["trial"].nunique() <= 3, jobs.to_string()
+    assert not done.duplicated(["trial", "seed_index"]).any(), "a seed was trained twice"
+    confirmed = pd.read_csv(folder / "confirmed.csv")
+    assert (confirmed["seeds"] == 2).all()
+

@@ -23,7 +23,7 @@ import optuna
 import pandas as pd
 from optuna.trial import TrialState
 
-from searcher.core.arch import Arch
+from searcher.core.arch import Arch, parse_arch
 from searcher.core.budget import Budget
 from searcher.core.cost import cost
 from searcher.core.train_settings import TrainSettings
@@ -137,9 +137,10 @@ class ConfirmPlan:
 class Confirmer:
     """Takes queued jobs one at a time and trains each with the full schedule until none is left."""
 
-    def __init__(self, study: optuna.Study, archs: dict[int, Arch], settings: TrainSettings, plan: ConfirmPlan,
+    def __init__(self, study: optuna.Study, main: optuna.Study, settings: TrainSettings, plan: ConfirmPlan,
                  trainer: Trainer, throughput: Throughput) -> None:
-        self.study, self.archs, self.settings, self.plan = study, archs, settings, plan
+        self.study, self.main, self.settings, self.plan = study, main, settings, plan
+        self.archs: dict[int, Arch] = {}  # the search's trial number -> its candidate, read as jobs need them
         self.trainer, self.throughput = trainer, throughput
         self.signals = StopSignals()
         self.tally = ConfirmTally()
@@ -184,7 +185,7 @@ class Confirmer:
         if queued_params(trial) is None:  # another worker took the last queued job meanwhile
             return self._end(trial, {"state": EMPTY}, EMPTY, "no queued job left", TrialState.FAIL)
         source, index = trial.suggest_int("trial", 0, 2**31 - 1), trial.suggest_int("seed_index", 0, 10**6)
-        arch = self.archs[source]
+        arch = self.arch_of(source)
         record = {"trial": source, "seed_index": index, "arch": arch.to_text(), "chosen": trial.user_attrs.get("chosen", ""),
                   "retry_of": trial.user_attrs.get("retry_of"), "state": TRAINING}
         trial.set_user_attr(RECORD, record)
@@ -201,6 +202,16 @@ class Confirmer:
             return self._end(trial, record, NOT_STARTED, f"predicted {predicted:.0f} s but {left:.0f} s left",
                              TrialState.FAIL)
         return self._train(trial, arch, record, job_seed(self.plan.run_seed, source, index))
+
+    def arch_of(self, number: int) -> Arch:
+        """The candidate of the search's trial ``number``; the search study is read again when another
+        worker queued a job for a candidate this one had not seen."""
+        if number not in self.archs:
+            for t in self.main.get_trials(deepcopy=False):
+                text = record_of(t).get("arch")
+                if text:
+                    self.archs[t.number] = parse_arch(text)
+        return self.archs[number]
 
     def _macs(self, arch: Arch) -> int:
         return cost(arch).macs

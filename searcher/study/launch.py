@@ -15,13 +15,13 @@ from typing import Callable
 import optuna
 import pandas as pd
 
-from searcher.core.arch import Arch, parse_arch
+from searcher.core.arch import Arch
 from searcher.core.train_settings import TrainSettings
 from searcher.model.build import build
 from searcher.model.train import TrainProgress, TrainResult, train_candidate
 from searcher.ship.int8_check import int8_accuracy
 from searcher.results.confirmed import ConfirmSettings, cost_columns, select
-from searcher.results.records import METRICS, REJECTED, TRAINED, trials_frame
+from searcher.results.records import METRICS, REJECTED, TRAINED
 from searcher.study.confirm import ConfirmPlan, Confirmer, ConfirmTally, full_schedule, open_confirm_study, plan
 from searcher.study.ending import Ending, Phases, StopReason
 from searcher.study.ledger import Ledger
@@ -141,14 +141,12 @@ def run_confirmation(run: PreparedRun, main: optuna.Study, deadline: float | Non
                   run.settings.seed, METRICS[run.settings.metric])
     log.info("confirmation: %d job(s) queued now; each candidate retrained %d times with the export's schedule",
              queued, confirm.seeds)
-    frame = trials_frame(main)
-    archs = {int(row.trial): parse_arch(row.arch) for row in frame.itertuples(index=False) if row.arch}
     full = replace(run, train=full_schedule(run.train))
     trainer = (trainer_for or TorchTrainer.for_run)(full, threads)
     settings = ConfirmPlan(deadline=deadline, run_seed=run.settings.seed, images=len(run.data.train.labels),
                            log_path=run.folder / "search.log", run_folder=run.folder if _local(run) else None,
                            flush=disk_flush(run.url))
-    return Confirmer(study, archs, full.train, settings, trainer, throughput).run()
+    return Confirmer(study, main, full.train, settings, trainer, throughput).run()
 
 
 def run_phases(run: PreparedRun, study: optuna.Study, deadline: float | None, *, index: int = 0,
