@@ -498,3 +498,36 @@ def test_journal_store_is_repaired_after_a_power_cut(tmp_path: Path, cut: float 
     again = optuna.load_study(study_name="s", storage=open_storage(str(path)))
     assert [t.value for t in again.trials if t.state == TrialState.COMPLETE] == [0.1, 0.2, 0.3, 0.4, 0.5]
     assert not path.with_name(path.name + ".lock").exists()  # the lock was given back
+
+
+@pytest.mark.slow
+def test_killed_confirmation_resumes_without_redoing_a_finished_seed(tmp_path: Path) -> None:
+    """Killed while a confirmation job trains: the next run marks it interrupted, trains its retry, and
+    leaves every seed finished before the kill as it was."""
+    from searcher.study.confirm import confirm_name, read_jobs
+
+    args = search_args(write_space(tmp_path), "cj", "--trials", "3", "--epochs", "1") + [
+        "--confirm", "2", "--confirm-candidates", "2", "--confirm-random", "0"]
+    url = f"sqlite:///{db_path(tmp_path, 'cj')}"
+    process = start(args, tmp_path, "first")
+    give_up = time.monotonic() + SAFETY_SECONDS
+    while True:  # until one job has finished and another trains
+        jobs = read_jobs("cj", url) if db_path(tmp_path, "cj").exists() else None
+        if jobs is not None and (jobs["state"] == "trained").sum() >= 1 and (jobs["state"] == "running").any():
+            break
+        assert process.poll() is None and time.monotonic() < give_up, "confirmation ended before it could be killed"
+        time.sleep(0.05)
+    assert stop(process, signal.SIGKILL) == -signal.SIGKILL
+    before = read_jobs("cj", url)
+    finished_before = before[before["state"] == "trained"].set_index(["trial", "seed_index"])["val_accuracy"]
+
+    code, out, err = run(args, tmp_path, "second")
+    assert code == 0, err
+    after = read_jobs("cj", url)
+    done = after[after["state"] == "trained"]
+    assert not done.duplicated(["trial", "seed_index"]).any(), after.to_string()  # no seed trained twice
+    assert len(done) == 2 * done["trial"].nunique(), after.to_string()  # every job finished in the end
+    for key, accuracy in finished_before.items():  # what finished before the kill is kept as it was
+        assert done.set_index(["trial", "seed_index"]).loc[key, "val_accuracy"] == accuracy
+    study = optuna.load_study(study_name=confirm_name("cj"), storage=url)
+    assert any(t.user_attrs.get("retry_of") is not None for t in study.trials)  # the killed job's retry
