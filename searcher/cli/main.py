@@ -6,6 +6,7 @@ import argparse
 import functools
 import logging
 import sys
+from dataclasses import replace
 from pathlib import Path
 
 import pandas as pd
@@ -16,6 +17,7 @@ from searcher.core.budget import BUDGET_KEYS, Budget, show_cost
 from searcher.core.census_report import CensusSettings, run_census, summary_lines, writable, write_census
 from searcher.core.cost import cost
 from searcher.core.space_file import builtin_space, load_space, shipped_spaces
+from searcher.data.load import describe_few_examples, few_examples, load_dataset
 from searcher.errors import SearcherError, one_of, readable, shown
 from searcher.redact import redact
 from searcher.runs import plain_name, run_folder
@@ -98,6 +100,11 @@ def cmd_census(args: argparse.Namespace) -> int:
     budget = space.budget.updated(_budget(args), prefix="--")
     settings = CensusSettings(samples=args.samples, seed=args.seed, classes=args.classes)
     folder = writable(run_folder(args.name if args.name is not None else f"census-{plain_name(space.name)}"))
+    if args.data is not None:  # the data's classes size the output layer, and thin classes are named now
+        dataset = load_dataset(args.data, space.data_shape, seed=args.seed)
+        settings = replace(settings, classes=args.classes or dataset.num_classes)
+        if found := few_examples(dataset):
+            log.warning("%s", describe_few_examples(found))
     census = run_census(space, budget, settings)
     print("\n".join(summary_lines(census)))
     written = write_census(census, folder)
@@ -133,7 +140,9 @@ def make_parser() -> argparse.ArgumentParser:
     p.add_argument("--name", help="run folder under runs/ (default census-<space>)")
     p.add_argument("--samples", type=int, default=200_000, help="random draws when the space is too big to enumerate")
     p.add_argument("--seed", type=int, default=0)
-    p.add_argument("--classes", type=int, help="output classes (default: the space's input.classes)")
+    p.add_argument("--classes", type=int, help="output classes (default: the data's, else the space's input.classes)")
+    p.add_argument("--data", help="count the output classes from this data ('demo', an .npz file or a folder) and "
+                   "warn of classes with fewer than 10 validation or test images")
     _add_budget(p)
     p.set_defaults(run=cmd_census)
 

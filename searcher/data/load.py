@@ -296,7 +296,10 @@ def load_dataset(source: str | Path, input_shape: tuple[int, int, int], *, seed:
                             "has changed since the split was made", file=None if source == "demo" else source,
                             key="fingerprint")
     if split is None:
-        indices = split_indices(labels, seed, fractions, class_names=names)
+        try:
+            indices = split_indices(labels, seed, fractions, class_names=names)
+        except SearcherError as exc:  # too few images of a class: a fact of this data set, so name it
+            raise SearcherError(exc.message, file=None if source == "demo" else source, key=exc.key) from None
     else:
         indices = check_split(split, len(labels))
     if known is not None and all(np.array_equal(indices[p], known.indices[p]) for p in PARTS):

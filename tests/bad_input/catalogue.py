@@ -326,7 +326,7 @@ COMMAND_FLAGS: dict[str, list[Flag]] = {
     "cost": [Flag("ARCH", "arch", says=("architecture",)), Flag("--space", "path"), *BUDGET_FLAGS],
     "census": [
         Flag("--space", "path"), name_flag(), int_flag("--samples", 1, MAX_SAMPLES), int_flag("--seed", 0, MAX_SEED),
-        int_flag("--classes", 2, MAX_CLASSES), *BUDGET_FLAGS,
+        int_flag("--classes", 2, MAX_CLASSES), Flag("--data", "data"), *BUDGET_FLAGS,
     ],
     "search": [
         Flag("--space", "path"), Flag("--data", "data"), name_flag(), int_flag("--trials", 1, MAX_TRIALS),

@@ -67,10 +67,21 @@ def image_folder(classes: dict[str, list[bytes | None]]) -> Callable[[Path], str
 
 GOOD = [None] * 10
 
-# The forms the loader refuses by name today. Still to come from the data loader (issue 8), and so not
-# listed: an .npz cut in half (BadZipFile), one holding pickled objects (ValueError), one label of
-# 10^11 (MemoryError), two-dimensional labels and a folder of 16-bit PNGs (accepted), and labels
-# that are not 0..K-1 or too few images per class (refused without naming the file).
+
+def half_npz(folder: Path) -> str:
+    """A good archive cut off half-way, as an interrupted copy leaves it."""
+    buffer = io.BytesIO()
+    np.savez(buffer, images=IMAGES, labels=LABELS)
+    (folder / "bad.npz").write_bytes(buffer.getvalue()[: len(buffer.getvalue()) // 2])
+    return "bad.npz"
+
+
+def pickled_npz(folder: Path) -> str:
+    """An archive whose labels are pickled Python objects (numpy would run code to read them)."""
+    np.savez(folder / "bad.npz", images=IMAGES, labels=np.array([{"class": 0}] * len(IMAGES), dtype=object))
+    return "bad.npz"
+
+# (A folder of 16-bit PNGs is not among them: it is read, scaled by 1/257; tests/test_data.py checks that.)
 DATA_FORMS: dict[str, Callable[[Path], str]] = {
     "npz: a text file": raw("bad.npz", b"images and labels, honestly"),
     "npz: an empty file": raw("bad.npz", b""),
@@ -95,6 +106,12 @@ DATA_FORMS: dict[str, Callable[[Path], str]] = {
     "folder: one class": image_folder({"a": GOOD}),
     "folder: a class without images": image_folder({"a": GOOD, "b": []}),
     "folder: a broken image": image_folder({"a": GOOD, "b": GOOD + [b"\x89PNG not really"]}),
+    "npz: cut in half": half_npz,
+    "npz: pickled objects": pickled_npz,
+    "npz: one label of 10^11": npz(images=IMAGES, labels=np.r_[LABELS[:-1], 10**11]),
+    "npz: two-dimensional labels": npz(images=IMAGES, labels=np.stack([LABELS, LABELS], axis=1)),
+    "npz: labels that skip a class": npz(images=IMAGES, labels=np.where(LABELS == 1, 5, LABELS)),
+    "npz: too few images of a class": npz(images=IMAGES, labels=np.r_[np.zeros(28, np.int64), 1, 1]),
 }
 
 
