@@ -17,7 +17,7 @@ from searcher.core.budget import BUDGET_KEYS, Budget, show_cost
 from searcher.core.census_report import CensusSettings, run_census, summary_lines, writable, write_census
 from searcher.core.cost import cost
 from searcher.core.space_file import builtin_space, load_space, shipped_spaces
-from searcher.data.load import describe_few_examples, few_examples, load_dataset
+from searcher.data.load import check_source, describe_few_examples, few_examples, load_dataset
 from searcher.errors import SearcherError, one_of, readable, shown
 from searcher.redact import redact
 from searcher.runs import plain_name, run_folder
@@ -101,7 +101,11 @@ def cmd_census(args: argparse.Namespace) -> int:
     settings = CensusSettings(samples=args.samples, seed=args.seed, classes=args.classes)
     folder = writable(run_folder(args.name if args.name is not None else f"census-{plain_name(space.name)}"))
     if args.data is not None:  # the data's classes size the output layer, and thin classes are named now
-        dataset = load_dataset(args.data, space.data_shape, seed=args.seed)
+        check_source(args.data)
+        try:
+            dataset = load_dataset(args.data, space.data_shape, seed=args.seed)
+        except SearcherError as exc:  # what the loader says of the data, named as the option it came from
+            raise SearcherError(f"`--data` {shown(args.data)}: {exc}", key="--data") from None
         settings = replace(settings, classes=args.classes or dataset.num_classes)
         if found := few_examples(dataset):
             log.warning("%s", describe_few_examples(found))

@@ -27,7 +27,7 @@ from searcher.data.demo import make_demo
 from searcher.data.folder import MODES, Decoded, decode_folder, default_workers
 from searcher.data.npz import read_npz
 from searcher.data.split import PARTS, check_split, load_split, save_split, split_indices  # noqa: F401  (re-exported)
-from searcher.errors import SearcherError
+from searcher.errors import SearcherError, shown
 from searcher.runs import write_atomic
 
 log = logging.getLogger(__name__)
@@ -334,3 +334,14 @@ def describe_few_examples(found: list[tuple[str, str, int]], minimum: int = FEW_
     more = f" and {len(found) - 8} more" if len(found) > 8 else ""
     return (f"{len(found)} class part(s) hold fewer than {minimum} images ({listed}{more}): their recall is coarse, "
             "so scores can swing by chance; add images of those classes if you can")
+
+
+def check_source(data: str) -> None:
+    """A data source that cannot be there is refused by name before the space or data is read."""
+    try:
+        there = data == "demo" or bool(data.strip()) and Path(data).exists()
+    except (OSError, ValueError, AttributeError):  # too long a name, a NUL byte, not text
+        there = False
+    if not there:
+        raise SearcherError(f"`--data` {shown(data)} does not exist; give 'demo', a .npz file or a folder with one "
+                            f"sub-folder per class", key="--data")

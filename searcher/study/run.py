@@ -18,7 +18,7 @@ from searcher.core.space import Space
 from searcher.core.space_file import load_space
 from searcher.core.train_settings import TrainSettings
 from searcher.data.load import (
-    Dataset, Split, describe_few_examples, few_examples, load_dataset, load_split, resize_images,
+    Dataset, check_source, Split, describe_few_examples, few_examples, load_dataset, load_split, resize_images,
 )
 from searcher.errors import SearcherError, check_int, check_number, one_of, shown
 from searcher.limits import MAX_CAP, MAX_MINUTES, MAX_SEED, MAX_TRIALS, MAX_WORKERS
@@ -74,22 +74,11 @@ class SearchSettings:
         if self.storage is not None:
             storage_kind(self.storage)
         self.confirm.check()
-        _check_data(self.data)
+        check_source(self.data)
         cores = os.cpu_count() or 1
         if self.workers > cores and multiprocessing.parent_process() is None:  # once, not again in each worker
             log.warning("--workers %d is more than this machine's %d CPU cores: the workers will share cores, "
                         "and each candidate trains slower", self.workers, cores)
-
-
-def _check_data(data: str) -> None:
-    """A data source that cannot be there is refused by name before the space or data is read."""
-    try:
-        there = data == "demo" or bool(data.strip()) and Path(data).exists()
-    except (OSError, ValueError, AttributeError):  # too long a name, a NUL byte, not text
-        there = False
-    if not there:
-        raise SearcherError(f"`--data` {shown(data)} does not exist; give 'demo', a .npz file or a folder with one "
-                            f"sub-folder per class", key="--data")
 
 
 class RunData:
