@@ -120,7 +120,7 @@ def add_search_commands(sub, space_path, add_budget, budget_of) -> None:
     p.add_argument("--name", required=True)
     p.add_argument("--trial", type=int, help="export this trial instead of the best fitting one")
     p.add_argument("--arch", help="export this architecture (text or JSON) instead")
-    p.add_argument("--epochs", type=int, help="training epochs (default 3x the search's, at least 10)")
+    p.add_argument("--epochs", type=int, help="training epochs (default twice the search's, at least 18)")
     p.add_argument("--storage", help="the run's storage URL when it is not runs/NAME/study.db")
     p.add_argument("--tolerance", type=float, metavar="ACCURACY",
                    help="the default pick may be this much less accurate than the best confirmed candidate "

@@ -56,7 +56,7 @@ class ExportSettings:
     name: str  # the run to export from
     trial: int | None = None  # export this trial's candidate instead of the best
     arch: str | None = None  # or this architecture (text or JSON)
-    epochs: int | None = None  # training epochs; default 3x the search's, at least 10
+    epochs: int | None = None  # training epochs; default the export's schedule: twice the search's, at least 18
     storage: str | None = None  # the run's storage, when it is not the run folder's SQLite
     tolerance: float | None = None  # accuracy the default pick may give up against the best confirmed one
     force: bool = False  # replace an existing export with a candidate that breaks a cap or failed

@@ -51,8 +51,8 @@ def confirm_name(name: str) -> str:
 
 
 def full_schedule(settings: TrainSettings) -> TrainSettings:
-    """The export's schedule: three times the proxy's epochs (at least 10) on the whole training split."""
-    return replace(settings, epochs=max(10, 3 * settings.epochs), train_fraction=1.0)
+    """The export's schedule: twice the proxy's epochs (at least 18) on the whole training split."""
+    return replace(settings, epochs=max(18, 2 * settings.epochs), train_fraction=1.0)
 
 
 def job_seed(run_seed: int, trial: int, seed_index: int) -> int:
