@@ -96,8 +96,12 @@ def jobs_frame(study: optuna.Study | None) -> pd.DataFrame:
 
 def plan(study: optuna.Study, main: optuna.Study, budget: Budget, objective: str, val_images: int,
          settings: ConfirmSettings, seed: int, metric: Metric = ACCURACY) -> int:
-    """Queue every job of the current selection that has no trial yet (seed-major, most important first,
-    so a time box cut leaves every candidate with as many seeds as possible); the number queued."""
+    """Queue every job of the current selection that has no trial yet; the number queued.
+
+    The order serves a time box that cuts confirmation short: the first two seeds of each candidate
+    together, most important candidate first (two seeds give a spread, and the default pick needs
+    them), then the further seeds round by round.
+    """
     frame = trials_frame(main)
     chosen = select(frame, budget.caps(), cost_columns(budget.caps(), OBJECTIVES[objective]), val_images,
                     settings, seed, metric)
@@ -107,11 +111,12 @@ def plan(study: optuna.Study, main: optuna.Study, budget: Budget, objective: str
         if "trial" in params and not (t.state == TrialState.FAIL and record_of(t).get("state") in (INTERRUPTED, NOT_STARTED)):
             have.add((params["trial"], params["seed_index"]))
     queued = 0
-    for index in range(settings.seeds):
-        for trial, why in chosen:
-            if (trial, index) not in have:
-                study.enqueue_trial({"trial": trial, "seed_index": index}, user_attrs={"chosen": why})
-                queued += 1
+    order = [(trial, why, index) for trial, why in chosen for index in range(min(2, settings.seeds))]
+    order += [(trial, why, index) for index in range(2, settings.seeds) for trial, why in chosen]
+    for trial, why, index in order:
+        if (trial, index) not in have:
+            study.enqueue_trial({"trial": trial, "seed_index": index}, user_attrs={"chosen": why})
+            queued += 1
     return queued
 
 
