@@ -7,10 +7,12 @@ searching the same thing.
 
 from __future__ import annotations
 
+import contextlib
 import hashlib
 import json
 import logging
 import os
+import random
 import re
 import sqlite3
 import time
@@ -81,8 +83,7 @@ def open_storage(url: str, *, create: bool = True) -> optuna.storages.BaseStorag
             if not create:  # mode=rw: SQLite opens the file only if it exists, never makes a new one
                 return _rdb_storage(f"sqlite:///file:{path}?mode=rw&uri=true", {"connect_args": {"timeout": 120}})
             path.parent.mkdir(parents=True, exist_ok=True)
-            with sqlite3.connect(path) as connection:  # WAL lets readers (status, report) not block writers
-                connection.execute("PRAGMA journal_mode=WAL")
+            _write_ahead_log(path)
             return _commit_without_waiting_for_disk(_rdb_storage(url, {"connect_args": {"timeout": 120}}))
         if url.startswith(("postgresql://", "postgres://")):
             url = "postgresql+psycopg://" + url.split("://", 1)[1]
@@ -92,6 +93,25 @@ def open_storage(url: str, *, create: bool = True) -> optuna.storages.BaseStorag
                             key="--storage") from None
     except Exception as exc:  # connection refused, bad credentials, unreadable file ...
         raise SearcherError(f"cannot open `--storage` {redact(url)}: {redact(_first_line(exc))}", key="--storage") from None
+
+
+def _write_ahead_log(path: Path, attempts: int = 100) -> None:
+    """Put a SQLite file in WAL mode, which lets readers (status, report) not block writers.
+
+    The mode is kept in the file, so only a new file needs it set. Two searches started at once on
+    a new file both set it: SQLite then answers one of them "database is locked" at once, without
+    waiting out the busy timeout, so that one looks again after a moment.
+    """
+    for attempt in range(attempts):
+        try:
+            with contextlib.closing(sqlite3.connect(path, timeout=120)) as connection:
+                if connection.execute("PRAGMA journal_mode").fetchone()[0].lower() != "wal":
+                    connection.execute("PRAGMA journal_mode=WAL")
+                return
+        except sqlite3.OperationalError as exc:
+            if "locked" not in str(exc) or attempt == attempts - 1:
+                raise
+            time.sleep(0.02 + 0.03 * random.random())
 
 
 def repair_journal(path: Path) -> int:
@@ -172,7 +192,7 @@ def disk_flush(url: str) -> Callable[[], None] | None:
 
 
 # what creating the tables says when another process is creating them at the same moment
-_CREATION_RACE = re.compile(r"already exists|unique|duplicate", re.IGNORECASE)
+_CREATION_RACE = re.compile(r"already exists|unique|duplicate|database is locked", re.IGNORECASE)
 
 
 def _rdb_storage(url: str, engine_kwargs: dict[str, Any], attempts: int = 6) -> optuna.storages.RDBStorage:
