@@ -1,7 +1,7 @@
 """Search benchmarks, measured side by side in one run (a script; pytest does not collect it).
 
     python tests/bench_search.py            # both parts
-    python tests/bench_search.py overhead   # only the loop-overhead part
+    python tests/bench_search.py overhead   # only the loop-overhead part (--epochs N: a proxy of N epochs)
 
 1. Overhead: on a demo run, the share of wall time that is not training (sampling, storage,
    budget checks, logging, the report), on the default SQLite store and on the journal file
@@ -32,10 +32,11 @@ from searcher.study.search_run import search  # noqa: E402
 from searcher.study.storage import open_study, storage_url  # noqa: E402
 
 
-def overhead(folder: Path, store: str) -> None:
+def overhead(folder: Path, store: str, epochs: int | None = None) -> None:
     """Time the worker loop and the final write-out inside one real search; training is what's left.
 
     ``store``: "sqlite" (the default store) or "journal" (Optuna's journal file), the same search on each.
+    ``epochs``: the proxy's length (default: the example's); shorter training makes the share larger.
     """
     import searcher.study.search_run as runner
 
@@ -50,25 +51,28 @@ def overhead(folder: Path, store: str) -> None:
                 spent[name] = spent.get(name, 0.0) + time.perf_counter() - started
         return wrapper
 
-    real = runner.run_worker, runner.finish
-    runner.run_worker, runner.finish = timed("loop", runner.run_worker), timed("finish", runner.finish)
+    real = runner.run_phases, runner.finish
+    runner.run_phases, runner.finish = timed("loop", runner.run_phases), timed("finish", runner.finish)
     storage = str(folder / "overhead.journal") if store == "journal" else None
     settings = SearchSettings(name=f"overhead-{store}", space=str(ROOT / "examples" / "stamp_inspection.toml"),
                               data="demo", trials=20, root=folder, storage=storage,
                               confirm=ConfirmSettings(seeds=0))  # the proxy phase alone
     started = time.perf_counter()
     try:
-        outcome = search(settings)  # the demo as README runs it: 6-epoch proxy training
+        outcome = search(settings, train={"epochs": epochs} if epochs else None)  # the demo as README runs it
     finally:
-        runner.run_worker, runner.finish = real
+        runner.run_phases, runner.finish = real
     wall = time.perf_counter() - started
     trials = pd.read_csv(outcome.folder / "trials.csv")
-    training = trials["train_seconds"].sum()
+    # the int8 check after training (budgets in int8 weights) is measurement, with a benchmark of its
+    # own (bench_int8.py): counted here beside training, not as loop overhead
+    int8 = trials["int8_seconds"].fillna(0).sum() if "int8_seconds" in trials else 0.0
+    training = trials["train_seconds"].sum() + int8
     once = wall - spent["loop"] - spent["finish"]
     loop = spent["loop"] - training
-    print(f"[overhead {store}] {len(trials)} proposals, {outcome.counts['rejected']} rejected, "
+    print(f"[overhead {store}, {epochs or 'default'} epochs] {len(trials)} proposals, {outcome.counts['rejected']} rejected, "
           f"{outcome.counts['trained'] + outcome.counts['stopped_early']} trained")
-    print(f"[overhead {store}] wall {wall:.1f} s: training {training:.1f} s, loop bookkeeping {loop:.1f} s, "
+    print(f"[overhead {store}] wall {wall:.1f} s: training {training - int8:.1f} s, int8 check {int8:.1f} s, loop bookkeeping {loop:.1f} s, "
           f"final trials.csv + report {spent['finish']:.1f} s, one-off start (data, census, study) {once:.1f} s")
     print(f"[overhead {store}] search-loop overhead (sampling, storage, checks, logging, report) = "
           f"{(loop + spent['finish']) / wall:.1%} of wall time (goal < 5%); with the one-off start {(wall - training) / wall:.1%}")
@@ -118,9 +122,19 @@ def against_plain_loop(folder: Path, seed: int) -> None:
     study, _ = open_study(name, storage_url(None, folder / name), None)
     trials = sorted(study.get_trials(deepcopy=False), key=lambda t: t.datetime_complete or t.datetime_start)
     begin = min(t.datetime_start for t in trials)
-    reached = next(((t.datetime_complete - begin).total_seconds() for t in trials
-                    if (r := t.user_attrs.get("searcher", {})).get("state") == "trained"
-                    and r.get("params", 1e9) <= 5_000 and (r.get("val_accuracy") or 0) >= target), None)
+    def first_reaching(level: float) -> float | None:
+        return next(((t.datetime_complete - begin).total_seconds() for t in trials
+                     if (r := t.user_attrs.get("searcher", {})).get("state") == "trained"
+                     and r.get("params", 1e9) <= 5_000 and (r.get("val_accuracy") or 0) >= level - 1e-9), None)
+
+    reached = first_reaching(target)
+    # one validation image is about a third of a point here, well inside the split's noise: also
+    # printed, beside the strict figure, is when ours came within one image of the plain loop's best
+    images = len(run.data.dataset.val.labels)
+    near = first_reaching(target - 1 / images)
+    if near is not None:
+        print(f"[ours  seed {seed}] within one of the {images} validation images of it after {near:.1f} s "
+              f"= {near / plain_total:.2f} of the plain loop's whole run")
     best = max((t.user_attrs.get("searcher", {}).get("val_accuracy") or 0) for t in trials
                if t.user_attrs.get("searcher", {}).get("state") == "trained")
     if reached is None:
@@ -133,11 +147,17 @@ def against_plain_loop(folder: Path, seed: int) -> None:
 
 if __name__ == "__main__":
     optuna.logging.set_verbosity(optuna.logging.WARNING)
-    which = sys.argv[1:] or ["overhead", "plain"]
+    import argparse
+
+    parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    parser.add_argument("what", nargs="*", choices=["overhead", "plain"])
+    parser.add_argument("--epochs", type=int, help="proxy epochs for the overhead part (default: the example's)")
+    args = parser.parse_args()
+    which = args.what or ["overhead", "plain"]
     with tempfile.TemporaryDirectory() as tmp:
         if "overhead" in which:
             for store in ("sqlite", "journal"):
-                overhead(Path(tmp), store)
+                overhead(Path(tmp), store, args.epochs)
         if "plain" in which:
             for seed in (0, 1, 2):
                 (Path(tmp) / f"seed{seed}").mkdir()

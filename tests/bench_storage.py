@@ -27,7 +27,7 @@ import sys
 import tempfile
 import time
 import uuid
-from dataclasses import replace
+from dataclasses import asdict, replace
 from pathlib import Path
 
 HERE = Path(__file__).resolve().parent
@@ -66,8 +66,8 @@ def make_search(url: str | None, name: str, budget: Budget, worker: int = 0) -> 
     space = load_space(SPACE)
     budget = replace(space.budget, **{k: v for k, v in budget.__dict__.items() if k.startswith("max_")})
     settings = TrainSettings(epochs=EPOCHS)
-    config = RunConfig(space_name=space.name, space_text=SPACE.read_text(), budget=budget.__dict__,
-                       train=settings.__dict__, data="bench", data_fingerprint="bench", classes=CLASSES,
+    config = RunConfig(space_name=space.name, space_text=SPACE.read_text(), budget=asdict(budget),
+                       train=asdict(settings), data="bench", data_fingerprint="bench", classes=CLASSES,
                        class_names=tuple(map(str, range(CLASSES))), objective="accuracy", seed=0)
     if url is None:
         study = optuna.create_study(study_name=name, sampler=make_sampler("tpe", "accuracy", worker),

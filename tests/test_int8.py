@@ -308,5 +308,8 @@ def test_search_records_int8_accuracy_when_weights_are_int8(tmp_path):
     assert len(trained) >= 1 and trained["val_accuracy_int8"].between(0, 1).all()
     # an int8 model of a trained network scores close to it (common practice: within a few points)
     assert (trained["val_accuracy_int8"] - trained["val_accuracy"]).abs().max() < 0.15
+    # what the check cost is kept beside the training time; an fp32 budget costs nothing
+    assert (trained["int8_seconds"] > 0).all()
     assert pd.read_csv(fp32.folder / "trials.csv")["val_accuracy_int8"].isna().all()
+    assert (pd.read_csv(fp32.folder / "trials.csv")["int8_seconds"] == 0).all()
     assert "int8 accuracy" in (int8.folder / "report.html").read_text()

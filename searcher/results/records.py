@@ -25,7 +25,7 @@ RECORD = "searcher"
 HEARTBEAT = "heartbeat"
 COLUMNS = (
     "trial", "arch", "state", "reason", "rejected_by", "val_accuracy", "val_balanced_accuracy", "val_accuracy_int8",
-    "val_recall", "train_seconds", "epochs",
+    "val_recall", "train_seconds", "int8_seconds", "epochs",
     "params", "macs", "peak_activation_bytes", "weight_bytes", "training_bytes",
     "stages", "convs", "first_width", "last_width", "worker", "retry_of", "repeat_of",
 )
@@ -113,7 +113,7 @@ def trials_frame(study: optuna.Study) -> pd.DataFrame:
     """Every trial of the study as one row, in trial order (see COLUMNS)."""
     rows = [row_of(t) for t in study.get_trials(deepcopy=False)]
     frame = pd.DataFrame(rows, columns=list(COLUMNS))
-    for column in ("train_seconds",):
+    for column in ("train_seconds", "int8_seconds"):
         frame[column] = frame[column].fillna(0.0)
     return frame
 
