@@ -68,7 +68,7 @@ def cmd_export(args: argparse.Namespace) -> int:
                                                       epochs=args.epochs, storage=args.storage,
                                                       tolerance=args.tolerance, force=args.force))
     print(f"exported {outcome.arch}")
-    print(f"test accuracy {outcome.test_accuracy:.4f} (int8 {outcome.test_accuracy_int8:.4f}) on the held-out split; "
+    print(f"{outcome.scores_line()} on the held-out split; "
           + ("meets every cap" if outcome.fits else "BREAKS a cap"))
     print(f"files in {outcome.folder}: " + ", ".join(sorted(p.name for p in outcome.folder.iterdir())))
     return 0
@@ -124,7 +124,7 @@ def add_search_commands(sub, space_path, add_budget, budget_of) -> None:
     p.add_argument("--storage", help="the run's storage URL when it is not runs/NAME/study.db")
     p.add_argument("--tolerance", type=float, metavar="ACCURACY",
                    help="the default pick may be this much less accurate than the best confirmed candidate "
-                        "(0.01 = one point; default: two standard errors from the seeds' spread)")
+                        "(0.01 = one point; default: two standard errors from the run's seed spread)")
     p.add_argument("--force", action="store_true",
                    help="replace an existing export with a candidate that breaks a cap or failed")
     p.set_defaults(run=cmd_export)

@@ -12,7 +12,7 @@ import pandas as pd
 import plotly.graph_objects as go
 
 from searcher.core.stats import accuracy_se
-from searcher.results.confirmed import Confirmation
+from searcher.results.confirmed import Confirmation, difference_noise, seed_spread
 from searcher.results.pareto import feasible_mask, pareto_mask
 from searcher.results.report_parts import COST_LABELS, TEMPLATE, cost_text, empty_note, percent, table_html
 
@@ -63,20 +63,19 @@ def proxy_figure(confirmation: Confirmation | None) -> go.Figure:
 
 def confirmed_front_html(confirmation: Confirmation | None, cost: str, caps: dict[str, float]) -> str:
     """The front by one cost on confirmed means, each step from the row above marked where it is within
-    noise (less than two standard errors of the difference, from the seeds' spread)."""
+    noise (less than two standard errors of the difference, from the run's seed spread)."""
     rows = _confirmed(confirmation)
     rows = rows[feasible_mask(rows, caps)] if len(rows) else rows
     if rows.empty:
         return ""
     on = rows[pareto_mask(rows["accuracy_mean"].to_numpy(float), rows[cost].to_numpy(float))]
     on = on.sort_values([cost, "accuracy_mean"], ascending=[True, False])
-    body, before = [], None
+    body, before, spread = [], None, seed_spread(rows)
     for row in on.itertuples(index=False):
         step = "—"
         if before is not None:
             gain = row.accuracy_mean - before.accuracy_mean
-            noise = 2 * math.sqrt(np.nan_to_num(row.accuracy_sd) ** 2 / row.seeds
-                                  + np.nan_to_num(before.accuracy_sd) ** 2 / before.seeds)
+            noise = difference_noise(row.seeds, before.seeds, spread)
             step = (f"{gain * 100:+.1f} pts for ×{getattr(row, cost) / getattr(before, cost):.2f} cost"
                     + (" <b>(within noise)</b>" if abs(gain) <= noise else ""))
         body.append([str(int(row.trial)), f"<code>{html.escape(row.arch)}</code>",

@@ -22,6 +22,7 @@ import onnx
 
 from searcher.core.arch import Arch
 from searcher.core.cost import cost
+from searcher.model.metrics import scores
 from searcher.ship import c_build, int8_reference, onnx_files
 from searcher.ship.c_build import Footprint
 from searcher.ship.c_source import CSource, generate
@@ -43,6 +44,7 @@ class DeployReport:
     net: IntegerNet
     code: CSource
     test_accuracy_int8: float  # integer reference on the held-out split
+    test_balanced_accuracy_int8: float  # its mean recall per class there
     onnx_fp32_max_difference: float  # largest |onnxruntime − torch| score on the held-out images
     onnx_int8_top1_agreement: float  # share of held-out images where model_int8.onnx, run as written, and the reference agree
     onnx_int8_fused_agreement: float  # the same with onnxruntime's default fused integer kernels
@@ -61,6 +63,7 @@ class DeployReport:
             "other_data": self.footprint.other_data, "ram_bytes": self.footprint.ram, "flash_bytes": self.footprint.flash}
         return {
             "test_accuracy_int8": self.test_accuracy_int8,
+            "test_balanced_accuracy_int8": self.test_balanced_accuracy_int8,
             "latency_onnxruntime_fp32_ms": self.latency_onnxruntime_fp32_ms,
             "latency_c_int8_ms": self.latency_c_ms,
             "int8": {
@@ -128,7 +131,7 @@ def write_deploy_files(folder: Path, model: Any, arch: Arch, train_images: Any, 
     images = unit_images(test_images)
     pixels = to_pixels(images)
     expected = int8_reference.scores(net, pixels)
-    accuracy = float(np.mean(expected.argmax(axis=1) == np.asarray(test_labels)))
+    held_out = scores(np.asarray(test_labels), expected.argmax(axis=1), len(class_names))
 
     onnx_files.write_fp32(model, arch, folder / "model.onnx")
     fp32 = onnx_files.session(folder / "model.onnx")
@@ -148,5 +151,5 @@ def write_deploy_files(folder: Path, model: Any, arch: Arch, train_images: Any, 
     peak, weights = prove(arch, code)
     footprint, c_latency, line = _check_c(code, net, pixels, expected, _timed_images(arch))
     log.info(line)
-    return DeployReport(net, code, accuracy, difference, *agreement, latency, c_latency, line, peak, weights,
+    return DeployReport(net, code, held_out.accuracy, held_out.balanced_accuracy, difference, *agreement, latency, c_latency, line, peak, weights,
                         footprint)

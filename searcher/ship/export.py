@@ -103,6 +103,18 @@ class ExportOutcome:
         """The integer reference's accuracy on the held-out split."""
         return None if self.deploy is None else self.deploy.test_accuracy_int8
 
+    @property
+    def test_balanced_accuracy_int8(self) -> float | None:
+        """The integer reference's balanced accuracy on the held-out split."""
+        return None if self.deploy is None else self.deploy.test_balanced_accuracy_int8
+
+    def scores_line(self) -> str:
+        """'test accuracy 0.9899 (int8 0.9899), balanced accuracy 0.9967 (int8 0.9967)' for logs and the CLI."""
+        def both(fp32: float, int8: float | None) -> str:
+            return f"{fp32:.4f}" + ("" if int8 is None else f" (int8 {int8:.4f})")
+        return (f"test accuracy {both(self.test_accuracy, self.test_accuracy_int8)}, balanced accuracy "
+                f"{both(self.test_balanced_accuracy, self.test_balanced_accuracy_int8)}")
+
 
 @dataclass(frozen=True)
 class Choice:
@@ -173,6 +185,7 @@ def export(settings: ExportSettings) -> ExportOutcome:
     results = gather(settings.name, study, storage_url(settings.storage, folder), config, folder, settings.tolerance)
     choice = choose(results, settings)
     arch, how = choice.arch, choice.how
+    log.info("export: %s", how)
     _refuse_replacing(choice, not budget.check(budget.totals(cost(arch, budget.activation_precision))), folder, settings)
     if arch.head.classes != config.classes:
         raise SearcherError(f"architecture has {arch.head.classes} outputs but the run's data has {config.classes} classes")
@@ -216,8 +229,8 @@ def export(settings: ExportSettings) -> ExportOutcome:
              "sizes": {p: len(getattr(data, p).labels) for p in ("train", "val", "test")},
              "settings": asdict(train_settings), "budget": budget, "config": config}
     _write(outcome, model, extra, data)
-    log.info("exported %s: test accuracy %.4f (int8 %.4f) on %d held-out images (%.0f s in all)", arch, scores.accuracy,
-             outcome.test_accuracy_int8, len(data.test.labels), time.time() - started)
+    log.info("exported %s: %s on %d held-out images (%.0f s in all)", arch, outcome.scores_line(),
+             len(data.test.labels), time.time() - started)
     return outcome
 
 

@@ -122,7 +122,7 @@ The test split was not used by the search or by this training.
 | score | fp32 (torch) | int8 (integer reference) |
 |---|---|---|
 | accuracy | **{outcome.test_accuracy:.4f}** | **{outcome.test_accuracy_int8:.4f}** |
-| balanced accuracy (mean recall per class) | **{outcome.test_balanced_accuracy:.4f}** | — |
+| balanced accuracy (mean recall per class) | **{outcome.test_balanced_accuracy:.4f}** | **{outcome.test_balanced_accuracy_int8:.4f}** |
 
 fp32: 95% interval {low:.4f}–{high:.4f} (Wilson's score interval at {sizes['test']} images).
 {confirmed}
