@@ -222,14 +222,33 @@ class Confirmation:
         words = f"the proxy's ranking agrees with the confirmed one at Spearman's rho {self.spearman:.2f}"
         if self.reliable:
             return words
+        tied = self.tied()
+        if tied is not None:
+            low, high, noise = tied
+            return (f"{words}, but the confirmed means all lie within noise of each other ({low:.4f} to {high:.4f}, "
+                    f"two standard errors {noise:.4f}), so there is little ranking to agree with: these candidates "
+                    f"are as good as each other as far as the seeds can tell; more seeds (--confirm) would separate them")
         longer = ", ".join(f"{rho:.2f} after {e} epochs" for e, rho in sorted(self.early.items()) if math.isfinite(rho))
         return (f"{words}, below {RELIABLE_SPEARMAN}: the proxy is unreliable for this data; give it more epochs "
                 f"(--epochs) or all of the training split (--train-fraction 1)"
                 + (f"; the confirmation runs' own accuracy ranks at {longer}" if longer else ""))
 
+    def tied(self) -> tuple[float, float, float] | None:
+        """(lowest, highest, noise) when every confirmed mean (two seeds or more) is within two standard
+        errors of every other, with the run's seed spread and the fewest seeds; else None."""
+        rows = self.table[self.table["seeds"] >= 2]
+        means = rows[self.metric.mean].dropna()
+        if len(means) < 3:
+            return None
+        seeds = int(rows["seeds"].min())
+        noise = difference_noise(seeds, seeds, seed_spread(rows, self.metric))
+        low, high = float(means.min()), float(means.max())
+        return (low, high, noise) if high - low <= noise else None
+
     def summary(self) -> dict:
         return {"proxy_spearman": None if not math.isfinite(self.spearman) else round(self.spearman, 4),
-                "proxy_reliable": self.reliable, "proxy_epochs": self.proxy_epochs,
+                "proxy_reliable": self.reliable, "confirmed_within_noise": self.tied() is not None,
+                "proxy_epochs": self.proxy_epochs,
                 "ranking_after_epochs": {str(e): (None if not math.isfinite(r) else round(r, 4))
                                          for e, r in self.early.items()},
                 "metric": self.metric.name,
