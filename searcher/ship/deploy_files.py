@@ -151,5 +151,5 @@ def write_deploy_files(folder: Path, model: Any, arch: Arch, train_images: Any, 
     peak, weights = prove(arch, code)
     footprint, c_latency, line = _check_c(code, net, pixels, expected, _timed_images(arch))
     log.info(line)
-    return DeployReport(net, code, held_out.accuracy, held_out.balanced_accuracy, difference, *agreement, latency, c_latency, line, peak, weights,
-                        footprint)
+    return DeployReport(net, code, held_out.accuracy, held_out.balanced_accuracy, difference, *agreement, latency,
+                        c_latency, line, peak, weights, footprint)

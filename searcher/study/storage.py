@@ -19,7 +19,7 @@ import time
 import warnings
 from dataclasses import dataclass
 from pathlib import Path
-from typing import Any, Callable
+from typing import Any, Callable, TypeVar
 
 import optuna
 import sqlalchemy
@@ -31,6 +31,7 @@ from searcher.study.early_stop import make_pruner
 from searcher.study.optuna_private import journal_lock, seed_draws
 
 log = logging.getLogger(__name__)
+T = TypeVar("T")
 
 # objective name -> cost column minimised beside accuracy (None: accuracy alone)
 OBJECTIVES = {"accuracy": None, "params": "params", "macs": "macs", "activation": "peak_activation_bytes"}
@@ -83,7 +84,7 @@ def open_storage(url: str, *, create: bool = True) -> optuna.storages.BaseStorag
             if not create:  # mode=rw: SQLite opens the file only if it exists, never makes a new one
                 return _rdb_storage(f"sqlite:///file:{path}?mode=rw&uri=true", {"connect_args": {"timeout": 120}})
             path.parent.mkdir(parents=True, exist_ok=True)
-            _write_ahead_log(path)
+            _retried(lambda: _write_ahead_log(path))
             return _commit_without_waiting_for_disk(_rdb_storage(url, {"connect_args": {"timeout": 120}}))
         if url.startswith(("postgresql://", "postgres://")):
             url = "postgresql+psycopg://" + url.split("://", 1)[1]
@@ -95,23 +96,16 @@ def open_storage(url: str, *, create: bool = True) -> optuna.storages.BaseStorag
         raise SearcherError(f"cannot open `--storage` {redact(url)}: {redact(_first_line(exc))}", key="--storage") from None
 
 
-def _write_ahead_log(path: Path, attempts: int = 100) -> None:
+def _write_ahead_log(path: Path) -> None:
     """Put a SQLite file in WAL mode, which lets readers (status, report) not block writers.
 
     The mode is kept in the file, so only a new file needs it set. Two searches started at once on
-    a new file both set it: SQLite then answers one of them "database is locked" at once, without
-    waiting out the busy timeout, so that one looks again after a moment.
+    a new file both set it, and SQLite answers one of them "database is locked" at once, without
+    waiting out the busy timeout: :func:`_retried` makes that one look again.
     """
-    for attempt in range(attempts):
-        try:
-            with contextlib.closing(sqlite3.connect(path, timeout=120)) as connection:
-                if connection.execute("PRAGMA journal_mode").fetchone()[0].lower() != "wal":
-                    connection.execute("PRAGMA journal_mode=WAL")
-                return
-        except sqlite3.OperationalError as exc:
-            if "locked" not in str(exc) or attempt == attempts - 1:
-                raise
-            time.sleep(0.02 + 0.03 * random.random())
+    with contextlib.closing(sqlite3.connect(path, timeout=120)) as connection:
+        if connection.execute("PRAGMA journal_mode").fetchone()[0].lower() != "wal":
+            connection.execute("PRAGMA journal_mode=WAL")
 
 
 def repair_journal(path: Path) -> int:
@@ -191,21 +185,27 @@ def disk_flush(url: str) -> Callable[[], None] | None:
     return flush
 
 
-# what creating the tables says when another process is creating them at the same moment
+# what opening a new store says when another process is setting up the same store at that moment
+# (creating its tables, or switching a SQLite file to WAL mode)
 _CREATION_RACE = re.compile(r"already exists|unique|duplicate|database is locked", re.IGNORECASE)
 
 
-def _rdb_storage(url: str, engine_kwargs: dict[str, Any], attempts: int = 6) -> optuna.storages.RDBStorage:
-    """An RDB storage, retried while another worker is creating the same fresh database's tables."""
+def _retried(action: Callable[[], T], attempts: int = 60) -> T:
+    """``action()``, tried again after a moment while another process is setting up the same new store."""
     for attempt in range(attempts):
         try:
-            return optuna.storages.RDBStorage(url, engine_kwargs=engine_kwargs)
+            return action()
         except Exception as exc:
             if attempt == attempts - 1 or not _CREATION_RACE.search(str(exc)):
                 raise
-            log.debug("storage tables were being created by another process (%s); retrying", _first_line(exc))
-            time.sleep(0.1 * (attempt + 1))
+            log.debug("another process is setting up the store (%s); retrying", _first_line(exc))
+            time.sleep(0.02 + 0.06 * random.random())
     raise AssertionError("unreachable")
+
+
+def _rdb_storage(url: str, engine_kwargs: dict[str, Any]) -> optuna.storages.RDBStorage:
+    """An RDB storage, retried while another worker is creating the same fresh database's tables."""
+    return _retried(lambda: optuna.storages.RDBStorage(url, engine_kwargs=engine_kwargs))
 
 
 def _first_line(exc: BaseException) -> str:
