@@ -285,3 +285,21 @@ def test_confirmed_means_hold_up_when_retrained_with_other_seeds(tmp_path):
                                  settings, seed=10_000 + k).val_accuracy for k in range(3)]
         spread = max(row.accuracy_sd, float(np.std(again, ddof=1)), accuracy_se(row.accuracy_mean, len(data.val.labels)) / 2)
         assert abs(np.mean(again) - row.accuracy_mean) <= 2 * spread, (row.arch, row.accuracy_mean, again)
+
+
+def test_the_report_shows_confirmed_numbers_in_the_runs_score():
+    """Regression, seen on a run by balanced accuracy: the report's confirmed points and front showed
+    plain accuracy beside proxy balanced accuracy."""
+    from searcher.results.records import METRICS
+    from searcher.results.report_confirmed import confirmed_front_html, proxy_figure
+
+    frame = _frame([(0, 0.70, 100), (1, 0.80, 200), (2, 0.90, 300)])
+    jobs = _jobs({0: [0.5, 0.52], 1: [0.6, 0.62], 2: [0.7, 0.72]})
+    jobs["val_balanced_accuracy"] = jobs["val_accuracy"] + 0.2  # balanced 0.71, 0.81, 0.91 on average
+    found = confirmation(frame, jobs, {}, "params", None, proxy_epochs=1, full_epochs=10,
+                         metric=METRICS["balanced_accuracy"])
+    figure = proxy_figure(found)
+    assert "balanced accuracy" in figure.layout.title.text
+    assert list(figure.data[0].y) == pytest.approx([0.71, 0.81, 0.91])
+    front = confirmed_front_html(found, "params", {})
+    assert "91.0%" in front and "71.0%" in front and "51.0%" not in front

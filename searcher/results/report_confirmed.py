@@ -14,16 +14,24 @@ import plotly.graph_objects as go
 from searcher.core.stats import accuracy_se
 from searcher.results.confirmed import Confirmation, difference_noise, seed_spread
 from searcher.results.pareto import feasible_mask, pareto_mask
+from searcher.results.records import ACCURACY
 from searcher.results.report_parts import COST_LABELS, TEMPLATE, cost_text, empty_note, percent, table_html
 
 CONFIRMED_COLOUR = "#2a9d5b"
 
 
 def _confirmed(confirmation: Confirmation | None) -> pd.DataFrame:
+    """The confirmed candidates, with the run's score (accuracy or balanced accuracy) as score_mean,
+    score_sd and score_proxy."""
     if confirmation is None:
-        return pd.DataFrame(columns=["trial", "arch", "seeds", "accuracy_mean", "accuracy_sd", "proxy_accuracy"])
-    table = confirmation.table
+        return pd.DataFrame(columns=["trial", "arch", "seeds", "score_mean", "score_sd", "score_proxy"])
+    table, metric = confirmation.table, confirmation.metric
+    table = table.assign(score_mean=table[metric.mean], score_sd=table[metric.sd], score_proxy=table[metric.proxy])
     return table[table["seeds"] > 0]
+
+
+def _label(confirmation: Confirmation | None) -> str:
+    return ACCURACY.label if confirmation is None else confirmation.metric.label
 
 
 def add_confirmed(fig: go.Figure, confirmation: Confirmation | None, cost: str) -> None:
@@ -31,14 +39,14 @@ def add_confirmed(fig: go.Figure, confirmation: Confirmation | None, cost: str) 
     rows = _confirmed(confirmation)
     if rows.empty:
         return
-    sd = rows["accuracy_sd"].fillna(0.0)
+    sd = rows["score_sd"].fillna(0.0)
     fig.add_scatter(
-        x=rows[cost], y=rows["accuracy_mean"], mode="markers", name="confirmed mean ± 1 sd",
+        x=rows[cost], y=rows["score_mean"], mode="markers", name="confirmed mean ± 1 sd",
         error_y={"type": "data", "array": sd, "visible": True, "color": CONFIRMED_COLOUR, "thickness": 1.5},
         marker={"color": CONFIRMED_COLOUR, "size": 9, "symbol": "square"},
         text=[f"<b>{html.escape(a)}</b><br>trial {int(t)} · confirmed {percent(m)} ± {percent(s)} over {int(n)} "
-              f"seeds · proxy {percent(p)}" for a, t, m, s, n, p in zip(rows["arch"], rows["trial"], rows["accuracy_mean"],
-                                                                       sd, rows["seeds"], rows["proxy_accuracy"])],
+              f"seeds · proxy {percent(p)}" for a, t, m, s, n, p in zip(rows["arch"], rows["trial"], rows["score_mean"],
+                                                                       sd, rows["seeds"], rows["score_proxy"])],
         hovertemplate="%{text}<extra></extra>")
 
 
@@ -46,17 +54,17 @@ def proxy_figure(confirmation: Confirmation | None) -> go.Figure:
     """Proxy accuracy against confirmed mean: a good proxy puts the points in the same order."""
     rows = _confirmed(confirmation)
     rho = math.nan if confirmation is None else confirmation.spearman
-    title = "Proxy against confirmed accuracy" + (f" (Spearman's rho {rho:.2f})" if math.isfinite(rho) else "")
+    title = f"Proxy against confirmed {_label(confirmation)}" + (f" (Spearman's rho {rho:.2f})" if math.isfinite(rho) else "")
     fig = go.Figure(layout={"template": TEMPLATE, "title": title, "showlegend": False})
-    fig.add_scatter(x=rows["proxy_accuracy"], y=rows["accuracy_mean"], mode="markers",
-                    error_y={"type": "data", "array": rows["accuracy_sd"].fillna(0.0), "visible": True},
+    fig.add_scatter(x=rows["score_proxy"], y=rows["score_mean"], mode="markers",
+                    error_y={"type": "data", "array": rows["score_sd"].fillna(0.0), "visible": True},
                     marker={"color": CONFIRMED_COLOUR, "size": 9},
                     text=[f"trial {int(t)}: {html.escape(a)}" for t, a in zip(rows["trial"], rows["arch"])],
                     hovertemplate="%{text}<br>proxy %{x:.1%} · confirmed %{y:.1%}<extra></extra>")
     if not rows.empty:
-        low = float(np.nanmin([rows["proxy_accuracy"].min(), rows["accuracy_mean"].min()])) - 0.02
+        low = float(np.nanmin([rows["score_proxy"].min(), rows["score_mean"].min()])) - 0.02
         fig.add_shape(type="line", x0=low, y0=low, x1=1, y1=1, line={"color": "#999", "dash": "dot"})
-    fig.update_xaxes(title="proxy validation accuracy (short training)", tickformat=".0%")
+    fig.update_xaxes(title=f"proxy validation {_label(confirmation)} (short training)", tickformat=".0%")
     fig.update_yaxes(title="confirmed mean (full schedule, several seeds)", tickformat=".0%")
     return empty_note(fig, "nothing confirmed yet", rows.empty)
 
@@ -68,19 +76,19 @@ def confirmed_front_html(confirmation: Confirmation | None, cost: str, caps: dic
     rows = rows[feasible_mask(rows, caps)] if len(rows) else rows
     if rows.empty:
         return ""
-    on = rows[pareto_mask(rows["accuracy_mean"].to_numpy(float), rows[cost].to_numpy(float))]
-    on = on.sort_values([cost, "accuracy_mean"], ascending=[True, False])
-    body, before, spread = [], None, seed_spread(rows)
+    on = rows[pareto_mask(rows["score_mean"].to_numpy(float), rows[cost].to_numpy(float))]
+    on = on.sort_values([cost, "score_mean"], ascending=[True, False])
+    body, before, spread = [], None, seed_spread(rows, confirmation.metric)
     for row in on.itertuples(index=False):
         step = "—"
         if before is not None:
-            gain = row.accuracy_mean - before.accuracy_mean
+            gain = row.score_mean - before.score_mean
             noise = difference_noise(row.seeds, before.seeds, spread)
             step = (f"{gain * 100:+.1f} pts for ×{getattr(row, cost) / getattr(before, cost):.2f} cost"
                     + (" <b>(within noise)</b>" if abs(gain) <= noise else ""))
         body.append([str(int(row.trial)), f"<code>{html.escape(row.arch)}</code>",
-                     f"{percent(row.accuracy_mean)} ± {percent(np.nan_to_num(row.accuracy_sd))}", str(int(row.seeds)),
-                     percent(row.proxy_accuracy), cost_text(cost, getattr(row, cost)), step])
+                     f"{percent(row.score_mean)} ± {percent(np.nan_to_num(row.score_sd))}", str(int(row.seeds)),
+                     percent(row.score_proxy), cost_text(cost, getattr(row, cost)), step])
         before = row
     heads = ["trial", "architecture", "confirmed mean ± sd", "seeds", "proxy", COST_LABELS[cost][0],
              "step from the row above (confirmed)"]
