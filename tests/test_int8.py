@@ -232,6 +232,34 @@ def test_without_gcc_the_c_files_are_written_and_the_check_skipped(monkeypatch, 
     assert report.c_check in int8_section(report, arch)  # the card says so too
 
 
+NASTY_NAMES = (  # user-named strings that could change the meaning of C if pasted in unescaped
+    'quote " and */ end of comment', "back\\slash and ??/ trigraph ??= ??( ??' ??!", "new\nline\r\ttab",
+    "/* opens a comment", "\\u0041 universal name", "nul \x00 byte and é ünïcode", "\"", "", "%s %d %n",
+)
+
+
+def test_class_names_stay_data_in_the_c_header(tmp_path):
+    """gcc -std=c99 (trigraphs on): a program built against the header prints back each class name's UTF-8
+    bytes exactly, and the model still compiles under the strict warnings."""
+    found = c_build.tools()
+    if found is None:
+        pytest.skip("gcc and binutils' size are not installed")
+    _, net = random_net(parse_arch(EXAMPLES[3]))
+    names = NASTY_NAMES
+    code = generate(net, names)
+    c_build.compile_model(code, found, tmp_path)
+    (tmp_path / "names.c").write_text(
+        '#include <stdio.h>\n#include <string.h>\n#include "model_int8.h"\n'
+        "static const char *const names[] = MODEL_CLASS_NAMES;\n"
+        "int main(void) { size_t i, j; for (i = 0; i < sizeof names / sizeof *names; ++i) {\n"
+        "  for (j = 0; j < strlen(names[i]); ++j) printf(\"%02x\", (unsigned char)names[i][j]);\n"
+        "  printf(\"\\n\"); } return 0; }\n", encoding="utf-8")
+    c_build._run([found.gcc, *c_build.WARNINGS, "-trigraphs", "names.c", "-o", "names"], tmp_path)
+    printed = c_build._run([str(tmp_path / "names")], tmp_path).splitlines()
+    # C's strings stop at a NUL byte, so a name holding one reads back up to it
+    assert printed == [n.encode("utf-8").split(b"\0")[0].hex() for n in names]
+
+
 # -- trained candidates: accuracy against an independent PTQ, and onnxruntime on held-out images ---
 
 TRAINED = {  # data set -> (architecture, proxy-training settings)

@@ -189,6 +189,22 @@ def _pool_function(kind: str) -> str:
 
 # -- the generated part ---------------------------------------------------------------------------
 
+_PLAIN = frozenset(b"abcdefghijklmnopqrstuvwxyzABCDEFGHIJKLMNOPQRSTUVWXYZ0123456789 _-+.,:;=()[]{}<>!#%&'|~^@$`/")
+
+
+def c_string(text: str) -> str:
+    r"""``text`` as a C string literal that holds its UTF-8 bytes and nothing else.
+
+    Every byte outside a small safe set is a three-digit octal escape, so no user-named string (a
+    class folder's name) can end the literal, a comment or a line, or form a trigraph (``??/`` is a
+    backslash under -std=c99) or a universal character name: the name stays data.
+
+    >>> print(c_string('a"b??/\\ é'))
+    "a\042b\077\077/\134 \303\251"
+    """
+    return '"' + "".join(chr(b) if b in _PLAIN else f"\\{b:03o}" for b in text.encode("utf-8")) + '"'
+
+
 def _array(ctype: str, name: str, values: np.ndarray) -> str:
     flat = [str(int(v)) for v in np.asarray(values).ravel()]
     lines = [", ".join(flat[i:i + PER_LINE]) for i in range(0, len(flat), PER_LINE)]
@@ -321,7 +337,7 @@ int model_classify(const uint8_t *pixels, int8_t *scores)
     return best;
 }}
 """
-    names = ", ".join('"' + n.replace("\\", "\\\\").replace('"', '\\"') + '"' for n in class_names)
+    names = ", ".join(c_string(n) for n in class_names)
     header = f"""\
 /* model_int8.h: image classifier {net.arch}, int8 (see model_int8.c). */
 #ifndef MODEL_INT8_H
