@@ -1,4 +1,4 @@
-"""Helpers for the int8 tests and tests/bench_int8.py: data sets, trained candidates, an outside PTQ.
+"""Helpers for the int8 tests and benchmarks/bench_int8.py: data sets, trained candidates, an outside PTQ.
 
 Outside references used here:
 * the UCI optical handwritten digits shipped with scikit-learn (``sklearn.datasets.load_digits``);

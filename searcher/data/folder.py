@@ -161,7 +161,7 @@ def decode_folder(path: Path, channels: int, h: int, w: int, *, skip_unreadable:
     `workers` decode runs of CHUNK files (None: one per core; 1: in this process). They are forked
     processes where the system forks (Linux), threads elsewhere: per file, Pillow spends much of its
     time in Python (opening, reading PNG chunks), which threads share one at a time. Measured on
-    20,000 RGB 64×64 PNGs with 2 cores (tests/bench_data.py decode, two runs): processes 1.29-1.67×,
+    20,000 RGB 64×64 PNGs with 2 cores (benchmarks/bench_data.py decode, two runs): processes 1.29-1.67×,
     threads 0.92-1.26× the serial rate. The children only decode files; they never touch torch.
     """
     classes = class_folders(path)

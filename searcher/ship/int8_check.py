@@ -6,7 +6,7 @@
 It quantizes the trained model as export does (calibrating on the first ``settings.images``
 training images) and scores the validation split with the integer reference's fast engine, which
 gives the same integers as the reference (``tests/test_int8.py`` checks that) in a fraction of
-the time. ``python tests/bench_int8.py`` measures its cost against the proxy training.
+the time. ``python benchmarks/bench_int8.py`` measures its cost against the proxy training.
 """
 
 from __future__ import annotations

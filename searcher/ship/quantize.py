@@ -53,7 +53,7 @@ class QuantSettings:
 
     The default is ``minmax``: each tensor's grid spans the smallest and largest value seen. The
     alternative measured against it is a percentile range (the grid spans the (100 − p)th to the
-    p-th percentile; rarer values saturate). ``python tests/bench_int8.py calibration`` on 16
+    p-th percentile; rarer values saturate). ``python benchmarks/bench_int8.py calibration`` on 16
     trained candidates (8 of the stamp-inspection space on the demo, 8 of examples/digits.toml on
     the UCI digits) gave, as change of held-out accuracy from fp32: min/max +0.00 points on average
     (worst −1.1), 99.99th percentile +0.09 (worst −0.45), 99.9th percentile −0.15 (worst −1.8).

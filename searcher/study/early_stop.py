@@ -28,7 +28,7 @@ def make_pruner(epochs: int) -> optuna.pruners.SuccessiveHalvingPruner:
     """Successive halving with one check, halfway through the proxy schedule, keeping the better half.
 
     Earlier checks stop the wrong candidates: in the warm-up of a one-cycle schedule every
-    candidate is still near chance. Measured on the digits benchmark (tests/bench_search.py, 3
+    candidate is still near chance. Measured on the digits benchmark (benchmarks/bench_search.py, 3
     seeds), a first check after epoch 2 keeping a third missed the plain loop's best on one seed;
     halfway keeping half reached it on all three, in 9–24% of the plain loop's time.
     """

@@ -1,7 +1,7 @@
 """Search benchmarks, measured side by side in one run (a script; pytest does not collect it).
 
-    python tests/bench_search.py            # both parts
-    python tests/bench_search.py overhead   # only the loop-overhead part (--epochs N: a proxy of N epochs)
+    python benchmarks/bench_search.py            # both parts
+    python benchmarks/bench_search.py overhead   # only the loop-overhead part (--epochs N: a proxy of N epochs)
 
 1. Overhead: on a demo run, the share of wall time that is not training (sampling, storage,
    budget checks, logging, the report), on the default SQLite store and on the journal file

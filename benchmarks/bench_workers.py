@@ -1,6 +1,6 @@
 """Two workers against one: trained candidates per hour, side by side in one run.
 
-Run: python tests/bench_workers.py [--minutes M] [--rounds R] [--storage sqlite|journal] [--space FILE]
+Run: python benchmarks/bench_workers.py [--minutes M] [--rounds R] [--storage sqlite|journal] [--space FILE]
 
 Each round runs the same time-limited search (demo data, one epoch on a share of it, small
 candidates that all fit) with ``--workers 1`` and with ``--workers 2``, alternating so load from other
@@ -22,7 +22,7 @@ import time
 from pathlib import Path
 
 sys.path.insert(0, str(Path(__file__).resolve().parents[1]))  # run from a checkout without installing
-sys.path.insert(0, str(Path(__file__).resolve().parent))
+sys.path.insert(0, str(Path(__file__).resolve().parents[1] / "tests"))  # the tests' helpers
 
 from conftest import TINY_SPACE  # noqa: E402
 

@@ -11,7 +11,7 @@ import pytest
 
 import searcher.study.search_run as search_run
 
-BENCHES = sorted((Path(__file__).parent).glob("bench_*.py"))
+BENCHES = sorted((Path(__file__).resolve().parents[1] / "benchmarks").glob("bench_*.py"))
 
 
 @pytest.mark.slow
@@ -24,6 +24,6 @@ def test_bench_script_loads_and_explains_itself(script: Path) -> None:
 
 def test_the_search_benchmark_times_functions_that_exist() -> None:
     """bench_search.py times the search by wrapping these two names of searcher.study.search_run."""
-    text = (Path(__file__).parent / "bench_search.py").read_text(encoding="utf-8")
+    text = (Path(__file__).resolve().parents[1] / "benchmarks" / "bench_search.py").read_text(encoding="utf-8")
     for name in ("run_phases", "finish"):
         assert f"runner.{name}" in text and callable(getattr(search_run, name))

@@ -1,7 +1,7 @@
 """Confirmation benchmarks, measured side by side in one run (a script; pytest does not collect it).
 
-    python tests/bench_confirm.py time      # README's first command: search + export, and how the time splits
-    python tests/bench_confirm.py proxy     # proxy quality: Spearman of the default and a longer proxy, demo and digits
+    python benchmarks/bench_confirm.py time      # README's first command: search + export, and how the time splits
+    python benchmarks/bench_confirm.py proxy     # proxy quality: Spearman of the default and a longer proxy, demo and digits
 
 ``proxy`` runs one search per data set with confirmation on, then retrains every confirmed candidate
 with a longer proxy (twice the epochs, the same schedule otherwise) and ranks both proxies against

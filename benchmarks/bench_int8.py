@@ -1,6 +1,6 @@
 """int8 speed and calibration figures, measured side by side in one run.
 
-Run: python tests/bench_int8.py [speed|calibration] [--candidates N]
+Run: python benchmarks/bench_int8.py [speed|calibration] [--candidates N]
 
 speed (default): for N fitting candidates of examples/stamp_inspection.toml on the demo data,
   * the proxy training's wall time and the int8 check's (searcher.ship.int8_check.int8_accuracy on
@@ -27,6 +27,7 @@ os.environ.setdefault("OMP_NUM_THREADS", "1")  # BLAS and torch on one thread, b
 os.environ.setdefault("OPENBLAS_NUM_THREADS", "1")
 ROOT = Path(__file__).resolve().parents[1]
 sys.path.insert(0, str(ROOT))  # run from a checkout without installing
+sys.path.insert(0, str(ROOT / "tests"))  # the tests' helpers
 
 import numpy as np  # noqa: E402
 import torch  # noqa: E402

@@ -1,6 +1,6 @@
 """Proxy trainer speed against a plain DataLoader training loop, side by side in one run.
 
-Run: python tests/bench_train.py [--threads N] [--rounds R]
+Run: python benchmarks/bench_train.py [--threads N] [--rounds R]
 
 Each round trains every candidate with the proxy trainer (channels-last, and NCHW to show
 what the layout alone gives) and with a hand-written loop over a DataLoader, interleaved so
@@ -26,6 +26,7 @@ from torch.utils.data import DataLoader, TensorDataset
 from torch.utils.flop_counter import FlopCounterMode
 
 sys.path.insert(0, str(Path(__file__).resolve().parents[1]))  # run from a checkout without installing
+sys.path.insert(0, str(Path(__file__).resolve().parents[1] / "tests"))  # the tests' helpers
 
 from test_train import small_net  # noqa: E402  (this folder is on the path when run as a script)
 

@@ -1,6 +1,6 @@
 """Data held as bytes and augmentation, measured side by side in one run.
 
-Run: python tests/bench_data.py [memory|decode|convert|augment|accuracy|all] [--images N] [--folder DIR]
+Run: python benchmarks/bench_data.py [memory|decode|convert|augment|accuracy|all] [--images N] [--folder DIR]
 
 - memory: peak memory and load time for N generated RGB 64×64 PNGs (default 20,000), the old way
   (load_dataset of searcher/data/load.py at commit ddd7eb6, taken from git: serial decode into float32
@@ -36,6 +36,7 @@ import numpy as np
 
 ROOT = Path(__file__).resolve().parents[1]
 sys.path.insert(0, str(ROOT))  # run from a checkout without installing
+sys.path.insert(0, str(ROOT / "tests"))  # the tests' helpers
 
 from searcher.data import folder as folder_module  # noqa: E402
 from searcher.data.layout import concatenate  # noqa: E402

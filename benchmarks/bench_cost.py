@@ -1,4 +1,4 @@
-"""Benchmark of the cost layer (a script, not collected by pytest): ``python tests/bench_cost.py``.
+"""Benchmark of the cost layer (a script, not collected by pytest): ``python benchmarks/bench_cost.py``.
 
 (a) The analytic gate (``cost`` plus the cap check) against what it replaces: building the torch
     module, counting its parameters and counting FLOPs with ``FlopCounterMode`` on a batch-1

@@ -1,6 +1,6 @@
 """Storage overhead per candidate: SQLite, the journal file and PostgreSQL, side by side in one run.
 
-Run: python tests/bench_storage.py [--rejected N] [--trained N] [--rounds R]
+Run: python benchmarks/bench_storage.py [--rejected N] [--trained N] [--rounds R]
 
 Through the real worker path (``Worker.stop_reason`` then ``Worker.step``: ask, claim, suggest,
 budget gate, constraint, record, tell), on the mcu space:
@@ -32,7 +32,7 @@ from pathlib import Path
 
 HERE = Path(__file__).resolve().parent
 sys.path.insert(0, str(HERE.parent))  # run from a checkout without installing
-sys.path.insert(0, str(HERE))
+sys.path.insert(0, str(HERE.parent / "tests"))  # the tests' helpers
 
 import numpy as np  # noqa: E402
 import optuna  # noqa: E402
