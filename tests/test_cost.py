@@ -11,7 +11,7 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 
 from searcher.core.arch import Conv, Head, Stage, parse_arch
-from searcher.core.cost import conv_output_size, cost
+from searcher.core.cost import cost
 from searcher.errors import SearcherError
 
 # VGG-16, configuration D: 13 3x3 'same' convs in five blocks, each block closed by 2x2 max
@@ -22,33 +22,6 @@ VGG16 = ("3x224x224_c64k3-c64k3-m2_c128k3-c128k3-m2_c256k3-c256k3-c256k3-m2_c512
 # The dense LeNet-5 variant: 6 and 16 5x5 valid convs, 2x2 average pooling, dense 120-84-10, tanh
 # (common practice; LeCun et al. 1998 wire C3 through a partial connection table, ~60k parameters).
 LENET5 = "1x32x32_c6k5v-a2_c16k5v-a2_flat-d120-d84-o10_tanh"
-
-
-@settings(max_examples=150, deadline=None)
-@given(size=st.integers(1, 40), kernel=st.integers(1, 9), stride=st.integers(1, 4), data=st.data())
-def test_conv_output_size_equals_torch_conv(size, kernel, stride, data):
-    padding = data.draw(st.integers(0, kernel))
-    expected = conv_output_size(size, kernel, stride, padding)
-    x, w = torch.zeros(1, 1, size, size + 1), torch.zeros(1, 1, kernel, kernel)
-    if expected < 1:
-        with pytest.raises(RuntimeError):  # torch refuses a kernel larger than the padded input
-            F.conv2d(x, w, stride=stride, padding=padding)
-        return
-    # torch.nn.functional.conv2d is the reference for the output length along each axis
-    out = F.conv2d(x, w, stride=stride, padding=padding)
-    assert tuple(out.shape[2:]) == (expected, conv_output_size(size + 1, kernel, stride, padding))
-
-
-@settings(max_examples=150, deadline=None)
-@given(size=st.integers(1, 40), window=st.integers(1, 6), stride=st.integers(1, 6), kind=st.sampled_from(["max", "avg"]))
-def test_pool_output_size_equals_torch_pool(size, window, stride, kind):
-    expected = conv_output_size(size, window, stride, 0)
-    if expected < 1:
-        return  # such pools are refused by cost() (see test_shrinking_below_one_pixel_is_refused)
-    pool = F.max_pool2d if kind == "max" else F.avg_pool2d
-    # torch's pooling in floor mode (ceil_mode=False, its default) is the reference
-    out = pool(torch.zeros(1, 2, size, size), window, stride)
-    assert out.shape[2] == expected
 
 
 def test_vgg16_configuration_d():

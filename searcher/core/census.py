@@ -18,7 +18,8 @@ import numpy as np
 
 from searcher.core.arch import Arch
 from searcher.core.budget import Budget
-from searcher.core.cost import PRECISION_BYTES, conv_macs, conv_output_size, conv_params, dense_params, weight_bytes
+from searcher.core.cost import PRECISION_BYTES, conv_macs, conv_params, dense_params, weight_bytes
+from searcher.core.plan import padding_of, window_output
 from searcher.core.space import Space
 
 Batch = dict[str, np.ndarray]
@@ -99,10 +100,10 @@ def batch_costs(space: Space, batch: Batch, budget: Budget, classes: int | None 
         in_stage = depth > i
         width = lookup[i][first]
         kernel = batch[f"kernel_{i + 1}"].astype(np.int64)
-        pad = kernel // 2 if space.padding == "same" else 0
+        pad = padding_of(kernel, space.padding)
         for j in range(space.stage_convs(i)[1]):
             on = in_stage & (batch[f"convs_{i + 1}"].astype(np.int64) > j)
-            h2, w2 = conv_output_size(h, kernel, space.stride, pad), conv_output_size(w, kernel, space.stride, pad)
+            h2, w2 = window_output(h, kernel, space.stride, pad), window_output(w, kernel, space.stride, pad)
             wt, bias = conv_params(c, width, kernel, ~bn)
             weights += np.where(on, wt, 0)
             biases += np.where(on, bias + 2 * width * bn, 0)
@@ -111,8 +112,8 @@ def batch_costs(space: Space, batch: Batch, budget: Budget, classes: int | None 
             peak = np.maximum(peak, np.where(on, c * h * w + width * h2 * w2, 0))
             c, h, w = np.where(on, width, c), np.where(on, h2, h), np.where(on, w2, w)
         pooled = in_stage & (batch[f"pool_{i + 1}"] != "none")
-        h2 = conv_output_size(h, space.pool_window, space.pool_stride, 0)
-        w2 = conv_output_size(w, space.pool_window, space.pool_stride, 0)
+        h2 = window_output(h, space.pool_window, space.pool_stride, 0)
+        w2 = window_output(w, space.pool_window, space.pool_stride, 0)
         peak = np.maximum(peak, np.where(pooled, c * h * w + c * h2 * w2, 0))
         h, w = np.where(pooled, h2, h), np.where(pooled, w2, w)
         last_width = np.where(in_stage, width, last_width)

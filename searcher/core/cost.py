@@ -26,6 +26,7 @@ import math
 from dataclasses import dataclass
 
 from searcher.core.arch import Arch
+from searcher.core.plan import lower
 from searcher.errors import SearcherError, one_of, shown
 
 PRECISION_BYTES = {"fp32": 4, "fp16": 2, "int8": 1}
@@ -34,11 +35,6 @@ INT8_CHANNEL_BYTES = 8  # per conv or dense output channel at int8: int32 bias +
 
 # The formulas below take plain ints or numpy arrays alike: the census applies them to a
 # million candidates at once.
-
-
-def conv_output_size(size: int, kernel: int, stride: int, padding: int) -> int:
-    """Output length along one axis of a conv or pool window (floor mode)."""
-    return (size + 2 * padding - kernel) // stride + 1
 
 
 def conv_params(c_in: int, c_out: int, kernel: int, bias: bool) -> tuple[int, int]:
@@ -152,7 +148,7 @@ def check_precision(precision: object, key: str = "precision") -> str:
 
 
 def cost(arch: Arch, activation_precision: str = "fp32") -> Cost:
-    """Walk the architecture layer by layer and count everything exactly.
+    """Count everything exactly, layer by layer of the lowered plan (:func:`searcher.core.plan.lower`).
 
     >>> from searcher.core.arch import parse_arch
     >>> cost(parse_arch("1x32x32_c6k5v-a2_c16k5v-a2_flat-d120-d84-o10_tanh")).params
@@ -160,39 +156,20 @@ def cost(arch: Arch, activation_precision: str = "fp32") -> Cost:
     """
     check_precision(activation_precision, "activation_precision")
     rows: list[LayerCost] = []
-    c, h, w = arch.input_shape
-    for i, stage in enumerate(arch.stages, start=1):
-        for j, conv in enumerate(stage.convs, start=1):
-            pad = conv.kernel // 2 if conv.padding == "same" else 0
-            h2 = conv_output_size(h, conv.kernel, conv.stride, pad)
-            w2 = conv_output_size(w, conv.kernel, conv.stride, pad)
-            if h2 < 1 or w2 < 1:
-                raise SearcherError(f"{arch}: stage {i} conv {j} shrinks a {h}x{w} map below 1x1")
-            weights, biases = conv_params(c, conv.out_channels, conv.kernel, bias=not arch.batch_norm)
-            rows.append(LayerCost(f"s{i}_conv{j}", "conv", (conv.out_channels, h2, w2), weights, biases, 0,
-                                  conv_macs(c, conv.out_channels, conv.kernel, h2, w2),
-                                  c * h * w + conv.out_channels * h2 * w2))
-            c, h, w = conv.out_channels, h2, w2
-            if arch.batch_norm:
-                rows.append(LayerCost(f"s{i}_bn{j}", "batchnorm", (c, h, w), 0, 2 * c, 2 * c, 0, 0))
-        if stage.pool:
-            p = stage.pool
-            h2, w2 = conv_output_size(h, p.window, p.stride, 0), conv_output_size(w, p.window, p.stride, 0)
-            if h2 < 1 or w2 < 1:
-                raise SearcherError(f"{arch}: stage {i} pool shrinks a {h}x{w} map below 1x1")
-            rows.append(LayerCost(f"s{i}_pool", f"{p.kind}pool", (c, h2, w2), 0, 0, 0, 0, c * h * w + c * h2 * w2))
-            h, w = h2, w2
-    if arch.head.features == "gap":
-        rows.append(LayerCost("gap", "gap", (c,), 0, 0, 0, 0, c * h * w + c))
-        features = c
-    else:
-        features = c * h * w
-        rows.append(LayerCost("flatten", "flatten", (features,), 0, 0, 0, 0, 0))
-    widths = [*arch.head.hidden, arch.head.classes]
-    for k, width in enumerate(widths, start=1):
-        name = "out" if k == len(widths) else f"fc{k}"
-        rows.append(LayerCost(name, "dense", (width,), *dense_params(features, width), 0, features * width, features + width))
-        features = width
+    for layer in lower(arch):
+        c_in, c_out = layer.input[0], layer.channels
+        moved = math.prod(layer.input) + math.prod(layer.output)  # input and output alive together
+        if layer.kind == "conv":
+            weights, biases = conv_params(c_in, c_out, layer.kernel, bias=layer.bias)
+            rows.append(LayerCost(layer.name, "conv", layer.output, weights, biases, 0,
+                                  conv_macs(c_in, c_out, layer.kernel, *layer.output[1:]), moved))
+            if layer.batch_norm:
+                rows.append(LayerCost(layer.batch_norm, "batchnorm", layer.output, 0, 2 * c_out, 2 * c_out, 0, 0))
+        elif layer.kind == "dense":
+            rows.append(LayerCost(layer.name, "dense", layer.output, *dense_params(c_in, c_out), 0, c_in * c_out, moved))
+        else:  # pools and global averaging copy; flattening is a view
+            rows.append(LayerCost(layer.name, layer.kind, layer.output, 0, 0, 0, 0,
+                                  0 if layer.kind == "flatten" else moved))
     return Cost(tuple(rows), activation_precision)
 
 

@@ -9,7 +9,7 @@ from typing import Any, Callable
 
 from searcher.core.arch import ACTIVATIONS, FEATURES, PADDINGS
 from searcher.core.budget import Budget
-from searcher.core.cost import conv_output_size
+from searcher.core.plan import padding_of, window_output
 from searcher.core.space import POOL_CHOICES, SECTIONS, Space
 from searcher.core.train_settings import TrainSettings
 from searcher.errors import SearcherError, check_int, check_number, is_int, one_of, shown
@@ -242,16 +242,16 @@ def _check_shrink(space: Space) -> None:
     smallest = (min(r[0] for r in space.resolutions), min(r[1] for r in space.resolutions))
     h, w = smallest
     kernel = max(space.kernels)
-    pad = kernel // 2 if space.padding == "same" else 0
+    pad = padding_of(kernel, space.padding)
     pools = any(p != "none" for p in space.pools)
     for i in range(space.stage_count[1]):
         n = space.stage_convs(i)[1]
         start = (h, w)
         for _ in range(n):
-            h, w = (conv_output_size(v, kernel, space.stride, pad) for v in (h, w))
+            h, w = (window_output(v, kernel, space.stride, pad) for v in (h, w))
         convs_end = (h, w)
         if pools and min(h, w) >= 1:
-            h, w = (conv_output_size(v, space.pool_window, space.pool_stride, 0) for v in (h, w))
+            h, w = (window_output(v, space.pool_window, space.pool_stride, 0) for v in (h, w))
         if min(h, w) >= 1:
             continue
         convs = f"{n} {space.padding} {kernel}x{kernel} conv(s) at stride {space.stride}"

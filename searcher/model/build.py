@@ -1,4 +1,4 @@
-"""Architecture -> torch.nn.Module, layer for layer as :mod:`searcher.core.cost` counts it."""
+"""Architecture -> torch.nn.Module: one module per layer of the lowered plan, named as the plan and the cost rows."""
 
 from __future__ import annotations
 
@@ -8,7 +8,7 @@ import torch  # noqa: F401  (used by the docstring example)
 from torch import nn
 
 from searcher.core.arch import Arch
-from searcher.core.cost import cost
+from searcher.core.plan import lower
 
 ACTIVATION_MODULES = {
     "relu": nn.ReLU,
@@ -20,49 +20,31 @@ ACTIVATION_MODULES = {
 
 
 def build(arch: Arch) -> nn.Sequential:
-    """Build the network; module names match the rows of ``cost(arch).layers``.
+    """Build the network; module names match the plan (:func:`searcher.core.plan.lower`) and the cost rows.
 
     >>> from searcher.core.arch import parse_arch
     >>> model = build(parse_arch("1x28x28_c8k3-m2_gap-o10_relu"))
     >>> model(torch.zeros(1, 1, 28, 28)).shape
     torch.Size([1, 10])
     """
-    act = ACTIVATION_MODULES[arch.activation]
     layers: OrderedDict[str, nn.Module] = OrderedDict()
-    channels = arch.input_shape[0]
-    for i, stage in enumerate(arch.stages, start=1):
-        for j, conv in enumerate(stage.convs, start=1):
-            padding = conv.kernel // 2 if conv.padding == "same" else 0
-            layers[f"s{i}_conv{j}"] = nn.Conv2d(
-                channels, conv.out_channels, conv.kernel, conv.stride, padding, bias=not arch.batch_norm
-            )
-            if arch.batch_norm:
-                layers[f"s{i}_bn{j}"] = nn.BatchNorm2d(conv.out_channels)
-            layers[f"s{i}_act{j}"] = act()
-            channels = conv.out_channels
-        if stage.pool:
-            pool = nn.MaxPool2d if stage.pool.kind == "max" else nn.AvgPool2d
-            layers[f"s{i}_pool"] = pool(stage.pool.window, stage.pool.stride)
-    if arch.head.features == "gap":
-        layers["gap"] = nn.Sequential(nn.AdaptiveAvgPool2d(1), nn.Flatten())
-        features = channels
-    else:
-        layers["flatten"] = nn.Flatten()
-        _, h, w = _feature_map(arch)
-        features = channels * h * w
-    if arch.head.dropout and not arch.head.hidden:
-        layers["drop"] = nn.Dropout(arch.head.dropout)
-    for k, width in enumerate(arch.head.hidden, start=1):
-        layers[f"fc{k}"] = nn.Linear(features, width)
-        layers[f"fc{k}_act"] = act()
-        if arch.head.dropout:
-            layers[f"fc{k}_drop"] = nn.Dropout(arch.head.dropout)
-        features = width
-    layers["out"] = nn.Linear(features, arch.head.classes)
+    for layer in lower(arch):
+        if layer.kind == "conv":
+            layers[layer.name] = nn.Conv2d(layer.input[0], layer.channels, layer.kernel, layer.stride, layer.padding,
+                                           bias=layer.bias)
+            if layer.batch_norm:
+                layers[layer.batch_norm] = nn.BatchNorm2d(layer.channels)
+        elif layer.kind == "dense":
+            layers[layer.name] = nn.Linear(layer.input[0], layer.channels)
+        elif layer.kind == "gap":
+            layers[layer.name] = nn.Sequential(nn.AdaptiveAvgPool2d(1), nn.Flatten())
+        elif layer.kind == "flatten":
+            layers[layer.name] = nn.Flatten()
+        else:
+            pool = nn.MaxPool2d if layer.kind == "maxpool" else nn.AvgPool2d
+            layers[layer.name] = pool(layer.kernel, layer.stride)
+        if layer.activation:
+            layers[layer.activation_name] = ACTIVATION_MODULES[layer.activation]()
+        if layer.dropout:
+            layers[layer.dropout_name] = nn.Dropout(layer.dropout)
     return nn.Sequential(layers)
-
-
-def _feature_map(arch: Arch) -> tuple[int, ...]:
-    """Shape of the last stage's output, from the analytic walk (one source of truth)."""
-    last_spatial = [layer for layer in cost(arch).layers if len(layer.output_shape) == 3]
-    return last_spatial[-1].output_shape if last_spatial else arch.input_shape

@@ -17,6 +17,8 @@ from dataclasses import dataclass
 
 import numpy as np
 
+from searcher.core.arch import parse_arch
+from searcher.core.plan import lower
 from searcher.ship.quantize import IntegerNet, IntLayer
 
 PREFIX = "model_"  # of every external symbol the file defines
@@ -213,21 +215,10 @@ def _array(ctype: str, name: str, values: np.ndarray) -> str:
 
 
 def _shape(net: IntegerNet) -> list[tuple[int, ...]]:
-    """Shape of every layer's output, (C, H, W) or (features,), starting with the input."""
-    shapes: list[tuple[int, ...]] = [tuple(net.input_shape)]
-    for layer in net.layers:
-        c, *hw = shapes[-1]
-        if layer.kind == "conv":
-            k = layer.weights.shape[-1]
-            size = [(s + 2 * layer.padding - k) // layer.stride + 1 for s in hw]
-            shapes.append((layer.channels, *size))
-        elif layer.kind in ("maxpool", "avgpool"):
-            shapes.append((c, *[(s - layer.window) // layer.stride + 1 for s in hw]))
-        elif layer.kind == "gap":
-            shapes.append((c,))
-        else:
-            shapes.append((layer.channels,))
-    return shapes
+    """Shape of every layer's output, (C, H, W) or (features,), starting with the input (from the plan;
+    flattening is a view and has no layer here)."""
+    layers = [layer for layer in lower(parse_arch(net.arch)) if layer.kind != "flatten"]
+    return [layers[0].input, *(layer.output for layer in layers)]
 
 
 def _describe(layer: IntLayer, before: tuple[int, ...], after: tuple[int, ...]) -> str:

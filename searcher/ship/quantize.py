@@ -37,6 +37,7 @@ import numpy as np
 from numpy.lib.stride_tricks import sliding_window_view
 
 from searcher.core.arch import Arch
+from searcher.core.plan import lower
 from searcher.errors import SearcherError, one_of
 
 BN_EPS = 1e-5  # torch.nn.BatchNorm2d's default, which searcher.model.build uses
@@ -178,34 +179,23 @@ def fold(arch: Arch, state: Mapping[str, np.ndarray]) -> list[FoldedLayer]:
         return value
 
     layers: list[FoldedLayer] = []
-    channels, h, w = arch.input_shape
-    for i, stage in enumerate(arch.stages, start=1):
-        for j, conv in enumerate(stage.convs, start=1):
-            name = f"s{i}_conv{j}"
-            weight = get(f"{name}.weight", (conv.out_channels, channels, conv.kernel, conv.kernel))
-            bias = np.zeros(conv.out_channels) if arch.batch_norm else get(f"{name}.bias", (conv.out_channels,))
-            if arch.batch_norm:
-                gamma, beta, mean, var = (get(f"s{i}_bn{j}.{k}", (conv.out_channels,))
-                                          for k in ("weight", "bias", "running_mean", "running_var"))
-                factor = gamma / np.sqrt(var + BN_EPS)
-                weight, bias = weight * factor[:, None, None, None], (bias - mean) * factor + beta
-            padding = conv.kernel // 2 if conv.padding == "same" else 0
-            layers.append(FoldedLayer(name, "conv", weight, bias, conv.stride, padding, activation=arch.activation))
-            channels = conv.out_channels
-        if stage.pool:
-            layers.append(FoldedLayer(f"s{i}_pool", f"{stage.pool.kind}pool", stride=stage.pool.stride,
-                                      window=stage.pool.window))
-    if arch.head.features == "gap":
-        layers.append(FoldedLayer("gap", "gap"))
-    widths = [*arch.head.hidden, arch.head.classes]
-    for k, width in enumerate(widths, start=1):
-        name = "out" if k == len(widths) else f"fc{k}"
-        weight = get(f"{name}.weight")
-        if weight.ndim != 2 or weight.shape[0] != width:
-            raise SearcherError(f"weights {name + '.weight'!r} have shape {weight.shape}, architecture {arch} needs "
-                                f"{width} rows", key=f"{name}.weight")
-        layers.append(FoldedLayer(name, "dense", weight, get(f"{name}.bias", (width,)),
-                                  activation=None if name == "out" else arch.activation))
+    for layer in lower(arch):
+        if layer.kind == "flatten":
+            continue
+        if not layer.affine:
+            layers.append(FoldedLayer(layer.name, layer.kind, stride=layer.stride, window=layer.kernel))
+            continue
+        c_out, c_in = layer.channels, layer.input[0]
+        shape = (c_out, c_in, layer.kernel, layer.kernel) if layer.kind == "conv" else (c_out, c_in)
+        weight = get(f"{layer.name}.weight", shape)
+        bias = get(f"{layer.name}.bias", (c_out,)) if layer.bias else np.zeros(c_out)
+        if layer.batch_norm:
+            gamma, beta, mean, var = (get(f"{layer.batch_norm}.{k}", (c_out,))
+                                      for k in ("weight", "bias", "running_mean", "running_var"))
+            factor = gamma / np.sqrt(var + BN_EPS)
+            weight, bias = weight * factor[:, None, None, None], (bias - mean) * factor + beta
+        layers.append(FoldedLayer(layer.name, layer.kind, weight, bias, layer.stride, layer.padding,
+                                  activation=layer.activation))
     return layers
 
 
