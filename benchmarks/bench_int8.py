@@ -3,7 +3,7 @@
 Run: python benchmarks/bench_int8.py [speed|calibration] [--candidates N]
 
 speed (default): for N fitting candidates of examples/stamp_inspection.toml on the demo data,
-  * the proxy training's wall time and the int8 check's (searcher.ship.int8_check.int8_accuracy on
+  * the proxy training's wall time and the int8 check's (searcher.int8.check.int8_accuracy on
     the validation split, calibration included), fast engine and reference engine, as a share of it
     (goal: ≤ 10% with the engine the search would use);
   * images per second on the test split: the integer reference (int64 engine and fast engine), the
@@ -36,10 +36,11 @@ from int8kit import demo_data, digits_data, trained  # noqa: E402  (this folder 
 from searcher.core.cost import cost  # noqa: E402
 from searcher.core.space_file import load_space  # noqa: E402
 from searcher.model.train import TrainSettings, evaluate  # noqa: E402
-from searcher.ship import c_build, int8_reference, onnx_files  # noqa: E402
+from searcher.int8 import reference as int8_reference
+from searcher.ship import c_build, onnx_files  # noqa: E402
 from searcher.ship.c_source import generate  # noqa: E402
-from searcher.ship.int8_check import int8_accuracy, quantized, unit_images  # noqa: E402
-from searcher.ship.quantize import QuantSettings, to_pixels  # noqa: E402
+from searcher.int8.check import int8_accuracy, quantized, unit_images  # noqa: E402
+from searcher.int8.quantize import QuantSettings, to_pixels  # noqa: E402
 
 CALIBRATIONS = {"minmax": QuantSettings(), "p99.99": QuantSettings(calibration="percentile", percentile=99.99),
                 "p99.9": QuantSettings(calibration="percentile", percentile=99.9)}

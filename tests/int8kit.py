@@ -18,7 +18,7 @@ from typing import Any
 import numpy as np
 import torch
 
-from searcher.ship.int8_check import unit_images
+from searcher.int8.check import unit_images
 from searcher.core.arch import Arch
 from searcher.data.load import Dataset, Split, load_dataset, resize_images, split_indices
 from searcher.model.build import build

@@ -27,11 +27,12 @@ from searcher.core.cost import cost
 from searcher.errors import SearcherError
 from searcher.model.build import build
 from searcher.model.train import TrainSettings, evaluate, reset_weights
-from searcher.ship import c_build, deploy_files, int8_reference, onnx_files
+from searcher.int8 import reference as int8_reference
+from searcher.ship import c_build, deploy_files, onnx_files
 from searcher.ship.c_source import generate
-from searcher.ship.int8_check import int8_accuracy, quantized, state_arrays, unit_images
+from searcher.int8.check import int8_accuracy, quantized, state_arrays, unit_images
 from searcher.ship.model_card import int8_section
-from searcher.ship.quantize import QuantSettings, float_forward, fold, quantize, to_pixels
+from searcher.int8.quantize import QuantSettings, float_forward, fold, quantize, to_pixels
 
 from conftest import SHIPPED_SPACES
 from int8kit import DEMO_SHAPE, demo_data, digits_data, torch_ptq_accuracy, trained

@@ -5,7 +5,7 @@ every conv, pool, global average, flatten and dense layer with its input and out
 or window, stride, padding, the activation after it and whether a batch norm follows (and folds
 into it at inference). Everything downstream reads this list rather than walking the
 architecture again: the cost rows (:mod:`searcher.core.cost`), the torch modules
-(:mod:`searcher.model.build`), the integer layers (:mod:`searcher.ship.quantize`), the C file
+(:mod:`searcher.model.build`), the integer layers (:mod:`searcher.int8.quantize`), the C file
 and the latency model. The padding rule and the feature-map arithmetic live here only; both take
 ints or numpy arrays, so the census applies them to a million candidates at once.
 """

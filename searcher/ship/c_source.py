@@ -6,7 +6,7 @@ arrays (the linker puts them in flash), activation tables 256-byte ``const int8_
 every activation lives in one static arena. The layers run one after the other in the arena, the
 input of one at one end and its output at the other, so the arena is exactly the largest
 (input + output) of any layer: the peak activation bytes that ``searcher.core.cost`` computes at
-int8. The arithmetic is that of :mod:`searcher.ship.int8_reference`, line for line.
+int8. The arithmetic is that of :mod:`searcher.int8.reference`, line for line.
 """
 
 from __future__ import annotations
@@ -19,7 +19,7 @@ import numpy as np
 
 from searcher.core.arch import parse_arch
 from searcher.core.plan import lower
-from searcher.ship.quantize import IntegerNet, IntLayer
+from searcher.int8.quantize import IntegerNet, IntLayer
 
 PREFIX = "model_"  # of every external symbol the file defines
 PER_LINE = 20  # array values per source line

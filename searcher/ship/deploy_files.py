@@ -23,11 +23,12 @@ import onnx
 from searcher.core.arch import Arch
 from searcher.core.cost import cost
 from searcher.model.metrics import scores
-from searcher.ship import c_build, int8_reference, onnx_files
+from searcher.int8 import reference as int8_reference
+from searcher.ship import c_build, onnx_files
 from searcher.ship.c_build import Footprint
 from searcher.ship.c_source import CSource, generate
-from searcher.ship.int8_check import quantized, unit_images
-from searcher.ship.quantize import IntegerNet, QuantSettings, to_pixels
+from searcher.int8.check import quantized, unit_images
+from searcher.int8.quantize import IntegerNet, QuantSettings, to_pixels
 
 log = logging.getLogger(__name__)
 

@@ -187,7 +187,7 @@ Post-training quantization (Jacob et al., CVPR 2018; per-channel weights as in K
 batch norm folded into the convs, int8 weights with a scale per output channel, int8 activations on
 one grid per tensor ({net.settings.calibration} ranges over {net.settings.images} training images), int32 biases,
 fixed-point requantization, {arch.activation} as {'a 256-entry table' if code.tables else 'a clamp'}. The integer reference
-(`searcher.ship.int8_reference`) is the golden model: `model_int8.onnx` agrees with its top-1 on
+(`searcher.int8.reference`) is the golden model: `model_int8.onnx` agrees with its top-1 on
 {report.onnx_int8_top1_agreement:.2%} of the held-out images in onnxruntime run as written;
 `model.onnx` is within {report.onnx_fp32_max_difference:.1e} of the torch scores.
 

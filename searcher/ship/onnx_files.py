@@ -7,7 +7,7 @@ exporter, which needs only the ``onnx`` package (the newer default exporter also
 ``onnxscript``, one more dependency for the same plain conv nets). It warns that it is deprecated;
 when it goes, the ``dynamo=True`` path takes its place here.
 
-``model_int8.onnx`` is built node by node from an :class:`~searcher.ship.quantize.IntegerNet` in
+``model_int8.onnx`` is built node by node from an :class:`~searcher.int8.quantize.IntegerNet` in
 the QuantizeLinear/DequantizeLinear form: every tensor passes through QuantizeLinear and
 DequantizeLinear with the scale and zero point the integer reference uses; weights are stored as
 int8 with a scale per output channel, biases as int32. Computed as written (float between the
@@ -35,7 +35,7 @@ import onnxruntime
 from onnx import TensorProto, helper, numpy_helper
 
 from searcher.core.arch import Arch
-from searcher.ship.quantize import Grid, IntegerNet, IntLayer
+from searcher.int8.quantize import Grid, IntegerNet, IntLayer
 
 OPSET = 17  # per-axis QuantizeLinear/DequantizeLinear need 13; HardSwish 14
 INPUT, OUTPUT = "images", "scores"  # tensor names in both files

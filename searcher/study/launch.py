@@ -19,7 +19,7 @@ from searcher.core.arch import Arch
 from searcher.core.train_settings import TrainSettings
 from searcher.model.build import build
 from searcher.model.train import TrainProgress, TrainResult, train_candidate
-from searcher.ship.int8_check import int8_accuracy
+from searcher.int8.check import int8_accuracy
 from searcher.results.confirmed import ConfirmSettings, cost_columns, select
 from searcher.results.records import METRICS, REJECTED, TRAINED
 from searcher.study.confirm import ConfirmPlan, Confirmer, ConfirmTally, full_schedule, open_confirm_study, plan
@@ -38,7 +38,7 @@ class TorchTrainer:
     """The default :class:`searcher.study.worker.Trainer`: build the candidate and train it on the run's data.
 
     With ``int8``, a candidate that finished its schedule is also quantized and scored in integers
-    on the validation split (:func:`searcher.ship.int8_check.int8_accuracy`), so a budget in int8
+    on the validation split (:func:`searcher.int8.check.int8_accuracy`), so a budget in int8
     sees the accuracy of the model that will ship.
     """
 

@@ -23,7 +23,7 @@ inference: A whitepaper" (2018):
 * max pooling keeps the grid; average pooling and global averaging divide the integer sum,
   rounding half away from zero, and keep the grid; dense layers are a conv on a 1×1 map.
 
-:mod:`searcher.ship.int8_reference` runs the result; it is the golden model that the ONNX and C
+:mod:`searcher.int8.reference` runs the result; it is the golden model that the ONNX and C
 files are checked against.
 """
 

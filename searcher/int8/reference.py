@@ -1,4 +1,4 @@
-"""The integer reference: runs an :class:`~searcher.ship.quantize.IntegerNet` on uint8 pixels, in integers.
+"""The integer reference: runs an :class:`~searcher.int8.quantize.IntegerNet` on uint8 pixels, in integers.
 
 This is the golden model. The C file must give exactly its int8 scores, the int8 ONNX file its top-1.
 Every step is integer arithmetic (numpy int64), written out as the C code does it:
@@ -17,7 +17,7 @@ from __future__ import annotations
 
 import numpy as np
 
-from searcher.ship.quantize import IntegerNet, IntLayer, affine, pool
+from searcher.int8.quantize import IntegerNet, IntLayer, affine, pool
 
 BATCH = 256  # images per pass; bounds memory
 

@@ -1,6 +1,6 @@
 """int8 accuracy of a trained candidate: the call a search makes per candidate when weights are int8.
 
-    from searcher.ship.int8_check import int8_accuracy
+    from searcher.int8.check import int8_accuracy
     accuracy = int8_accuracy(model, arch, data.train.images, data.val.images, data.val.labels)
 
 It quantizes the trained model as export does (calibrating on the first ``settings.images``
@@ -16,8 +16,8 @@ from typing import Any
 import numpy as np
 
 from searcher.core.arch import Arch
-from searcher.ship import int8_reference
-from searcher.ship.quantize import IntegerNet, QuantSettings, quantize, to_pixels
+from searcher.int8 import reference as int8_reference
+from searcher.int8.quantize import IntegerNet, QuantSettings, quantize, to_pixels
 
 
 def state_arrays(model: Any) -> dict[str, np.ndarray]:
