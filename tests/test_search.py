@@ -133,6 +133,12 @@ def test_export_leaves_a_verified_int8_model(digits_run):
         compiled, analytic = metrics["int8"]["compiled"], searcher.cost(exported.arch, "int8")
         assert compiled["arena_bytes"] == analytic.peak_activation_bytes
         assert compiled["constant_bytes"] == analytic.weight_bytes("int8") + sum(metrics["int8"]["tables"].values())
+    # arm-none-eabi-size -A and QEMU (export raises if an emulated core's scores or sections differ)
+    if metrics["int8"]["arm_check"].startswith("ARM builds checked"):
+        assert metrics["bss_bytes_cortex_m4"] == searcher.cost(exported.arch, "int8").peak_activation_bytes
+        assert metrics["instructions_cortex_m4"] > 0
+    else:
+        assert metrics["int8"]["arm_check"].startswith("ARM check skipped")
     card = (export_dir / "MODEL_CARD.md").read_text()
     assert f"| **{exported.test_accuracy:.4f}** | **{exported.test_accuracy_int8:.4f}** |" in card
     assert "model_classify(" in card and "gcc -std=c99" in card

@@ -95,7 +95,7 @@ class Footprint:
     constants: dict[str, int]  # .rodata section of each of the model's constant arrays
     other_data: dict[str, int]  # any other data section (.data, .bss, compiler constants); expected empty
     code: int  # .text: the functions
-    stack: int  # bound on stack use: every function's frame added up (gcc -fstack-usage)
+    stack: int  # worst-case stack of model_classify: its deepest call chain's frames added up (gcc -fcallgraph-info=su)
 
     @property
     def constant_bytes(self) -> int:
@@ -130,12 +130,36 @@ def write_sources(code: CSource, folder: Path) -> None:
     (folder / "model_int8.h").write_text(code.header, encoding="utf-8")
 
 
-def compile_model(code: CSource, found: Tools, folder: Path) -> Path:
-    """model_int8.o, compiled with the strict warnings, one data section per array, and stack usage noted."""
+def compile_model(code: CSource, found: Tools, folder: Path, flags: tuple[str, ...] = ()) -> Path:
+    """model_int8.o, compiled with the strict warnings, one data section per array, and its call graph
+    with each function's stack frame noted; ``flags`` choose a target (a cross-compiler's -mcpu)."""
     write_sources(code, folder)
-    _run([found.gcc, *WARNINGS, OPTIMIZE, "-fdata-sections", "-fstack-usage", "-c", "model_int8.c",
+    _run([found.gcc, *WARNINGS, OPTIMIZE, *flags, "-fdata-sections", "-fcallgraph-info=su", "-c", "model_int8.c",
           "-o", "model_int8.o"], folder)
     return folder / "model_int8.o"
+
+
+_NODE = re.compile(r'node: \{ title: "([^"]+)" label: "[^"]*\\n(\d+) bytes \(([\w,]+)\)')
+_EDGE = re.compile(r'edge: \{ sourcename: "([^"]+)" targetname: "([^"]+)"')
+
+
+def stack_bound(callgraph: str, root: str = "model_classify") -> int:
+    """Bytes of stack ``root`` can use at most: the deepest chain of frames in gcc's call graph (-fcallgraph-info=su).
+
+    Raises if a frame has no bound or a call leaves the file (neither happens in the generated C;
+    a bound that left them out would not be one).
+    """
+    frames = {title: (int(size), kind) for title, size, kind in _NODE.findall(callgraph)}
+    calls: dict[str, list[str]] = {}
+    for source, target in _EDGE.findall(callgraph):
+        calls.setdefault(source, []).append(target)
+
+    def deepest(name: str, seen: tuple[str, ...]) -> int:
+        if name not in frames or frames[name][1] not in ("static", "dynamic,bounded") or name in seen:
+            raise RuntimeError(f"no stack bound: {name} is {'recursive' if name in seen else 'outside the file or dynamic'}")
+        return frames[name][0] + max((deepest(callee, (*seen, name)) for callee in calls.get(name, ())), default=0)
+
+    return deepest(root, ())
 
 
 def footprint(code: CSource, found: Tools, obj: Path) -> Footprint:
@@ -149,8 +173,7 @@ def footprint(code: CSource, found: Tools, obj: Path) -> Footprint:
     constants = {name: sections.pop(f".rodata.{name}") for name, _ in code.arrays if f".rodata.{name}" in sections}
     code_bytes = sum(v for k, v in sections.items() if k.startswith(".text"))
     other = {k: v for k, v in sections.items() if k.startswith((".data", ".bss", ".rodata"))}
-    usage = obj.with_suffix(".su").read_text(encoding="utf-8")
-    stack = sum(int(m) for m in re.findall(r"\t(\d+)\t", usage))
+    stack = stack_bound(obj.with_suffix(".ci").read_text(encoding="utf-8"))
     return Footprint(arena, constants, other, code_bytes, stack)
 
 

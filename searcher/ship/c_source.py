@@ -33,6 +33,8 @@ class CSource:
     header: str  # model_int8.h
     arena_bytes: int  # size of the one static activation arena
     arrays: tuple[tuple[str, int], ...]  # (symbol, bytes) of every constant array, in file order
+    layer_names: tuple[str, ...]  # the integer layers model_classify runs, in order
+    input_bytes: int  # MODEL_INPUT_BYTES
 
     @property
     def constant_bytes(self) -> int:
@@ -231,8 +233,16 @@ def _describe(layer: IntLayer, before: tuple[int, ...], after: tuple[int, ...]) 
     return f"{layer.name}: {layer.kind}, {dims}"
 
 
-def generate(net: IntegerNet, class_names: tuple[str, ...] = ()) -> CSource:
-    """Both C files for `net`; ``class_names`` go into the header as a macro (no data unless used)."""
+PROFILE_HOOK = "model_layer_done"  # called by a profiled build after the input copy and after each layer
+
+
+def generate(net: IntegerNet, class_names: tuple[str, ...] = (), *, profile: bool = False) -> CSource:
+    """Both C files for `net`; ``class_names`` go into the header as a macro (no data unless used).
+
+    ``profile=True`` is for the emulated run only, never for the user's files: the same source with a
+    call ``model_layer_done(k)`` after the input copy (k = 0) and after layer k − 1, so that a harness
+    can read a clock between layers (:mod:`searcher.ship.emulate`).
+    """
     shapes = _shape(net)
     sizes = [math.prod(s) for s in shapes]
     arena = max(sizes[i] + sizes[i + 1] for i in range(len(net.layers)))
@@ -270,6 +280,8 @@ def generate(net: IntegerNet, class_names: tuple[str, ...] = ()) -> CSource:
         else:
             calls.append(f"    {layer.kind[:3]}_pool({src}, {before[0]}, {before[1]}, {before[2]}, {dst}, "
                          f"{after[1]}, {after[2]}, {layer.window}, {layer.stride});")
+        if profile:
+            calls.append(f"    {PROFILE_HOOK}({i + 1});")
         at = out_at
     kinds = {layer.kind for layer in net.layers}
     functions = [_REQUANTIZE]
@@ -301,7 +313,7 @@ def generate(net: IntegerNet, class_names: tuple[str, ...] = ()) -> CSource:
 
 #include "model_int8.h"
 
-typedef {"int64_t" if net.wide else "int32_t"} acc_t; /* accumulator: {"a layer's sums may exceed 32 bits" if net.wide else "32 bits hold every sum (checked at export)"} */
+{f"void {PROFILE_HOOK}(int32_t layer); /* the harness's clock: profiled builds only */{chr(10)}" if profile else ""}typedef {"int64_t" if net.wide else "int32_t"} acc_t; /* accumulator: {"a layer's sums may exceed 32 bits" if net.wide else "32 bits hold every sum (checked at export)"} */
 
 {"".join(data)}
 static int8_t {PREFIX}arena[{arena}];
@@ -316,7 +328,7 @@ int model_classify(const uint8_t *pixels, int8_t *scores)
 
     for (i = 0; i < {sizes[0]}; ++i)
         a[i] = (int8_t)((int32_t)pixels[i] - 128);
-{chr(10).join(calls)}
+{f"    {PROFILE_HOOK}(0);{chr(10)}" if profile else ""}{chr(10).join(calls)}
 
     result = a + {at};
     for (i = 1; i < {net.classes}; ++i)
@@ -355,4 +367,4 @@ int model_classify(const uint8_t *pixels, int8_t *scores);
 
 #endif /* MODEL_INT8_H */
 """
-    return CSource(source, header, arena, tuple(arrays))
+    return CSource(source, header, arena, tuple(arrays), tuple(layer.name for layer in net.layers), sizes[0])

@@ -7,7 +7,12 @@
   image and required to give the reference's int8 scores exactly; ``size -A`` on the object must
   show an arena equal to the analytic peak activation bytes at int8 and constant data equal to
   the analytic int8 weight bytes plus the activation tables. Without gcc the files are still
-  written; only the compile check and the C latency are skipped, and the report says so.
+  written; only the compile check and the C latency are skipped, and the report says so;
+* the same C file cross-compiled for each Cortex-M core QEMU emulates as a whole board
+  (:mod:`searcher.ship.arm_build`) and run there on the held-out images (:mod:`searcher.ship.emulate`):
+  the reference's scores exactly, ``arm-none-eabi-size -A`` showing the same arena and constant
+  data, and per core the code size, the worst-case stack and the instructions per inference, in
+  total and per layer. Without the ARM tools this check is skipped with a line saying so.
 """
 
 from __future__ import annotations
@@ -20,12 +25,13 @@ from typing import Any
 import numpy as np
 import onnx
 
-from searcher.core.arch import Arch
+from searcher.core.arch import Arch, parse_arch
 from searcher.core.cost import cost
 from searcher.model.metrics import scores
 from searcher.int8 import reference as int8_reference
-from searcher.ship import c_build, onnx_files
+from searcher.ship import arm_build, c_build, emulate, onnx_files
 from searcher.ship.c_build import Footprint
+from searcher.ship.emulate import CoreRun
 from searcher.ship.c_source import CSource, generate
 from searcher.int8.check import quantized, unit_images
 from searcher.int8.quantize import IntegerNet, QuantSettings, to_pixels
@@ -35,6 +41,7 @@ log = logging.getLogger(__name__)
 LATENCY_IMAGES = 64  # held-out images timed one at a time ...
 LATENCY_MACS = 2 * 10**9  # ... fewer (at least 5) when a pass over them would exceed this many MACs ...
 LATENCY_REPEATS = 3  # ... this many times over; the median is reported
+EMULATED_MACS = 3 * 10**8  # held-out images emulated per core: all of them, or fewer (at least 5) beyond this many MACs
 TABLE_BYTES = 256  # one int8 output per int8 input
 
 
@@ -55,6 +62,8 @@ class DeployReport:
     analytic_peak_bytes: int  # searcher.core.cost, activations at int8
     analytic_weight_bytes: int  # searcher.core.cost, weights at int8
     footprint: Footprint | None  # size -A of the compiled object; None when skipped
+    arm: tuple[CoreRun, ...] = ()  # each emulated Cortex-M core's sizes and instruction counts; () when skipped
+    arm_check: str = ""  # one line: what the emulated runs found, or why they were skipped
 
     def metrics(self) -> dict[str, Any]:
         """The entries metrics.json gains."""
@@ -63,6 +72,7 @@ class DeployReport:
             "code_bytes": self.footprint.code, "stack_bytes_at_most": self.footprint.stack,
             "other_data": self.footprint.other_data, "ram_bytes": self.footprint.ram, "flash_bytes": self.footprint.flash}
         return {
+            **self.arm_metrics(),
             "test_accuracy_int8": self.test_accuracy_int8,
             "test_balanced_accuracy_int8": self.test_balanced_accuracy_int8,
             "latency_onnxruntime_fp32_ms": self.latency_onnxruntime_fp32_ms,
@@ -75,9 +85,27 @@ class DeployReport:
                 "c_check": self.c_check,
                 "arena_bytes": self.code.arena_bytes, "analytic_peak_activation_bytes": self.analytic_peak_bytes,
                 "constant_bytes": self.code.constant_bytes, "analytic_weight_bytes": self.analytic_weight_bytes,
-                "tables": dict(self.code.tables), "compiled": build,
+                "tables": dict(self.code.tables), "compiled": build, "arm_check": self.arm_check,
             },
         }
+
+    def arm_metrics(self) -> dict[str, Any]:
+        """Per emulated core, keys that carry its name: instructions_cortex_m4, text_bytes_cortex_m4, ..."""
+        out: dict[str, Any] = {}
+        for run in self.arm:
+            key = core_key(run.core.name)
+            out |= {f"instructions_{key}": run.instructions,
+                    f"instructions_per_mac_{key}": run.instructions / max(1, cost(parse_arch(self.net.arch)).macs),
+                    f"text_bytes_{key}": run.footprint.code, f"rodata_bytes_{key}": run.footprint.constant_bytes,
+                    f"bss_bytes_{key}": run.footprint.arena, f"stack_bytes_{key}": run.footprint.stack,
+                    f"stack_bytes_seen_{key}": run.stack_used, f"instructions_per_layer_{key}": dict(run.layers),
+                    f"emulated_images_{key}": run.images, f"board_{key}": run.core.board}
+        return out
+
+
+def core_key(name: str) -> str:
+    """A core's name as part of a key: cortex-m4 -> cortex_m4."""
+    return name.replace("-", "_")
 
 
 def prove(arch: Arch, code: CSource) -> tuple[int, int]:
@@ -122,6 +150,36 @@ def _check_c(code: CSource, net: IntegerNet, pixels: np.ndarray, expected: np.nd
     return footprint, nanoseconds / 1e6, line
 
 
+def _emulated_images(arch: Arch, held_out: int) -> int:
+    """How many held-out images each emulated core classifies: all, unless the network is large."""
+    return min(held_out, max(5, EMULATED_MACS // max(1, cost(arch).macs)))
+
+
+def check_arm(code: CSource, net: IntegerNet, pixels: np.ndarray, expected: np.ndarray) -> tuple[tuple[CoreRun, ...], str]:
+    """Every emulated core's run of the C file on `pixels`, checked against `expected` scores and the
+    declared arena and constant data; one line for the log and the card."""
+    found = arm_build.arm_tools()
+    if found is None:
+        return (), ("ARM check skipped: arm-none-eabi-gcc, arm-none-eabi-size and qemu-system-arm are not all on PATH "
+                    "(Debian: apt-get install gcc-arm-none-eabi libnewlib-arm-none-eabi qemu-system-arm)")
+    profiled = generate(net, profile=True)
+    with c_build.scratch() as folder:
+        outcome = emulate.run_cores(code, profiled, pixels, expected, found, Path(folder))
+    runs = tuple(run for run in outcome if isinstance(run, CoreRun))
+    for run in runs:
+        if run.footprint.arena != code.arena_bytes or run.footprint.constant_bytes != code.constant_bytes:
+            raise RuntimeError(f"{net.arch}: arm-none-eabi-size -A for {run.core.name} shows arena {run.footprint.arena} B "
+                               f"and constant data {run.footprint.constant_bytes} B; the source declares "
+                               f"{code.arena_bytes} B and {code.constant_bytes} B")
+    line = ""
+    if runs:
+        line = (f"ARM builds checked: arm-none-eabi-gcc -O2 -mthumb for {', '.join(r.core.name for r in runs)}, run under "
+                f"qemu-system-arm ({', '.join(r.core.board for r in runs)}), give the integer reference's int8 scores "
+                f"exactly on {runs[0].images} held-out images")
+    skipped = [run for run in outcome if isinstance(run, str)]
+    return runs, "; ".join([line, *skipped]) if line else "; ".join(skipped)
+
+
 def write_deploy_files(folder: Path, model: Any, arch: Arch, train_images: Any, test_images: Any, test_labels: Any,
                        class_names: tuple[str, ...], settings: QuantSettings = QuantSettings()) -> DeployReport:
     """Quantize the trained `model` (calibrating on `train_images`), write the ONNX and C files into
@@ -152,5 +210,8 @@ def write_deploy_files(folder: Path, model: Any, arch: Arch, train_images: Any, 
     peak, weights = prove(arch, code)
     footprint, c_latency, line = _check_c(code, net, pixels, expected, _timed_images(arch))
     log.info(line)
+    emulated = _emulated_images(arch, len(pixels))
+    arm, arm_line = check_arm(code, net, pixels[:emulated], expected[:emulated])
+    log.info(arm_line)
     return DeployReport(net, code, held_out.accuracy, held_out.balanced_accuracy, difference, *agreement, latency,
-                        c_latency, line, peak, weights, footprint)
+                        c_latency, line, peak, weights, footprint, arm, arm_line)

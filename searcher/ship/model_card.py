@@ -175,13 +175,14 @@ differs on the target):
 | | bytes | analytic (`searcher cost`) |
 |---|---|---|
 | RAM: activation arena (`.bss`) | {built.arena:,} | peak activation at int8: {report.analytic_peak_bytes:,} |
-| RAM: stack, at most | {built.stack:,} | (gcc -fstack-usage, every frame added up) |
+| RAM: stack, at most | {built.stack:,} | (gcc -fcallgraph-info: the deepest chain of frames) |
 | flash: constant data (`.rodata` of the model's arrays) | {built.constant_bytes:,} | int8 weights {report.analytic_weight_bytes:,} + tables {table_bytes:,} |
 | flash: code (`.text`) | {built.code:,} | |
 | other data sections | {other} | |
 
 Median batch-1 latency on this machine: C build {report.latency_c_ms:.3f} ms (gcc -O2, one call at a
 time), fp32 `model.onnx` in onnxruntime {report.latency_onnxruntime_fp32_ms:.3f} ms (one thread)."""
+
     return f"""## int8 build
 Post-training quantization (Jacob et al., CVPR 2018; per-channel weights as in Krishnamoorthi, 2018):
 batch norm folded into the convs, int8 weights with a scale per output channel, int8 activations on
@@ -208,6 +209,8 @@ bias and an int32 multiplier; activation tables: {tables}) and one static arena 
 exactly the analytic int8 weight bytes plus the tables, and exactly the analytic peak activation bytes.
 {measured}
 
+{arm_section(report, arch)}
+
 Build it with any C99 compiler, with the rest of your firmware or alone:
 
 ```sh
@@ -224,4 +227,36 @@ int8_t scores[MODEL_CLASSES];
 int label = model_classify(frame, scores); /* 0..MODEL_CLASSES-1; scores may be NULL */
 /* confidence as a real number: MODEL_SCORE_SCALE * (scores[label] - MODEL_SCORE_ZERO) */
 ```
+"""
+
+
+def arm_section(report: Any, arch: Arch) -> str:
+    """The emulated Cortex-M runs: sizes of the ARM object and instructions per inference, in total and per layer."""
+    if not report.arm:
+        return f"### On Cortex-M cores\n{report.arm_check}."
+    macs = max(1, cost(arch).macs)
+    rows = "\n".join(
+        f"| {r.core.name} ({r.core.board}) | {r.footprint.code:,} | {r.footprint.constant_bytes:,} | {r.footprint.arena:,} "
+        f"| {r.footprint.stack:,} ({r.stack_used:,}) | {r.instructions:,} | {r.instructions / macs:.2f} |" for r in report.arm)
+    names = [name for name, _ in report.arm[0].layers]
+    per_layer = "\n".join(f"| {name} | " + " | ".join(f"{dict(r.layers).get(name, 0):,}" for r in report.arm) + " |"
+                           for name in names)
+    return f"""### On Cortex-M cores (emulated)
+{report.arm_check}. Per core, `arm-none-eabi-size -A` of `model_int8.o` (`-O2 -mthumb`, bytes) and the
+instructions of one inference (mean over the images; {macs:,} MACs):
+
+| core (QEMU board) | code `.text` | constant data `.rodata` | arena `.bss` | stack at most (seen) | instructions | per MAC |
+|---|---|---|---|---|---|---|
+{rows}
+
+`.rodata` and `.bss` equal the analytic figures above. The stack bound is the deepest chain of frames in
+gcc's call graph; "seen" is what the run overwrote. QEMU counts instructions (`-icount shift=0`, turned
+from SysTick ticks by a counted loop timed in the same run), not cycles: on silicon, flash wait states,
+the bus and caches add to them.
+
+Instructions per layer ("input" copies the image in, "output" picks the class):
+
+| layer | {' | '.join(r.core.name for r in report.arm)} |
+|---|{'---|' * len(report.arm)}
+{per_layer}
 """
