@@ -52,7 +52,8 @@ def emulated(arch_text: str, core, tools, folder: Path, count: int = 6, profile:
     pixels = to_pixels(images_for(arch, count))
     expected = int8_reference.scores(net, pixels)
     code = generate(net)
-    run = emulate.run_core(code, generate(net, profile=True) if profile else None, core, tools, folder, pixels, expected)
+    profiled = generate(net, profile=True) if profile else None
+    run = emulate.run_core(code, profiled, core, tools, folder, pixels, expected)
     return arch, net, code, run
 
 
@@ -205,8 +206,10 @@ def test_deploy_files_report_every_core_in_metrics_and_card(tools, tmp_path):
     metrics = json.loads(json.dumps(report.metrics()))
     for core in CORES:
         key = core.name.replace("-", "_")
-        assert metrics[f"instructions_{key}"] > 0 and metrics[f"bss_bytes_{key}"] == cost(arch, "int8").peak_activation_bytes
-        assert set(metrics[f"instructions_per_layer_{key}"]) == {"input", "s1_conv1", "s1_pool", "s2_conv1", "out", "output"}
+        assert metrics[f"instructions_{key}"] > 0
+        assert metrics[f"bss_bytes_{key}"] == cost(arch, "int8").peak_activation_bytes
+        layers = {"input", "s1_conv1", "s1_pool", "s2_conv1", "out", "output"}
+        assert set(metrics[f"instructions_per_layer_{key}"]) == layers
     assert metrics["int8"]["arm_check"].startswith("ARM builds checked")
     card = int8_section(report, arch)
     assert "On Cortex-M cores (emulated)" in card and "| cortex-m55 (mps3-an547) |" in card

@@ -26,16 +26,18 @@ class Core:
 
     name: str  # as gcc's -mcpu spells it, and as metrics.json's keys carry it
     board: str  # qemu-system-arm -M
-    code: tuple[int, int]  # (origin, bytes) of memory the program's code and constants are loaded into
+    code: tuple[int, int]  # (origin, bytes) of memory the program's code and constants are loaded into (the
+    # vector table sits at address 0, where each of these boards reads it at reset)
     ram: tuple[int, int]  # (origin, bytes) of memory for data, heap and stack
 
 
-_MPS2 = ((0x00000000, 4 << 20), (0x20000000, 4 << 20))  # SSRAM1 and SSRAM2/3 (the boards' manuals; info mtree agrees)
+VECTORS = 0x400  # bytes kept at address 0 for the vector table
+_MPS2 = ((VECTORS, (4 << 20) - VECTORS), (0x20000000, 4 << 20))  # SSRAM1, SSRAM2/3 (the boards' manuals; info mtree)
 CORES = (
     Core("cortex-m3", "mps2-an385", *_MPS2),
     Core("cortex-m4", "mps2-an386", *_MPS2),
     Core("cortex-m7", "mps2-an500", *_MPS2),
-    Core("cortex-m55", "mps3-an547", (0x00000000, 512 << 10), (0x20000000, 512 << 10)),  # ITCM and DTCM
+    Core("cortex-m55", "mps3-an547", (0x21000000, 4 << 20), (0x20000000, 512 << 10)),  # SRAM (ITCM: vectors), DTCM
 )
 CORE_NAMES = tuple(core.name for core in CORES)
 CALIBRATION_LOOPS = (100_000, 1_100_000)  # iterations of the counted loop, two lengths: the difference cancels the call
@@ -68,7 +70,8 @@ def core_flags(core: Core) -> tuple[str, ...]:
 HARNESS = r"""
 /* Test harness, not part of the model. Bare metal, no C library: it classifies the images in
  * images.bin, read from the host by semihosting, and writes to out.bin per image the SysTick ticks
- * of the call, the stack it used, its class and scores (and with PROFILE the ticks of each layer);
+ * of the call, the stack it used, its class, the SysTick wraps during it and its scores (and with
+ * PROFILE the ticks of each layer);
  * first, the ticks of a counted loop at two lengths. */
 #include <stdint.h>
 
@@ -117,7 +120,7 @@ void HOOK(int32_t layer) { marks[layer] = ticks(); }
 
 int main(void)
 {
-    uint32_t t0, t1, count = 0, record[3], loops[2];
+    uint32_t t0, t1, count = 0, record[4], loops[2];
     volatile uint32_t *sp, *low; /* volatile: a call to memset would use the stack it paints */
     int in, out;
 
@@ -133,9 +136,11 @@ int main(void)
     while (count < IMAGES && transfer(0x06, in, pixels, MODEL_INPUT_BYTES) == 0) {
         __asm volatile ("mov %0, sp" : "=r"(sp));
         for (low = sp - PAINT_WORDS; low < sp; ++low) *low = PAINT;
+        record[3] = wraps;
         t0 = ticks();
         record[2] = (uint32_t)model_classify(pixels, scores);
         t1 = ticks();
+        record[3] = wraps - record[3]; /* a wrap's interrupt left its 32-byte frame on the painted stack */
         for (low = sp - PAINT_WORDS; low < sp && *low == PAINT; ++low) {}
         record[0] = t1 - t0;
         record[1] = (uint32_t)(sp - low) * 4u;
@@ -221,10 +226,15 @@ wraps:
 LINKER = """\
 /* Code and constants where the board loads them; data, .bss and the stack in RAM. QEMU loads each
  * ELF segment at its link address, so .data needs no copy; the start-up code clears .bss. */
-MEMORY {{ CODE (rx) : ORIGIN = {code_at:#x}, LENGTH = {code_bytes:#x}  RAM (rwx) : ORIGIN = {ram_at:#x}, LENGTH = {ram_bytes:#x} }}
+MEMORY {{
+  VECTORS (rx) : ORIGIN = 0, LENGTH = {vectors:#x}
+  CODE (rx) : ORIGIN = {code_at:#x}, LENGTH = {code_bytes:#x}
+  RAM (rwx) : ORIGIN = {ram_at:#x}, LENGTH = {ram_bytes:#x}
+}}
 ENTRY(reset)
 SECTIONS {{
-  .text : {{ KEEP(*(.vectors)) *(.text*) *(.rodata*) }} > CODE
+  .vectors : {{ KEEP(*(.vectors)) }} > VECTORS
+  .text : {{ *(.text*) *(.rodata*) }} > CODE
   .data : {{ *(.data*) }} > RAM
   .bss : {{ . = ALIGN(4); __bss_start__ = .; *(.bss*) *(COMMON) . = ALIGN(4); __bss_end__ = .; }} > RAM
   __stack_top = ORIGIN(RAM) + LENGTH(RAM);
@@ -247,8 +257,9 @@ def link(core: Core, tools: ArmTools, folder: Path, sources: tuple[str, ...], de
     """program.elf in `folder`: `sources` (files there) with the start-up code and the linker script for
     `core`'s board, no C library."""
     (folder / "start.S").write_text(START, encoding="utf-8")
-    (folder / "link.ld").write_text(LINKER.format(code_at=core.code[0], code_bytes=core.code[1], ram_at=core.ram[0],
-                                                  ram_bytes=core.ram[1]), encoding="utf-8")
+    script = LINKER.format(vectors=VECTORS, code_at=core.code[0], code_bytes=core.code[1], ram_at=core.ram[0],
+                           ram_bytes=core.ram[1])
+    (folder / "link.ld").write_text(script, encoding="utf-8")
     c_build._run([tools.gcc, *core_flags(core), c_build.OPTIMIZE, "-nostdlib", "-T", "link.ld", *defines,
                   "start.S", *sources, "-lgcc", "-o", "program.elf"], folder)
     return folder / "program.elf"
@@ -289,7 +300,7 @@ def build(code: CSource, profiled: CSource | None, core: Core, tools: ArmTools, 
     for name, source in (("exact", code), ("profiled", profiled)):
         place = folder / core.name / name
         place.mkdir(parents=True)
-        objects.append(None if source is None else c_build.compile_model(source, tools.compiler, place, core_flags(core)))
+        objects.append(source and c_build.compile_model(source, tools.compiler, place, core_flags(core)))
     footprint = c_build.footprint(code, tools.compiler, objects[0])
     why = fits(core, footprint, code.input_bytes)
     if why:

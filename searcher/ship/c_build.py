@@ -156,7 +156,8 @@ def stack_bound(callgraph: str, root: str = "model_classify") -> int:
 
     def deepest(name: str, seen: tuple[str, ...]) -> int:
         if name not in frames or frames[name][1] not in ("static", "dynamic,bounded") or name in seen:
-            raise RuntimeError(f"no stack bound: {name} is {'recursive' if name in seen else 'outside the file or dynamic'}")
+            why = "recursive" if name in seen else "outside the file or of unbounded size"
+            raise RuntimeError(f"no stack bound: {name} is {why}")
         return frames[name][0] + max((deepest(callee, (*seen, name)) for callee in calls.get(name, ())), default=0)
 
     return deepest(root, ())

@@ -155,7 +155,8 @@ def _emulated_images(arch: Arch, held_out: int) -> int:
     return min(held_out, max(5, EMULATED_MACS // max(1, cost(arch).macs)))
 
 
-def check_arm(code: CSource, net: IntegerNet, pixels: np.ndarray, expected: np.ndarray) -> tuple[tuple[CoreRun, ...], str]:
+def check_arm(code: CSource, net: IntegerNet, pixels: np.ndarray,
+              expected: np.ndarray) -> tuple[tuple[CoreRun, ...], str]:
     """Every emulated core's run of the C file on `pixels`, checked against `expected` scores and the
     declared arena and constant data; one line for the log and the card."""
     found = arm_build.arm_tools()
@@ -168,16 +169,15 @@ def check_arm(code: CSource, net: IntegerNet, pixels: np.ndarray, expected: np.n
     runs = tuple(run for run in outcome if isinstance(run, CoreRun))
     for run in runs:
         if run.footprint.arena != code.arena_bytes or run.footprint.constant_bytes != code.constant_bytes:
-            raise RuntimeError(f"{net.arch}: arm-none-eabi-size -A for {run.core.name} shows arena {run.footprint.arena} B "
-                               f"and constant data {run.footprint.constant_bytes} B; the source declares "
-                               f"{code.arena_bytes} B and {code.constant_bytes} B")
-    line = ""
+            raise RuntimeError(f"{net.arch}: arm-none-eabi-size -A for {run.core.name} shows arena "
+                               f"{run.footprint.arena} B and constant data {run.footprint.constant_bytes} B; "
+                               f"the source declares {code.arena_bytes} B and {code.constant_bytes} B")
+    lines = [run for run in outcome if isinstance(run, str)]  # cores the model does not fit
     if runs:
-        line = (f"ARM builds checked: arm-none-eabi-gcc -O2 -mthumb for {', '.join(r.core.name for r in runs)}, run under "
-                f"qemu-system-arm ({', '.join(r.core.board for r in runs)}), give the integer reference's int8 scores "
-                f"exactly on {runs[0].images} held-out images")
-    skipped = [run for run in outcome if isinstance(run, str)]
-    return runs, "; ".join([line, *skipped]) if line else "; ".join(skipped)
+        lines.insert(0, f"ARM builds checked: arm-none-eabi-gcc -O2 -mthumb for {', '.join(r.core.name for r in runs)}, "
+                        f"run under qemu-system-arm ({', '.join(r.core.board for r in runs)}), give the integer "
+                        f"reference's int8 scores exactly on {runs[0].images} held-out images")
+    return runs, "; ".join(lines)
 
 
 def write_deploy_files(folder: Path, model: Any, arch: Arch, train_images: Any, test_images: Any, test_labels: Any,

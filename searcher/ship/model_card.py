@@ -235,9 +235,11 @@ def arm_section(report: Any, arch: Arch) -> str:
     if not report.arm:
         return f"### On Cortex-M cores\n{report.arm_check}."
     macs = max(1, cost(arch).macs)
+    seen = ["n/a" if r.stack_used is None else f"{r.stack_used:,}" for r in report.arm]
     rows = "\n".join(
         f"| {r.core.name} ({r.core.board}) | {r.footprint.code:,} | {r.footprint.constant_bytes:,} | {r.footprint.arena:,} "
-        f"| {r.footprint.stack:,} ({r.stack_used:,}) | {r.instructions:,} | {r.instructions / macs:.2f} |" for r in report.arm)
+        f"| {r.footprint.stack:,} ({used}) | {r.instructions:,} | {r.instructions / macs:.2f} |"
+        for r, used in zip(report.arm, seen))
     names = [name for name, _ in report.arm[0].layers]
     per_layer = "\n".join(f"| {name} | " + " | ".join(f"{dict(r.layers).get(name, 0):,}" for r in report.arm) + " |"
                            for name in names)
