@@ -148,10 +148,17 @@ def test_every_core_gives_the_reference_scores(tools, core, tmp_path):
 
 
 @pytest.mark.slow
+@pytest.mark.parametrize("activation", ACTIVATIONS)
 @pytest.mark.parametrize("name", SHIPPED_SPACES)
-def test_a_candidate_of_every_shipped_space_runs_on_the_m4(tools, shipped, name, tmp_path):
-    arch = small_candidate(shipped[name], ACTIVATIONS[SHIPPED_SPACES.index(name) % len(ACTIVATIONS)], seed=2)
-    emulated(arch, M4, tools, tmp_path, count=2, profile=False)
+def test_every_shipped_space_and_activation_gives_the_reference_scores_on_the_m4(tools, shipped, name, activation,
+                                                                                  tmp_path):
+    """The DSP kernels (SMLAD) on the emulated M4, as tests/test_int8.py checks the plain C99 ones with gcc."""
+    arch = small_candidate(shipped[name], activation, seed=1)
+    _, _, code, run = emulated(arch, M4, tools, tmp_path, count=3, profile=False)
+    assert run.images == 3  # run_core raises on any score that differs from the reference
+    analytic = cost(arch, "int8")
+    assert run.footprint.arena == analytic.peak_activation_bytes
+    assert run.footprint.constant_bytes == analytic.weight_bytes("int8") + 256 * len(code.tables)
 
 
 def test_a_program_that_never_ends_is_stopped(tools, tmp_path):
