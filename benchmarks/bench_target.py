@@ -47,14 +47,26 @@ SPACES = ("mcu", "workstation", "classic", "edge_rgb")
 BEFORE = "b7946ee"  # the emulated run, with the first (portable) kernels
 
 
-def fitting(name: str, seed: int = 0) -> Arch:
-    """The first seeded draw of a shipped space that meets every cap of its budget."""
-    space = load_space(builtin_space(name))
-    for draw in range(seed, seed + 10_000):
+def fitting_draws(space_file: Path, count: int, seed: int = 0) -> list[Arch]:
+    """The first `count` draws from `seed` on that meet every cap of the space's budget."""
+    space = load_space(space_file)
+    found = []
+    for draw in range(seed, seed + 100_000):
         arch = space.random(draw)
         if not space.budget.check(space.budget.totals(cost(arch, space.budget.activation_precision))):
-            return arch
-    raise RuntimeError(f"no draw of {name} fits its budget")
+            found.append(arch)
+            if len(found) == count:
+                return found
+    raise RuntimeError(f"too few draws of {space_file} fit its budget")
+
+
+def tools_and_cores(names: str) -> tuple[arm_build.ArmTools, list[arm_build.Core]]:
+    """The ARM tools (or exit saying how to get them) and the cores named, comma-separated."""
+    tools = arm_build.arm_tools()
+    if tools is None:
+        sys.exit("needs arm-none-eabi-gcc, arm-none-eabi-size and qemu-system-arm (Debian: apt-get install "
+                 "gcc-arm-none-eabi libnewlib-arm-none-eabi qemu-system-arm)")
+    return tools, [core for core in arm_build.CORES if core.name in names.split(",")]
 
 
 def random_net(arch: Arch, seed: int = 0) -> IntegerNet:
@@ -93,15 +105,11 @@ def main() -> None:
     parser.add_argument("--cores", default=",".join(arm_build.CORE_NAMES), help="cores to emulate, comma-separated")
     parser.add_argument("--images", type=int, default=4, help="images per candidate and core")
     args = parser.parse_args()
-    tools = arm_build.arm_tools()
-    if tools is None:
-        sys.exit("needs arm-none-eabi-gcc, arm-none-eabi-size and qemu-system-arm (Debian: apt-get install "
-                 "gcc-arm-none-eabi libnewlib-arm-none-eabi qemu-system-arm)")
-    cores = [core for core in arm_build.CORES if core.name in args.cores.split(",")]
+    tools, cores = tools_and_cores(args.cores)
     old = generator_at(args.before)
     if old is None:
         print(f"no 'before' column: git show {args.before}:searcher/ship/c_source.py failed")
-    candidates = [("demo export", parse_arch(DEMO))] + [(name, fitting(name)) for name in SPACES]
+    candidates = [("demo export", parse_arch(DEMO))] + [(name, fitting_draws(builtin_space(name), 1)[0]) for name in SPACES]
     print(f"{'candidate':<14} {'MACs':>11} {'core':<11} {'before':>8} {'after':>8} {'ratio':>6}"
           "  (instructions per MAC)")
     for label, arch in candidates:

@@ -23,6 +23,7 @@ from searcher.errors import SearcherError, is_int, one_of, shown
 from searcher.limits import MAX_CLASSES, MAX_CONVS, MAX_KERNEL, MAX_SIDE, MAX_STAGES, MAX_WIDTH
 
 ACTIVATIONS = ("relu", "relu6", "tanh", "sigmoid", "hardswish")
+TABLE_ACTIVATIONS = ("hardswish", "tanh", "sigmoid")  # at int8 a 256-entry lookup; relu and relu6 are a clamp
 POOLS = ("max", "avg")
 FEATURES = ("flatten", "gap")
 PADDINGS = ("same", "valid")

@@ -36,14 +36,13 @@ from dataclasses import dataclass
 import numpy as np
 from numpy.lib.stride_tricks import sliding_window_view
 
-from searcher.core.arch import Arch
+from searcher.core.arch import TABLE_ACTIVATIONS, Arch
 from searcher.core.plan import lower
 from searcher.errors import SearcherError, one_of
 
 BN_EPS = 1e-5  # torch.nn.BatchNorm2d's default, which searcher.model.build uses
 BIAS_LIMIT = 2**30  # |int32 bias| stays below this (a weight scale is raised if need be)
 ACCUMULATOR_BITS = 31  # magnitude bits of an int32 accumulator; a layer that may need more is "wide"
-TABLE_ACTIVATIONS = ("hardswish", "tanh", "sigmoid")  # done by a 256-entry lookup
 CALIBRATIONS = ("minmax", "percentile")
 CHUNK_VALUES = 1 << 20  # patch-matrix values per block of images: bounds memory, keeps temporaries in cache
 

@@ -115,7 +115,7 @@ static int transfer(uint32_t operation, int handle, const void *data, uint32_t b
 
 #ifdef PROFILE
 static uint32_t marks[MODEL_LAYERS + 1];
-void HOOK(int32_t layer) { marks[layer] = ticks(); }
+void HOOK(int32_t layer, int8_t *arena) { (void)arena; marks[layer] = ticks(); }
 #endif
 
 int main(void)
@@ -208,6 +208,36 @@ tick_wrap:                      /* SysTick: count the wraps of its 24-bit counte
 semihost:                       /* r0 operation, r1 parameter block; result in r0 */
     bkpt 0xab
     bx lr
+
+    .global memcpy              /* the C library functions a compiler may call for a loop: byte by byte, */
+    .global memmove             /* no stack (the model's stack bound leaves the library's frames out) */
+    .thumb_func
+memcpy:                         /* r0 destination, r1 source, r2 bytes; returns the destination */
+memmove:
+    mov r3, r0
+    cmp r0, r1
+    bhi 3f                      /* destination above the source: copy from the end */
+1:  cbz r2, 2f
+    ldrb r12, [r1], #1
+    strb r12, [r3], #1
+    subs r2, r2, #1
+    b 1b
+2:  bx lr
+3:  subs r2, r2, #1
+    bmi 2b
+    ldrb r12, [r1, r2]
+    strb r12, [r0, r2]
+    b 3b
+
+    .global memset
+    .thumb_func
+memset:                         /* r0 destination, r1 value, r2 bytes; returns the destination */
+    mov r3, r0
+1:  cbz r2, 2f
+    strb r1, [r3], #1
+    subs r2, r2, #1
+    b 1b
+2:  bx lr
 
     .global counted_loop
     .thumb_func

@@ -96,6 +96,7 @@ class Footprint:
     other_data: dict[str, int]  # any other data section (.data, .bss, compiler constants); expected empty
     code: int  # .text: the functions
     stack: int  # worst-case stack of model_classify: its deepest call chain's frames added up (gcc -fcallgraph-info=su)
+    library: tuple[str, ...] = ()  # functions outside the file it calls (memcpy...), whose frames `stack` leaves out
 
     @property
     def constant_bytes(self) -> int:
@@ -143,24 +144,28 @@ _NODE = re.compile(r'node: \{ title: "([^"]+)" label: "[^"]*\\n(\d+) bytes \(([\
 _EDGE = re.compile(r'edge: \{ sourcename: "([^"]+)" targetname: "([^"]+)"')
 
 
-def stack_bound(callgraph: str, root: str = "model_classify") -> int:
-    """Bytes of stack ``root`` can use at most: the deepest chain of frames in gcc's call graph (-fcallgraph-info=su).
+def stack_bound(callgraph: str, root: str = "model_classify") -> tuple[int, tuple[str, ...]]:
+    """Bytes of stack ``root`` can use at most, the deepest chain of frames in gcc's call graph
+    (-fcallgraph-info=su), and the functions outside the file it may call on the way (the C library's
+    memcpy or memset, where the compiler turned a loop into a call), whose frames the bound leaves out.
 
-    Raises if a frame has no bound or a call leaves the file (neither happens in the generated C;
-    a bound that left them out would not be one).
+    Raises if a frame has no bound or a call is recursive (neither happens in the generated C).
     """
     frames = {title: (int(size), kind) for title, size, kind in _NODE.findall(callgraph)}
     calls: dict[str, list[str]] = {}
     for source, target in _EDGE.findall(callgraph):
         calls.setdefault(source, []).append(target)
+    outside: set[str] = set()
 
     def deepest(name: str, seen: tuple[str, ...]) -> int:
-        if name not in frames or frames[name][1] not in ("static", "dynamic,bounded") or name in seen:
-            why = "recursive" if name in seen else "outside the file or of unbounded size"
-            raise RuntimeError(f"no stack bound: {name} is {why}")
+        if name in seen or (name in frames and frames[name][1] not in ("static", "dynamic,bounded")):
+            raise RuntimeError(f"no stack bound: {name} is {'recursive' if name in seen else 'of unbounded size'}")
+        if name not in frames:
+            outside.add(name)
+            return 0
         return frames[name][0] + max((deepest(callee, (*seen, name)) for callee in calls.get(name, ())), default=0)
 
-    return deepest(root, ())
+    return deepest(root, ()), tuple(sorted(outside))
 
 
 def footprint(code: CSource, found: Tools, obj: Path) -> Footprint:
@@ -174,8 +179,8 @@ def footprint(code: CSource, found: Tools, obj: Path) -> Footprint:
     constants = {name: sections.pop(f".rodata.{name}") for name, _ in code.arrays if f".rodata.{name}" in sections}
     code_bytes = sum(v for k, v in sections.items() if k.startswith(".text"))
     other = {k: v for k, v in sections.items() if k.startswith((".data", ".bss", ".rodata"))}
-    stack = stack_bound(obj.with_suffix(".ci").read_text(encoding="utf-8"))
-    return Footprint(arena, constants, other, code_bytes, stack)
+    stack, library = stack_bound(obj.with_suffix(".ci").read_text(encoding="utf-8"))
+    return Footprint(arena, constants, other, code_bytes, stack, library)
 
 
 def build_runner(found: Tools, obj: Path) -> Path:

@@ -20,6 +20,7 @@ shifts the high word of the 64-bit product, a 32-bit shift, whenever the layer's
 
 from __future__ import annotations
 
+import hashlib
 import math
 import re
 from dataclasses import dataclass
@@ -28,7 +29,7 @@ import numpy as np
 
 from searcher.core.arch import parse_arch
 from searcher.core.plan import lower
-from searcher.int8.quantize import IntegerNet, IntLayer
+from searcher.int8.quantize import IntegerNet, IntLayer, quantize
 
 PREFIX = "model_"  # of every external symbol the file defines
 PER_LINE = 20  # array values per source line
@@ -403,12 +404,44 @@ def _describe(layer: IntLayer, before: tuple[int, ...], after: tuple[int, ...]) 
 PROFILE_HOOK = "model_layer_done"  # called by a profiled build after the input copy and after each layer
 
 
+def kernel_fingerprint() -> str:
+    """A hash of the C this module writes (every fixed function, and the whole file for two sample
+    networks): the latency model's coefficients were fitted on the kernels with this hash
+    (``searcher.core.latency``; a test compares the two)."""
+    samples = []
+    for text in ("1x9x9_c4k3-m2_c6k5-a2_flat-d5-o3_tanh", "1x4x4_c4k3-m2_c8k3-m2_gap-o3_relu_bn"):
+        arch = parse_arch(text)
+        state = {f"{name}.{kind}": np.full(shape, 0.5) for name, kind, shape in _parameters(arch)}
+        samples.append(generate(quantize(arch, state, np.linspace(0, 1, arch.input_shape[1] ** 2 * 2)
+                                         .reshape(2, *arch.input_shape))).source)
+    fixed = (_REQUANTIZE, _DOT, _CONV, _DENSE, _TABLE, _DIVIDE, _POOL, _GAP)
+    return hashlib.sha256("".join((*fixed, *samples)).encode("utf-8")).hexdigest()[:16]
+
+
+def _parameters(arch) -> list[tuple[str, str, tuple[int, ...]]]:
+    """(module name, parameter, shape) of every tensor a trained network's state holds (batch norm as fresh)."""
+    out = []
+    for layer in lower(arch):
+        if not layer.affine:
+            continue
+        shape = (layer.channels, layer.input[0], layer.kernel, layer.kernel) if layer.kind == "conv" else \
+            (layer.channels, layer.input[0])
+        out.append((layer.name, "weight", shape))
+        if layer.bias:
+            out.append((layer.name, "bias", (layer.channels,)))
+        if layer.batch_norm:
+            out += [(layer.batch_norm, kind, (layer.channels,))
+                    for kind in ("weight", "bias", "running_mean", "running_var")]
+    return out
+
+
 def generate(net: IntegerNet, class_names: tuple[str, ...] = (), *, profile: bool = False) -> CSource:
     """Both C files for `net`; ``class_names`` go into the header as a macro (no data unless used).
 
     ``profile=True`` is for the emulated run only, never for the user's files: the same source with a
-    call ``model_layer_done(k)`` after the input copy (k = 0) and after layer k − 1, so that a harness
-    can read a clock between layers (:mod:`searcher.ship.emulate`).
+    call ``model_layer_done(k, arena)`` after the input copy (k = 0) and after layer k − 1, so that a
+    harness can read a clock between layers (:mod:`searcher.ship.emulate`). The arena is passed to
+    it so that the compiler cannot move a layer's work on the arena past the call.
     """
     shapes = _shape(net)
     sizes = [math.prod(s) for s in shapes]
@@ -417,6 +450,7 @@ def generate(net: IntegerNet, class_names: tuple[str, ...] = (), *, profile: boo
     data: list[str] = []
     calls: list[str] = []
     convs: set[tuple[int, int]] = set()  # (kernel, input channels) of each conv function needed
+    kinds = {layer.kind for layer in net.layers if layer.weights is not None}  # and the other functions needed
     at = 0  # offset of the current tensor; the input is copied to the start
     for i, layer in enumerate(net.layers):
         before, after = shapes[i], shapes[i + 1]
@@ -444,15 +478,19 @@ def generate(net: IntegerNet, class_names: tuple[str, ...] = (), *, profile: boo
                 data.append(_array("int8_t", f"{symbol}_table", layer.table))
                 arrays.append((f"{symbol}_table", 256))
                 calls.append(f"    lookup({dst}, {sizes[i + 1]}, {symbol}_table);")
+        elif sizes[i] == sizes[i + 1]:  # averaging a 1x1 map, pooling 1x1 windows at stride 1: the values stay
+            calls.append("    /* the same values: nothing to do */")
+            out_at = at
         elif layer.kind == "gap":
             calls.append(f"    global_average({src}, {before[0]}, {before[1] * before[2]}, {dst});")
+            kinds.add("gap")
         else:
             calls.append(f"    {layer.kind[:3]}_pool({src}, {before[0]}, {before[2]}, {dst}, "
                          f"{after[1]}, {after[2]}, {layer.window}, {layer.stride});")
+            kinds.add(layer.kind)
         if profile:
-            calls.append(f"    {PROFILE_HOOK}({i + 1});")
+            calls.append(f"    {PROFILE_HOOK}({i + 1}, a);")
         at = out_at
-    kinds = {layer.kind for layer in net.layers}
     functions = [requantize_source(net.wide), _DOT]
     functions += [_conv_function(k, c) for k, c in sorted(convs)]
     functions += [_DENSE] if "dense" in kinds else []
@@ -489,7 +527,8 @@ def generate(net: IntegerNet, class_names: tuple[str, ...] = (), *, profile: boo
 {dsp}
 #include "model_int8.h"
 
-{f"void {PROFILE_HOOK}(int32_t layer); /* the harness's clock: profiled builds only */{chr(10)}" if profile else ""}\
+{f"void {PROFILE_HOOK}(int32_t layer, int8_t *arena); /* the harness's clock: profiled builds only; the arena{chr(10)}"
+   f" * is passed so that the compiler moves no work on it from one layer to the next */{chr(10)}" if profile else ""}\
 
 {"".join(data)}
 static int8_t {PREFIX}arena[{arena}];
@@ -505,7 +544,7 @@ int model_classify(const uint8_t *pixels, int8_t *scores)
     for (i = 0; i < {h * w}; ++i) /* channels x height x width in, height x width x channels in the arena */
         for (ch = 0; ch < {c}; ++ch)
             a[i * {c} + ch] = (int8_t)((int32_t)pixels[ch * {h * w} + i] - 128);
-{f"    {PROFILE_HOOK}(0);{chr(10)}" if profile else ""}{chr(10).join(calls)}
+{f"    {PROFILE_HOOK}(0, a);{chr(10)}" if profile else ""}{chr(10).join(calls)}
 
     result = a + {at};
     for (i = 1; i < {net.classes}; ++i)

@@ -240,6 +240,8 @@ def arm_section(report: Any, arch: Arch) -> str:
         f"| {r.core.name} ({r.core.board}) | {r.footprint.code:,} | {r.footprint.constant_bytes:,} | {r.footprint.arena:,} "
         f"| {r.footprint.stack:,} ({used}) | {r.instructions:,} | {r.instructions / macs:.2f} |"
         for r, used in zip(report.arm, seen))
+    calls = sorted({name for r in report.arm for name in r.footprint.library})
+    library = f", plus the frames of the C library's {', '.join(calls)}, which the compiler calls for a loop" if calls else ""
     names = [name for name, _ in report.arm[0].layers]
     per_layer = "\n".join(f"| {name} | " + " | ".join(f"{dict(r.layers).get(name, 0):,}" for r in report.arm) + " |"
                            for name in names)
@@ -252,7 +254,7 @@ instructions of one inference (mean over the images; {macs:,} MACs):
 {rows}
 
 `.rodata` and `.bss` equal the analytic figures above. The stack bound is the deepest chain of frames in
-gcc's call graph; "seen" is what the run overwrote. QEMU counts instructions (`-icount shift=0`, turned
+gcc's call graph{library}; "seen" is what the run overwrote. QEMU counts instructions (`-icount shift=0`, turned
 from SysTick ticks by a counted loop timed in the same run), not cycles: on silicon, flash wait states,
 the bus and caches add to them.
 
