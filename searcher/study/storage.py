@@ -1,4 +1,4 @@
-"""The Optuna study behind a run: storage, sampler, pruner, and the run's fixed configuration.
+"""The Optuna study behind a run: storage, sampler, and the run's fixed configuration.
 
 A run is one study. Its configuration (space, budget, data, objective) is stored in the study
 itself, so a resumed run or another machine on the same PostgreSQL study can check that it is
@@ -27,7 +27,6 @@ import sqlalchemy
 from searcher.errors import SearcherError, one_of, shown
 from searcher.redact import redact
 from searcher.runs import RUNS, run_folder
-from searcher.study.early_stop import make_pruner
 from searcher.study.optuna_private import journal_lock, seed_draws
 
 log = logging.getLogger(__name__)
@@ -320,9 +319,9 @@ def open_study(name: str, url: str, config: RunConfig | None, sampler: str = "tp
             raise SearcherError(
                 f"run {name!r} was started with other settings ({changes}); continue it with the same "
                 f"settings, or start a new run with another --name", key="--name")
-    pruner = make_pruner(int(config.train.get("epochs", 6)))
     study = optuna.create_study(study_name=name, storage=storage, directions=directions, load_if_exists=True,
-                                sampler=make_sampler(sampler, config.objective, config.seed + worker), pruner=pruner)
+                                sampler=make_sampler(sampler, config.objective, config.seed + worker),
+                                pruner=optuna.pruners.NopPruner())  # searcher.study.early_stop decides
     if stored_config is None:
         study.set_user_attr("config", config.to_dict())
     return study, config

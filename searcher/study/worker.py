@@ -5,8 +5,8 @@ Each proposal ends in one state (the ``state`` column of trials.csv):
 * ``rejected`` — breaks a cap by exact arithmetic (:mod:`searcher.core.gate`); never built. Told to
   Optuna as COMPLETE with a plausible accuracy (chance level) and a positive constraint, so TPE
   and NSGA-II learn to avoid the region (a FAIL would be invisible to TPE).
-* ``trained`` / ``stopped_early`` — trained; stopped early means it fell behind its peers
-  (:mod:`searcher.study.early_stop`).
+* ``trained`` / ``stopped_early`` — trained; stopped early means it fell behind candidates of
+  similar cost at a rung (:mod:`searcher.study.early_stop`).
 * ``failed`` — training diverged, or it ran past the per-candidate time limit.
 * ``interrupted`` — a signal, the run's time limit or a crash ended it; queued again once.
 * ``not_started`` — predicted not to finish in the time left; queued for the next run.
@@ -43,7 +43,7 @@ from searcher.results.records import ACCURACY, Metric
 from searcher.results.records import (
     DUPLICATE, FAILED, INTERRUPTED, NOT_STARTED, RECORD, REJECTED, STOPPED, TRAINED, describe, record_of,
 )
-from searcher.study.early_stop import Dominance, EarlyStop, Halving
+from searcher.study.early_stop import CostAwareHalving, EarlyStop
 from searcher.study.ending import Ending, StopReason, StopRequested, StopSignals
 from searcher.study.ledger import Ledger, Outcome
 from searcher.study.liveness import Heartbeat, Registry, claim, queue_retry, recover_stale
@@ -219,7 +219,7 @@ class Worker:
                                           deadline=deadline, progress=progress)
                 state, reason = TRAINED, ""
             except optuna.TrialPruned:
-                state, reason, result = STOPPED, f"behind its peers after epoch {len(progress.history)}", progress.result()
+                state, reason, result = STOPPED, (f"behind candidates of similar cost after epoch {len(progress.history)}"), progress.result()
             except Diverged as exc:
                 state, reason, result = FAILED, f"diverged: {exc.reason}", exc.result
             except OutOfTime as exc:
@@ -243,11 +243,11 @@ class Worker:
         return self._end(trial, record, state, reason, values=values, optuna_state=optuna_state)
 
     def _early_stop(self, trial: optuna.Trial, totals: dict) -> EarlyStop:
-        column = OBJECTIVES[self.objective]
-        if column is None:
-            return Halving(trial, self.settings.epochs)
-        return Dominance(lambda limit: self.ledger.histories_within(column, limit), totals[column],
-                         self.settings.epochs)
+        """Successive halving among candidates of similar cost: the objective's cost, else parameters."""
+        column = OBJECTIVES[self.objective] or "params"
+        single = OBJECTIVES[self.objective] is None  # Optuna takes intermediate scores in one-objective studies only
+        return CostAwareHalving(lambda rung: self.ledger.reached(rung, column), totals[column], self.settings.epochs,
+                                report=trial.report if single else None)
 
     # -- telling Optuna and the log ---------------------------------------------------------------
     def _values(self, accuracy: float, totals: dict) -> list[float]:
