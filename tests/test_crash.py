@@ -350,7 +350,8 @@ def test_recovery_queues_a_retry_that_a_kill_kept_from_being_queued() -> None:
         study.tell(trial, state=TrialState.FAIL)
         return trial.number
 
-    owed = [ended(INTERRUPTED), ended(NOT_STARTED)]
+    owed = [ended(INTERRUPTED)]
+    ended(NOT_STARTED)  # skipped for lack of time: the sampler may propose it again, no retry owed
     covered = ended(INTERRUPTED)
     study.enqueue_trial(dict(study.trials[covered].params), user_attrs={"retry_of": covered})
     retry = ended(INTERRUPTED)  # the next ask takes the queued copy: a retry, itself interrupted

@@ -47,6 +47,7 @@ class TrainResult:
     val_scores: Scores | None = None  # accuracy, balanced accuracy and recall per class after the last epoch
     val_accuracy_int8: float | None = None  # the int8 model's validation accuracy, when the trainer measured it
     int8_seconds: float = 0.0  # what measuring it took (quantizing and scoring)
+    val_predicted: np.ndarray | None = None  # predicted class per validation image after the last epoch
 
 
 @dataclass
@@ -60,13 +61,14 @@ class TrainProgress:
     seconds: float = 0.0  # wall time so far
     train_size: int = 0  # training images per epoch
     val_scores: Scores | None = None  # all validation scores of the last finished epoch
+    val_predicted: np.ndarray | None = None  # predicted class per validation image, last finished epoch
 
     def result(self) -> TrainResult:
         """The figures so far as a TrainResult."""
         speed = self.images_seen / self.train_seconds if self.train_seconds > 0 else 0.0
         last = self.val_scores.accuracy if self.val_scores is not None else math.nan
         return TrainResult(last, tuple(self.history), len(self.history), self.seconds, speed, self.train_loss,
-                           self.train_size, self.val_scores)
+                           self.train_size, self.val_scores, val_predicted=self.val_predicted)
 
 
 class TrainingStopped(Exception):
@@ -236,7 +238,8 @@ def train_candidate(
                     raise
                 progress.train_loss = loss
                 predicted = predict(model, val_images, settings.eval_batch_size, layout)
-                progress.val_scores = scores(val_labels.numpy(), predicted.numpy(), classes)
+                progress.val_predicted = predicted.numpy()
+                progress.val_scores = scores(val_labels.numpy(), progress.val_predicted, classes)
                 score = progress.val_scores.get(metric)
                 progress.history.append(score)
                 progress.seconds = time.monotonic() - started - waited

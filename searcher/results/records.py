@@ -7,6 +7,7 @@ study that another process (or machine) is still writing.
 
 from __future__ import annotations
 
+import base64
 import math
 import os
 import socket
@@ -14,6 +15,7 @@ import time
 from dataclasses import dataclass
 from typing import Any
 
+import numpy as np
 import optuna
 import pandas as pd
 from optuna.trial import TrialState
@@ -151,3 +153,20 @@ def best_row(frame: pd.DataFrame, caps: dict[str, int], metric: Metric = ACCURAC
     if rows.empty:
         return None
     return rows.sort_values([metric.column, "params"], ascending=[False, True]).iloc[0].to_dict()
+
+
+def pack_classes(classes: np.ndarray) -> str:
+    """Class numbers (one per validation image) as short text for a record: base64 of bytes, with the width.
+
+    >>> unpack_classes(pack_classes(np.array([0, 3, 2, 300]))).tolist()
+    [0, 3, 2, 300]
+    """
+    values = np.asarray(classes, np.int64).ravel()
+    dtype = "<u1" if not len(values) or values.max() < 256 else "<u2" if values.max() < 65536 else "<u4"
+    return f"{dtype[-2:]}:" + base64.b64encode(values.astype(dtype).tobytes()).decode("ascii")
+
+
+def unpack_classes(text: str) -> np.ndarray:
+    """The class numbers :func:`pack_classes` wrote."""
+    width, _, data = text.partition(":")
+    return np.frombuffer(base64.b64decode(data), f"<{width}").astype(np.int64)

@@ -24,7 +24,7 @@ from searcher.results.pareto import front
 from searcher.results.records import METRICS, Metric, best_row, counts, distinct_rows, trials_frame
 from searcher.results.report import write_report
 from searcher.runs import write_atomic
-from searcher.study.confirm import full_schedule, read_jobs
+from searcher.study.confirm import full_schedule, read_jobs, read_labels
 from searcher.study.storage import OBJECTIVES, RunConfig
 
 
@@ -60,7 +60,8 @@ def gather(name: str, study: optuna.Study, url: str, config: RunConfig, folder: 
     proxy = TrainSettings(**config.train)
     confirmed = None if jobs.empty else confirmation(frame, jobs, Budget(**config.budget).caps(),
                                                      OBJECTIVES[config.objective] or "params", tolerance,
-                                                     proxy.epochs, full_schedule(proxy).epochs, METRICS[config.metric])
+                                                     proxy.epochs, full_schedule(proxy).epochs, METRICS[config.metric],
+                                                     read_labels(name, url))
     split = folder / "split.npz"
     sizes = {part: len(indices) for part, indices in load_split(split)[0].items()} if split.exists() else {}
     return RunResults(name, config, frame, confirmed, sizes)

@@ -39,7 +39,7 @@ from searcher.data.load import load_dataset, load_split
 from searcher.model.build import build
 from searcher.model.train import TrainSettings, evaluate_scores, train_candidate
 from searcher.study.confirm import full_schedule
-from searcher.results.confirmed import check_tolerance, default_pick
+from searcher.results.confirmed import check_tolerance
 from searcher.results.records import FAILED, REJECTED, TRAINED, best_row
 from searcher.results.tables import RunResults, gather
 from searcher.ship.deploy_files import DeployReport, write_deploy_files
@@ -152,10 +152,7 @@ def choose(results: RunResults, settings: ExportSettings) -> Choice:
         how = (f"trial {settings.trial} ({row['state']}, proxy validation {results.metric.label} "
                f"{row[results.metric.column]:.4f}), named with --trial")
         return Choice(parse_arch(row["arch"]), settings.trial, how, str(row["state"]), facts(settings.trial))
-    pick = None
-    if results.confirmation is not None:
-        pick = default_pick(results.confirmation.table, results.budget.caps(), results.cost, settings.tolerance,
-                            results.metric)
+    pick = results.confirmation.pick if results.confirmation is not None else None  # gathered with --tolerance
     if pick is not None:
         return Choice(parse_arch(pick.arch), pick.trial, pick.reason, TRAINED, facts(pick.trial))
     best = best_row(frame, results.budget.caps(), results.metric)

@@ -19,6 +19,7 @@ from dataclasses import dataclass, replace
 from pathlib import Path
 from typing import Callable
 
+import numpy as np
 import optuna
 import pandas as pd
 from optuna.trial import TrialState
@@ -28,10 +29,11 @@ from searcher.core.budget import Budget
 from searcher.core.cost import cost
 from searcher.core.train_settings import TrainSettings
 from searcher.model.train import Diverged, OutOfTime, TrainProgress
-from searcher.results.confirmed import ConfirmSettings, cost_columns, select
+from searcher.results.confirmed import ConfirmSettings, confirmation, cost_columns, select
 from searcher.results.records import ACCURACY, Metric
 from searcher.results.records import (
-    DUPLICATE, FAILED, INTERRUPTED, NOT_STARTED, RECORD, TRAINED, TRAINING, record_of, trials_frame,
+    DUPLICATE, FAILED, INTERRUPTED, NOT_STARTED, RECORD, TRAINED, TRAINING, pack_classes, record_of, trials_frame,
+    unpack_classes,
 )
 from searcher.study.ending import Ending, StopReason, StopRequested, StopSignals
 from searcher.study.liveness import Heartbeat, Registry, claim, queue_retry, recover_stale
@@ -44,6 +46,7 @@ log = logging.getLogger(__name__)
 
 EMPTY = "empty"  # a trial asked when another worker had just taken the last queued job: nothing to do
 SCORES = ("val_accuracy", "val_balanced_accuracy", "val_accuracy_int8")  # each job's scores, as confirmed.csv reads them
+VAL_LABELS = "val_labels"  # the confirmation study's attribute holding the validation labels
 
 
 def confirm_name(name: str) -> str:
@@ -86,21 +89,41 @@ def jobs_frame(study: optuna.Study | None) -> pd.DataFrame:
         state = "running" if t.state == TrialState.RUNNING else "queued" if t.state == TrialState.WAITING \
             else record.get("state", FAILED)
         scores = {key: (record.get(key) if state == TRAINED else None) for key in SCORES}
+        predicted = record.get("val_predicted") if state == TRAINED else None
         rows.append({"job": t.number, "trial": record["trial"], "seed_index": record["seed_index"], "state": state,
                      **{key: math.nan if value is None else value for key, value in scores.items()},
                      "reason": record.get("chosen", ""), "train_seconds": record.get("train_seconds", 0.0),
-                     "history": record.get("history", [])})
+                     "history": record.get("history", []),
+                     "predicted": None if predicted is None else unpack_classes(predicted)})
     return pd.DataFrame(rows, columns=["job", "trial", "seed_index", "state", *SCORES, "reason", "train_seconds",
-                                       "history"])
+                                       "history", "predicted"])
+
+
+def keep_labels(study: optuna.Study, labels: np.ndarray) -> None:
+    """Store the validation labels on the confirmation study once: with each job's predictions, what
+    the paired comparison of two candidates needs, on any machine that reads the store."""
+    if VAL_LABELS not in study.user_attrs:
+        study.set_user_attr(VAL_LABELS, pack_classes(labels))
+
+
+def read_labels(name: str, url: str) -> np.ndarray | None:
+    """The validation labels :func:`keep_labels` stored for run ``name``; None before any (or for older runs)."""
+    storage = open_storage(url, create=False)
+    if confirm_name(name) not in {s.study_name for s in optuna.get_all_study_summaries(storage)}:
+        return None
+    packed = optuna.load_study(study_name=confirm_name(name), storage=storage).user_attrs.get(VAL_LABELS)
+    return None if packed is None else unpack_classes(packed)
 
 
 def plan(study: optuna.Study, main: optuna.Study, budget: Budget, objective: str, val_images: int,
-         settings: ConfirmSettings, seed: int, metric: Metric = ACCURACY) -> int:
+         settings: ConfirmSettings, seed: int, metric: Metric = ACCURACY, more_seeds: int = 0) -> int:
     """Queue every job of the current selection that has no trial yet; the number queued.
 
     The order serves a time box that cuts confirmation short: the first two seeds of each candidate
     together, most important candidate first (two seeds give a spread, and the default pick needs
-    them), then the further seeds round by round.
+    them), then the further seeds round by round. With ``more_seeds``, the candidates the default
+    pick chooses between (those not credibly below the best) get that many seeds beyond
+    ``settings.seeds``: time a box has left sharpens the pick.
     """
     frame = trials_frame(main)
     chosen = select(frame, budget.caps(), cost_columns(budget.caps(), OBJECTIVES[objective]), val_images,
@@ -110,12 +133,20 @@ def plan(study: optuna.Study, main: optuna.Study, budget: Budget, objective: str
         params = t.params or queued_params(t) or {}
         if "trial" in params and not (t.state == TrialState.FAIL and record_of(t).get("state") in (INTERRUPTED, NOT_STARTED)):
             have.add((params["trial"], params["seed_index"]))
-    queued = 0
     order = [(trial, why, index) for trial, why in chosen for index in range(min(2, settings.seeds))]
     order += [(trial, why, index) for index in range(2, settings.seeds) for trial, why in chosen]
+    if more_seeds:
+        jobs = jobs_frame(study)
+        packed = study.user_attrs.get(VAL_LABELS)
+        found = confirmation(frame, jobs, budget.caps(), OBJECTIVES[objective] or "params", settings.tolerance, 1, 2,
+                             metric, None if packed is None else unpack_classes(packed))
+        order += [(trial, "within noise of the best", index)
+                  for index in range(settings.seeds, settings.seeds + more_seeds) for trial in found.within]
+    queued = 0
     for trial, why, index in order:
         if (trial, index) not in have:
             study.enqueue_trial({"trial": trial, "seed_index": index}, user_attrs={"chosen": why})
+            have.add((trial, index))
             queued += 1
     return queued
 
@@ -159,11 +190,7 @@ class Confirmer:
         registry = Registry(self.plan.run_folder) if self.plan.run_folder else contextlib.nullcontext()
         with registry as self.registry:
             while (stop := self.stop_reason()) is None:
-                state = self.step()
-                if state == NOT_STARTED:
-                    stop = StopReason(Ending.TIME_NEAR, "time limit near: the next confirmation would not finish "
-                                                        "in time (queued for the next run)")
-                    break
+                state = self.step()  # a job predicted not to finish is put back at the end of the queue once
                 if state == INTERRUPTED:
                     stop = self.stop_reason() or StopReason(Ending.TIME_LIMIT, "time limit reached")
                     break
@@ -242,6 +269,8 @@ class Confirmer:
             self.tally.trained += state == TRAINED
         record |= scores_of(result) | {"history": list(result.history), "train_seconds": round(result.seconds, 3),
                                        "epochs": result.epochs, "seed": seed}
+        if state == TRAINED and result.val_predicted is not None:  # what the paired comparison resamples
+            record["val_predicted"] = pack_classes(result.val_predicted)
         score = result.history[-1] if result.history else math.nan  # the run's metric, as the search told it
         record["score"] = score if math.isfinite(score) else None
         return self._end(trial, record, state, reason, TrialState.COMPLETE if state == TRAINED and record["score"]

@@ -9,11 +9,14 @@ from __future__ import annotations
 import logging
 import multiprocessing
 import os
-from dataclasses import asdict, dataclass, replace
+from dataclasses import asdict, dataclass, field, replace
 from pathlib import Path
 
+import numpy as np
+
 from searcher.core.budget import Budget, show_cost
-from searcher.core.census_report import CensusSettings, run_census
+from searcher.core.census_report import Census, CensusSettings, run_census
+from searcher.core.cost import cost
 from searcher.core.space import Space
 from searcher.core.space_file import load_space
 from searcher.core.train_settings import TrainSettings
@@ -23,6 +26,7 @@ from searcher.data.load import (
 from searcher.errors import SearcherError, check_int, check_number, one_of, shown
 from searcher.limits import MAX_CAP, MAX_MINUTES, MAX_SEED, MAX_TRIALS, MAX_WORKERS
 from searcher.results.confirmed import ConfirmSettings
+from searcher.results.pareto import COST_COLUMNS
 from searcher.results.records import METRICS
 from searcher.runs import RUNS, run_folder
 from searcher.study.storage import OBJECTIVES, SAMPLERS, RunConfig, storage_kind, storage_url
@@ -111,6 +115,8 @@ class PreparedRun:
     config: RunConfig
     folder: Path
     url: str
+    least_macs: int | None = None  # MACs of the space's cheapest candidate within the caps (from the census)
+    fitting_medians: dict[str, float] = field(default_factory=dict)  # median of each cost over the fitting candidates
 
 
 def prepare(settings: SearchSettings, budget: dict | None = None, train: dict | None = None) -> PreparedRun:
@@ -132,7 +138,7 @@ def prepare(settings: SearchSettings, budget: dict | None = None, train: dict | 
         log.warning("skipped %d unreadable image file(s) in %s", dataset.skipped, settings.data)
     if found := few_examples(dataset):
         log.warning("%s", describe_few_examples(found))
-    _check_something_fits(space, budget, dataset.num_classes)
+    census = _check_something_fits(space, budget, dataset.num_classes)
     config = RunConfig(
         space_name=space.name, space_text=Path(space.file).read_text(encoding="utf-8"),
         budget=asdict(budget), train=asdict(train_settings), data=settings.data,
@@ -140,17 +146,21 @@ def prepare(settings: SearchSettings, budget: dict | None = None, train: dict | 
         objective=settings.objective, seed=settings.seed, metric=settings.metric,
     )
     url = storage_url(settings.storage, folder)
-    return PreparedRun(settings, space, budget, train_settings, RunData(dataset), config, folder, url)
+    medians = {column: float(np.median(values[census.fits])) for column, values in census.costs.items()
+               if column in COST_COLUMNS}
+    return PreparedRun(settings, space, budget, train_settings, RunData(dataset), config, folder, url,
+                       cost(census.cheapest).macs, medians)
 
 
-def _check_something_fits(space: Space, budget: Budget, classes: int) -> None:
-    """Refuse a search in which nothing can fit, and say how far off the caps are."""
+def _check_something_fits(space: Space, budget: Budget, classes: int) -> Census:
+    """Refuse a search in which nothing can fit, and say how far off the caps are; the census otherwise."""
     census = run_census(space, budget, CensusSettings(samples=20_000, exact_limit=50_000, classes=classes))
     if not census.fits.any():
         lowest = "; ".join(f"{c} ≥ {show_cost(c, census.lowest[c])} (cap {show_cost(c, v)})"
                            for c, v in budget.caps().items())
         raise SearcherError(f"no candidate of space {space.name!r} fits the budget: {lowest}; "
                             f"loosen the caps or allow smaller networks", file=space.file, key="budget")
+    return census
 
 
 def default_memory_cap(workers: int) -> int:

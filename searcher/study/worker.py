@@ -9,7 +9,9 @@ Each proposal ends in one state (the ``state`` column of trials.csv):
   similar cost at a rung (:mod:`searcher.study.early_stop`).
 * ``failed`` — training diverged, or it ran past the per-candidate time limit.
 * ``interrupted`` — a signal, the run's time limit or a crash ended it; queued again once.
-* ``not_started`` — predicted not to finish in the time left; queued for the next run.
+* ``not_started`` — predicted not to finish in the time left; skipped, and the loop goes on with
+  the next proposal (a smaller candidate may well fit). The phase ends when not even the space's
+  cheapest fitting candidate would finish, or after MAX_TOO_LONG such proposals in a row.
 * ``duplicate`` — another worker was training the same architecture at that moment.
 
 A proposal of an architecture that was already trained, stopped early or failed takes that
@@ -53,6 +55,7 @@ from searcher.study.timebox import Throughput
 log = logging.getLogger(__name__)
 
 MAX_IDLE_PROPOSALS = 300  # stop after this many proposals in a row that could not be trained
+MAX_TOO_LONG = 25  # end the phase after this many proposals in a row predicted not to finish in the time left
 RECOVER_SECONDS = 30.0  # how often a running worker looks for trials that dead workers left running
 REPEAT = "repeat"  # what step() returns for a proposal that reused a known outcome
 _IDLE = (REJECTED, DUPLICATE, REPEAT)  # proposals that trained nothing
@@ -85,6 +88,7 @@ class WorkerPlan:
     run_folder: Path | None = None  # given when every worker of the study runs on this machine
     flush: Callable[[], None] | None = None  # puts what the store has committed on disk (storage.disk_flush)
     reserve: Callable[[Ledger, Throughput], float] | None = None  # seconds of the time box kept for confirmation
+    least_macs: int | None = None  # MACs of the space's cheapest candidate within the caps (the census's)
 
 
 @dataclass
@@ -118,24 +122,22 @@ class Worker:
         self.signals.install()
         registry = Registry(self.plan.run_folder) if self.plan.run_folder else contextlib.nullcontext()
         with registry as self.registry:
-            idle = 0
-            while (stop := self.stop_reason(idle)) is None:
+            idle = too_long = 0
+            while (stop := self.stop_reason(idle, too_long)) is None:
                 state = self.step()
                 self.tally.proposals.append(state)
                 if self.on_proposal is not None:
                     self.on_proposal(state, self.tally, self.ledger)
                 idle = idle + 1 if state in _IDLE else 0
-                if state in (NOT_STARTED, INTERRUPTED):  # say why (a signal sets the exit status)
-                    stop = self.stop_reason(idle) or (
-                        StopReason(Ending.TIME_NEAR, "time limit near: the next candidate would not finish in "
-                                                     "time (queued for the next run)")
-                        if state == NOT_STARTED else
-                        StopReason(Ending.TIME_LIMIT, "interrupted during training (queued for the next run)"))
+                too_long = too_long + 1 if state == NOT_STARTED else 0 if state not in _IDLE else too_long
+                if state == INTERRUPTED:  # say why (a signal sets the exit status)
+                    stop = self.stop_reason(idle) or StopReason(
+                        Ending.TIME_LIMIT, "interrupted during training (queued for the next run)")
                     break
         self.tally.stop = stop
         return self.tally
 
-    def stop_reason(self, idle: int = 0) -> StopReason | None:
+    def stop_reason(self, idle: int = 0, too_long: int = 0) -> StopReason | None:
         """Why the loop must stop now, or None; looks for dead workers' trials every RECOVER_SECONDS."""
         if self.signals.received:
             return StopReason.by_signal(self.signals.received)
@@ -143,6 +145,10 @@ class Worker:
             return StopReason(Ending.TIME_LIMIT, "time limit reached")
         if self.plan.deadline is not None and time.time() >= self.plan.deadline - self._reserve():
             return StopReason(Ending.TIME_NEAR, "the rest of the time box is kept for confirming the front")
+        if self.plan.deadline is not None and (too_long >= MAX_TOO_LONG or self._nothing_fits_in_time()):
+            return StopReason(Ending.TIME_NEAR, "time limit near: " + (
+                f"{too_long} proposals in a row were predicted not to finish in the time left" if too_long >= MAX_TOO_LONG
+                else "not even the space's cheapest candidate would finish in the time left"))
         if self.plan.parent_pid is not None and os.getppid() != self.plan.parent_pid:
             return StopReason(Ending.PARENT_GONE, "parent process gone")
         if idle >= MAX_IDLE_PROPOSALS:
@@ -186,11 +192,17 @@ class Worker:
         left = None if self.plan.deadline is None else self.plan.deadline - self._reserve() - time.time()
         predicted = self.predicted_seconds(verdict.totals["macs"])
         if left is not None and predicted is not None and predicted > left:
-            queue_retry(self.study, trial)
             return self._end(trial, record, NOT_STARTED,
-                             f"predicted {predicted:.0f} s of training but {left:.0f} s left; queued for the next run",
+                             f"predicted {predicted:.0f} s of training but {left:.0f} s left; skipped",
                              optuna_state=TrialState.FAIL)
         return self._train(trial, arch, verdict.totals, record)
+
+    def _nothing_fits_in_time(self) -> bool:
+        """True when the time left (less the confirmation's reserve) is shorter than the cheapest candidate's prediction."""
+        if self.plan.least_macs is None:
+            return False
+        predicted = self.predicted_seconds(self.plan.least_macs)
+        return predicted is not None and predicted > self.plan.deadline - self._reserve() - time.time()
 
     def _reserve(self) -> float:
         return 0.0 if self.plan.reserve is None else self.plan.reserve(self.ledger, self.tally.throughput)
