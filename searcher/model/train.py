@@ -48,6 +48,7 @@ class TrainResult:
     val_accuracy_int8: float | None = None  # the int8 model's validation accuracy, when the trainer measured it
     int8_seconds: float = 0.0  # what measuring it took (quantizing and scoring)
     val_predicted: np.ndarray | None = None  # predicted class per validation image after the last epoch
+    threads: int | None = None  # torch threads it trained with, when the caller chose them
 
 
 @dataclass

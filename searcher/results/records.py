@@ -27,7 +27,7 @@ RECORD = "searcher"
 HEARTBEAT = "heartbeat"
 COLUMNS = (
     "trial", "arch", "state", "reason", "rejected_by", "val_accuracy", "val_balanced_accuracy", "val_accuracy_int8",
-    "val_recall", "train_seconds", "int8_seconds", "epochs",
+    "val_recall", "train_seconds", "int8_seconds", "threads", "epochs",
     "params", "macs", "peak_activation_bytes", "weight_bytes", "training_bytes",
     "stages", "convs", "first_width", "last_width", "worker", "retry_of", "repeat_of",
 )

@@ -40,7 +40,7 @@ from searcher.model.build import build
 from searcher.model.train import TrainSettings, evaluate_scores, train_candidate
 from searcher.study.confirm import full_schedule
 from searcher.results.confirmed import check_tolerance
-from searcher.results.records import FAILED, REJECTED, TRAINED, best_row
+from searcher.results.records import FAILED, REJECTED, SCORED, TRAINED, best_row
 from searcher.results.tables import RunResults, gather
 from searcher.ship.deploy_files import DeployReport, write_deploy_files
 from searcher.runs import RUNS, run_folder
@@ -224,7 +224,9 @@ def export(settings: ExportSettings) -> ExportOutcome:
     extra = {"run": settings.name, "how": how, "trial": choice.trial, "confirmed": choice.confirmed, "epochs": epochs,
              "train_seconds": result.seconds, "train_size": len(labels),
              "sizes": {p: len(getattr(data, p).labels) for p in ("train", "val", "test")},
-             "settings": asdict(train_settings), "budget": budget, "config": config}
+             "settings": asdict(train_settings), "budget": budget, "config": config,
+             "noise": None if results.confirmation is None else results.confirmation.noise_words(),
+             "candidates": int(results.frame["state"].isin(SCORED).sum())}
     _write(outcome, model, extra, data)
     log.info("exported %s: %s on %d held-out images (%.0f s in all)", arch, outcome.scores_line(),
              len(data.test.labels), time.time() - started)

@@ -97,6 +97,14 @@ def model_card(outcome: Any, extra: dict) -> str:
                  f"\nConfirmed before export: validation {facts['metric'].replace('_', ' ')} {facts['mean']:.4f} ± "
                  f"{facts['sd']:.4f} (mean ± sd) "
                  f"over {facts['seeds']} seeds of the full schedule on the training split.")
+    if extra.get("noise"):
+        confirmed += f" Among the confirmed candidates, {extra['noise']}."
+    test_score = outcome.test_balanced_accuracy if facts and facts["metric"] == "balanced_accuracy" else outcome.test_accuracy
+    optimism = (f"\nQuote the test figure, not a validation one: this candidate was chosen as the best of "
+                f"{extra.get('candidates', 'many'):,} validation scores, and the best of many scores on one set of "
+                f"images leans high (the images it happened to get right helped it win)"
+                + (f"; here validation {facts['mean']:.4f} against test {test_score:.4f}." if facts else ".")
+                if isinstance(extra.get("candidates"), int) and extra["candidates"] > 1 else "")
     return f"""# Model card: `{arch.to_text()}`
 
 ## What it is
@@ -126,6 +134,7 @@ The test split was not used by the search or by this training.
 
 fp32: 95% interval {low:.4f}–{high:.4f} (Wilson's score interval at {sizes['test']} images).
 {confirmed}
+{optimism}
 
 Per class, fp32:
 

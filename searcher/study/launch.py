@@ -14,18 +14,20 @@ from typing import Callable
 
 import optuna
 import pandas as pd
+import torch
 
 from searcher.core.arch import Arch
 from searcher.core.train_settings import TrainSettings
+from searcher.int8.check import int8_accuracy
+from searcher.limits import MAX_CONFIRM_SEEDS
 from searcher.model.build import build
 from searcher.model.train import TrainProgress, TrainResult, train_candidate
-from searcher.int8.check import int8_accuracy
 from searcher.results.confirmed import ConfirmSettings, cost_columns, select
-from searcher.limits import MAX_CONFIRM_SEEDS
-from searcher.results.records import METRICS, SPENT, REJECTED, TRAINED
+from searcher.results.records import METRICS, REJECTED, SPENT, TRAINED
 from searcher.study.confirm import (
     ConfirmPlan, Confirmer, ConfirmTally, full_schedule, keep_labels, open_confirm_study, plan, read_jobs,
 )
+from searcher.study.cpu_share import CpuShare
 from searcher.study.ending import Ending, Phases, StopReason
 from searcher.study.ledger import Ledger
 from searcher.study.run import PreparedRun, RunData, default_memory_cap
@@ -50,18 +52,24 @@ class TorchTrainer:
     threads: int | None = None  # torch threads while training; None leaves torch's setting alone
     metric: str = "accuracy"  # the validation score reported each epoch
     int8: bool = False  # measure the int8 validation accuracy after training
+    share: CpuShare | None = None  # when given, the threads of each candidate: the cores other programs leave free
 
     @classmethod
     def for_run(cls, run: PreparedRun, threads: int | None = None) -> TorchTrainer:
-        return cls(run.data, run.train, threads, run.settings.metric, run.budget.weight_precision == "int8")
+        """The run's trainer; each candidate trains with at most ``threads`` (default: torch's count), fewer
+        while other programs keep cores busy (:mod:`searcher.study.cpu_share`)."""
+        share = CpuShare(limit=threads or torch.get_num_threads())
+        return cls(run.data, run.train, threads, run.settings.metric, run.budget.weight_precision == "int8", share)
 
     def __call__(self, arch: Arch, *, seed: int, on_epoch: Callable[[int, float], None], deadline: float | None,
                  progress: TrainProgress) -> TrainResult:
         split = self.data.at(arch.input_shape)
         model = build(arch)
+        threads = self.share.threads() if self.share is not None else self.threads
         result = train_candidate(model, split.train.images, split.train.labels, split.val.images, split.val.labels,
-                                 self.settings, seed=seed, on_epoch=on_epoch, deadline=deadline, threads=self.threads,
+                                 self.settings, seed=seed, on_epoch=on_epoch, deadline=deadline, threads=threads,
                                  progress=progress, metric=self.metric, classes=self.data.num_classes)
+        result = replace(result, threads=threads)
         if not self.int8:
             return result
         started = time.monotonic()

@@ -248,7 +248,7 @@ class Worker:
             self.tally.throughput.add(totals["macs"], progress.images_seen, result.seconds)
         record.update(scores_of(result), history=[_finite(h) for h in result.history],
                       train_seconds=round(result.seconds, 3), epochs=result.epochs,
-                      int8_seconds=round(result.int8_seconds, 3))
+                      int8_seconds=round(result.int8_seconds, 3), threads=result.threads)
         optuna_state = {TRAINED: TrialState.COMPLETE, STOPPED: TrialState.PRUNED}.get(state, TrialState.FAIL)
         score = result.history[-1] if result.history else math.nan  # the metric's score after the last epoch
         values = self._values(score, totals) if state == TRAINED else None
