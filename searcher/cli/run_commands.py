@@ -33,6 +33,8 @@ def cmd_search(args: argparse.Namespace, space_path, budget_of) -> int:
         print("share of proposals rejected, per 50: " + ", ".join(f"{s:.0%}" for s in outcome.rejected_share))
     if outcome.rejected_by:
         print("rejected by: " + ", ".join(f"{k} {v}" for k, v in outcome.rejected_by.items()))
+    if outcome.spread:
+        print(outcome.spread)
     if outcome.best:
         b = outcome.best
         print(f"best fitting by the proxy: trial {b['trial']} {outcome.metric.label} {b[outcome.metric.column]:.4f} "
@@ -44,6 +46,7 @@ def cmd_search(args: argparse.Namespace, space_path, budget_of) -> int:
     if confirmed is not None:
         print(f"confirmed {int((confirmed.table['seeds'] > 0).sum())} candidate(s) with the export's schedule; "
               + confirmed.advice())
+        print(confirmed.noise_words())
         if confirmed.pick is not None:
             print(f"export will take: {confirmed.pick.reason}")
         if confirmed.queued:

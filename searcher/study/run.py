@@ -9,10 +9,8 @@ from __future__ import annotations
 import logging
 import multiprocessing
 import os
-from dataclasses import asdict, dataclass, field, replace
+from dataclasses import asdict, dataclass, replace
 from pathlib import Path
-
-import numpy as np
 
 from searcher.core.budget import Budget, show_cost
 from searcher.core.census_report import Census, CensusSettings, run_census
@@ -26,7 +24,6 @@ from searcher.data.load import (
 from searcher.errors import SearcherError, check_int, check_number, one_of, shown
 from searcher.limits import MAX_CAP, MAX_MINUTES, MAX_SEED, MAX_TRIALS, MAX_WORKERS
 from searcher.results.confirmed import ConfirmSettings
-from searcher.results.pareto import COST_COLUMNS
 from searcher.results.records import METRICS
 from searcher.runs import RUNS, run_folder
 from searcher.study.storage import OBJECTIVES, SAMPLERS, RunConfig, storage_kind, storage_url
@@ -116,7 +113,6 @@ class PreparedRun:
     folder: Path
     url: str
     least_macs: int | None = None  # MACs of the space's cheapest candidate within the caps (from the census)
-    fitting_medians: dict[str, float] = field(default_factory=dict)  # median of each cost over the fitting candidates
 
 
 def prepare(settings: SearchSettings, budget: dict | None = None, train: dict | None = None) -> PreparedRun:
@@ -146,10 +142,8 @@ def prepare(settings: SearchSettings, budget: dict | None = None, train: dict | 
         objective=settings.objective, seed=settings.seed, metric=settings.metric,
     )
     url = storage_url(settings.storage, folder)
-    medians = {column: float(np.median(values[census.fits])) for column, values in census.costs.items()
-               if column in COST_COLUMNS}
     return PreparedRun(settings, space, budget, train_settings, RunData(dataset), config, folder, url,
-                       cost(census.cheapest).macs, medians)
+                       cost(census.cheapest).macs)
 
 
 def _check_something_fits(space: Space, budget: Budget, classes: int) -> Census:

@@ -47,6 +47,7 @@ class SearchOutcome:
     confirm_seconds: float = 0.0  # wall time of the confirmation that followed
     confirmation: Confirmation | None = None  # what confirmation found (None when it is off or nothing ran)
     metric: Metric = ACCURACY  # the score the search ranked by
+    spread: str = ""  # how the trained candidates spread over cost, in one line
 
     @property
     def exit_status(self) -> int:
@@ -95,7 +96,7 @@ def finish(run: PreparedRun, study: optuna.Study, phases: Phases, seconds: float
     rejected_by = frame.loc[frame["state"] == REJECTED, "rejected_by"].value_counts().to_dict()
     return SearchOutcome(run.folder, counts(frame), best_row(frame, run.budget.caps(), results.metric), phases.stop, share,
                          {str(k): int(v) for k, v in rejected_by.items()}, seconds, phases.proxy_seconds,
-                         phases.confirm_seconds, results.confirmation, results.metric)
+                         phases.confirm_seconds, results.confirmation, results.metric, results.spread_words())
 
 
 RESULT_FILES = ("trials.csv", "front.csv", "confirmed.csv", "summary.json", "report.html", "run.json", "search.log",
