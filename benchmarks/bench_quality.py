@@ -273,7 +273,8 @@ FIGURES = ("hv", "test", "params", "macs", "trained", "below", "above", "used")
 def summarise(rows: list[dict]) -> pd.DataFrame:
     """Mean and sd over seeds per (data, minutes, method), and each mean as a ratio to the default's."""
     frame = pd.DataFrame(rows)
-    grouped = frame.groupby(["data", "minutes", "method"], sort=False)[list(FIGURES)]
+    frame["method"] = pd.Categorical(frame["method"], categories=[m for m in METHODS if m in set(frame["method"])])
+    grouped = frame.groupby(["data", "minutes", "method"], observed=True)[list(FIGURES)]
     table = grouped.mean().join(grouped.std(ddof=1).add_suffix("_sd")).join(grouped.size().rename("seeds"))
     for figure in ("hv", "test", "params", "trained"):
         default = table[figure].xs("default", level="method") if "default" in set(frame["method"]) else None
@@ -345,7 +346,8 @@ def run_all(todo: list[Job], sets: dict[str, DataSet], root: Path, trials: int, 
                 try:
                     row = future.result()
                 except Exception as exc:  # one failed search must not lose the others
-                    print(f"FAILED {job.key}: {type(exc).__name__}: {exc}", flush=True)
+                    where = [line for line in str(exc.__cause__ or "").splitlines() if line.strip(' "')][-3:]  # the child's traceback
+                    print(f"FAILED {job.key}: {type(exc).__name__}: {exc}", *where, sep="\n  ", flush=True)
                     continue
                 if row is not None:
                     append_row(out, row)
