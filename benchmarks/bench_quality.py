@@ -24,8 +24,8 @@ export apply to it, in the same box). Data sets: ``demo`` (README's first comman
 (examples/make_lot_codes.py: bigger nets really are better there). Every search may train as many
 candidates as its box allows: the box, not a trial count, ends it.
 
-Each search runs in its own process with one torch thread; ``--jobs 2`` runs two side by side on two
-cores, methods interleaved so that load hits them alike. Every finished row is appended to ``--out``
+Each search runs in its own process with one torch thread; ``--jobs 2`` (the default, 1 with ``--quick``)
+runs two side by side on two cores, methods interleaved so that load hits them alike. Every finished row is appended to ``--out``
 (JSON lines) as it finishes; run the same command again to resume: rows already there are skipped.
 Runs go under runs/bench-quality/, each in a folder of its own. The figures are noisy on a shared
 machine: read the spread over seeds before a ratio.
@@ -364,6 +364,13 @@ def ints(text: str) -> list[int]:
     return [int(x) for x in text.split(",") if x]
 
 
+def positive(text: str) -> int:
+    value = int(text)
+    if value < 1:
+        raise argparse.ArgumentTypeError(f"must be at least 1, got {text!r}")
+    return value
+
+
 def names(allowed: tuple[str, ...]):
     def parse(text: str) -> list[str]:
         chosen = [x for x in text.split(",") if x]
@@ -382,14 +389,16 @@ def main() -> int:
     parser.add_argument("--boxes", type=floats, help="time boxes in minutes, default 4,16")
     parser.add_argument("--seeds", type=ints, help="default 0,1,2")
     parser.add_argument("--methods", type=names(METHODS), default=list(METHODS), help="default default,random,sweep")
-    parser.add_argument("--jobs", type=int, default=2, help="searches at once, one torch thread each (default 2)")
-    parser.add_argument("--trials", type=int, default=NO_LIMIT, help="trial limit of each search (default none: the box)")
+    parser.add_argument("--jobs", type=positive, help="searches at once, one torch thread each (default 2; with "
+                                                      "--quick 1, so that each of its three searches runs alone)")
+    parser.add_argument("--trials", type=positive, default=NO_LIMIT, help="trial limit of each search (default none: the box)")
     parser.add_argument("--out", type=Path, help="JSON lines file the rows are appended to, and resumed from "
                                                  "(default a new file under runs/bench-quality/)")
     args = parser.parse_args()
     data = args.data or (["demo"] if args.quick else ["demo", "digits", "lot-codes"])
     boxes = args.boxes or ([2.0] if args.quick else [4.0, 16.0])
     seeds = args.seeds or ([0] if args.quick else [0, 1, 2])
+    jobs = args.jobs or (1 if args.quick else 2)
     out = args.out or RUNS / f"quality-{time.strftime('%Y%m%d-%H%M%S')}.jsonl"
     out.parent.mkdir(parents=True, exist_ok=True)
     sets = data_sets(RUNS / "data")
@@ -399,12 +408,12 @@ def main() -> int:
     have = {row["key"]: row for row in read_rows(out)}
     todo = [job for job in wanted if job.key not in have]
     print(f"{os.cpu_count()} cores; load average before: {' '.join(f'{x:.2f}' for x in os.getloadavg())}")
-    print(f"{len(wanted)} searches wanted, {len(wanted) - len(todo)} already in {out}; {args.jobs} at a time")
+    print(f"{len(wanted)} searches wanted, {len(wanted) - len(todo)} already in {out}; {jobs} at a time")
     started = time.time()
     rows = [have[job.key] for job in wanted if job.key in have]
     status = 0
     try:
-        for row in run_all(todo, sets, RUNS, args.trials, args.jobs, out):
+        for row in run_all(todo, sets, RUNS, args.trials, jobs, out):
             rows.append(row)
             print(f"done {row['key']}: hv {row['hv']:.4f}, test {row['test']:.4f} at {row['params']:,} params, "
                   f"{row['trained']} trained ({row['below']} below the median cost), {row['seconds'] / 60:.1f} min "
