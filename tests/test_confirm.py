@@ -79,6 +79,16 @@ def test_confirmed_table_means_and_spread_of_the_seeds():
         assert column in table.columns
 
 
+def test_jobs_none_of_which_finished_make_an_empty_table():
+    """Regression: with jobs queued but none finished, the table had a row of NaN seeds per job's candidate,
+    and export died converting NaN to an integer."""
+    frame = _frame([(0, 0.70, 100), (1, 0.80, 200)])
+    jobs = _jobs({0: [math.nan], 1: [math.nan, math.nan]}).assign(state="queued")
+    table = confirmed_table(jobs, frame)
+    assert table.empty
+    assert confirmation(frame, jobs, {}, "params", None, 1, 10).pick is None
+
+
 def test_default_pick_is_the_cheapest_within_noise_of_the_best():
     frame = _frame([(0, 0.83, 3404), (1, 0.94, 16244), (2, 0.80, 1000)])
     table = confirmed_table(_jobs({0: [0.945, 0.947, 0.946], 1: [0.95, 0.948, 0.946], 2: [0.90, 0.91, 0.905]}), frame)

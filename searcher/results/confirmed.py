@@ -105,7 +105,7 @@ def confirmed_table(jobs: pd.DataFrame, frame: pd.DataFrame) -> pd.DataFrame:
     for m in METRICS.values():
         table[m.mean], table[m.sd] = grouped[m.column].mean(), grouped[m.column].std(ddof=1)
     table["accuracy_int8_mean"] = grouped["val_accuracy_int8"].mean()
-    table["chosen_because"] = jobs.groupby("trial")["reason"].first()
+    table["chosen_because"] = jobs.groupby("trial")["reason"].first().reindex(table.index)  # finished ones only
     trials = frame.set_index("trial")
     proxies = {m.column: m.proxy for m in METRICS.values()}
     table = table.join(trials[["arch", *proxies, *COST_COLUMNS]].rename(columns=proxies))
