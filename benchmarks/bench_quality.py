@@ -16,7 +16,8 @@ row is measured:
   fewer parameters than the median of the space's fitting candidates (the census), and how many not;
 * ``used`` — the search's wall time as a share of its box.
 
-Methods: ``default`` (whatever ``SearchSettings()`` samples with), ``random`` (Optuna's random sampler),
+Methods: ``default`` (whatever ``SearchSettings()`` samples with), ``single`` (TPE on the score alone,
+the default before accuracy-against-parameters became it), ``random`` (Optuna's random sampler),
 ``sweep`` (a plain baseline: fitting candidates evenly spaced over parameters, queued into the run's own
 study in an order whose every prefix is evenly spread, so the same schedule, pruning, confirmation and
 export apply to it, in the same box). Data sets: ``demo`` (README's first command's space), ``digits``
@@ -62,7 +63,7 @@ from searcher.results.pareto import feasible_mask, hypervolume, reference_cost  
 from searcher.runs import write_atomic  # noqa: E402
 
 RUNS = ROOT / "runs" / "bench-quality"
-METHODS = ("default", "random", "sweep")
+METHODS = ("default", "single", "random", "sweep")
 NO_LIMIT = MAX_TRIALS  # --trials: the box ends every search, not a count
 SWEEP_PER_MINUTE = 40  # candidates queued for the sweep per minute of box, more than any run here trains
 COST = "params"  # the cost the front, the sweep and the spread are measured in
@@ -208,7 +209,8 @@ def run_one(job: Job, data: DataSet, root: Path, trials: int) -> dict | None:
     torch.set_num_threads(1)
     logging.basicConfig(level=logging.WARNING, format=f"[{job.key}] %(message)s")
     name = f"{job.data}-{job.minutes:g}m-s{job.seed}-{job.method}-{time.strftime('%m%d%H%M%S')}-{uuid.uuid4().hex[:6]}"
-    options = {"sampler": "random"} if job.method in ("random", "sweep") else {}
+    options = ({"sampler": "random"} if job.method in ("random", "sweep") else
+               {"sampler": "tpe", "objective": "accuracy"} if job.method == "single" else {})
     settings = searcher.SearchSettings(name=name, space=str(data.space), data=data.source, trials=trials,
                                        minutes=job.minutes, seed=job.seed, root=root, **options)
     budget = dict(data.budget)
@@ -388,9 +390,9 @@ def main() -> int:
     parser.add_argument("--data", type=names(("demo", "digits", "lot-codes")), help="default demo,digits,lot-codes")
     parser.add_argument("--boxes", type=floats, help="time boxes in minutes, default 4,16")
     parser.add_argument("--seeds", type=ints, help="default 0,1,2")
-    parser.add_argument("--methods", type=names(METHODS), default=list(METHODS), help="default default,random,sweep")
+    parser.add_argument("--methods", type=names(METHODS), default=list(METHODS), help="default default,single,random,sweep")
     parser.add_argument("--jobs", type=positive, help="searches at once, one torch thread each (default 2; with "
-                                                      "--quick 1, so that each of its three searches runs alone)")
+                                                      "--quick 1, so that each of its searches runs alone)")
     parser.add_argument("--trials", type=positive, default=NO_LIMIT, help="trial limit of each search (default none: the box)")
     parser.add_argument("--out", type=Path, help="JSON lines file the rows are appended to, and resumed from "
                                                  "(default a new file under runs/bench-quality/)")

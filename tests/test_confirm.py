@@ -46,7 +46,8 @@ def test_selection_takes_the_front_then_what_is_within_noise_then_random_others(
                     (4, 0.85, 800), (5, 0.50, 900), (6, 0.60, 950)])
     chosen = select(frame, {}, ["params"], VAL, ConfirmSettings(most=10, extra=1), seed=0)
     names = dict(chosen)
-    assert [t for t, why in chosen if why == "on a front"] == [4, 1, 0]  # most accurate first
+    assert [t for t, _ in chosen[:4]] == [4, 0, 1, 2]  # the most accurate first, then the cheapest first
+    assert [t for t, why in chosen if why == "on a front"] == [4, 0, 1]
     assert names[2] == "within noise of a front"  # half of two standard errors behind trial 1, and dearer
     assert 3 not in names or names[3] == "drawn at random"  # twice two standard errors behind: not near
     randoms = [t for t, why in chosen if why == "drawn at random"]

@@ -85,7 +85,8 @@ def add_search_commands(sub, space_path, add_budget, budget_of) -> None:
     p.add_argument("--name", required=True, help="run name: results go to runs/NAME/; the same name continues it")
     p.add_argument("--trials", type=int, default=30, help="candidates to train, counted over the whole run (default 30)")
     p.add_argument("--minutes", type=float, help="wall-clock limit for this invocation")
-    p.add_argument("--objective", default="accuracy", help="accuracy (default), or accuracy against params, macs or activation")
+    p.add_argument("--objective", default="params",
+                   help="the score against params (default), macs or activation, or the score alone: accuracy")
     p.add_argument("--metric", default="accuracy",
                    help="the score ranked, pruned, fronted and exported by: accuracy (default), or balanced_accuracy "
                         "(mean recall per class; also weighs the loss by class) when some classes are rare")

@@ -63,13 +63,14 @@ class TrainProgress:
     train_size: int = 0  # training images per epoch
     val_scores: Scores | None = None  # all validation scores of the last finished epoch
     val_predicted: np.ndarray | None = None  # predicted class per validation image, last finished epoch
+    threads: int | None = None  # torch threads the caller chose for this training
 
     def result(self) -> TrainResult:
         """The figures so far as a TrainResult."""
         speed = self.images_seen / self.train_seconds if self.train_seconds > 0 else 0.0
         last = self.val_scores.accuracy if self.val_scores is not None else math.nan
         return TrainResult(last, tuple(self.history), len(self.history), self.seconds, speed, self.train_loss,
-                           self.train_size, self.val_scores, val_predicted=self.val_predicted)
+                           self.train_size, self.val_scores, val_predicted=self.val_predicted, threads=self.threads)
 
 
 class TrainingStopped(Exception):

@@ -127,7 +127,7 @@ def plan(study: optuna.Study, main: optuna.Study, budget: Budget, objective: str
     """
     frame = trials_frame(main)
     chosen = select(frame, budget.caps(), cost_columns(budget.caps(), OBJECTIVES[objective]), val_images,
-                    settings, seed, metric)
+                    settings, seed, metric, OBJECTIVES[objective] or "params")
     have = set()
     for t in study.get_trials(deepcopy=False):
         params = t.params or queued_params(t) or {}

@@ -65,11 +65,10 @@ class TorchTrainer:
                  progress: TrainProgress) -> TrainResult:
         split = self.data.at(arch.input_shape)
         model = build(arch)
-        threads = self.share.threads() if self.share is not None else self.threads
+        threads = progress.threads = self.share.threads() if self.share is not None else self.threads
         result = train_candidate(model, split.train.images, split.train.labels, split.val.images, split.val.labels,
                                  self.settings, seed=seed, on_epoch=on_epoch, deadline=deadline, threads=threads,
                                  progress=progress, metric=self.metric, classes=self.data.num_classes)
-        result = replace(result, threads=threads)
         if not self.int8:
             return result
         started = time.monotonic()
@@ -138,7 +137,8 @@ def confirmation_reserve(run: PreparedRun, confirm: ConfirmSettings, box: float)
         if len(ledger.trained) != seen["count"]:
             rows = [record | {"trial": number, "state": TRAINED} for number, record in ledger.trained.items()]
             frame = pd.DataFrame(rows) if rows else pd.DataFrame(columns=["trial", "state", metric.column, "params"])
-            chosen = select(frame, caps, columns, val_images, confirm, run.settings.seed, metric) if rows else []
+            chosen = select(frame, caps, columns, val_images, confirm, run.settings.seed, metric,
+                            OBJECTIVES[run.settings.objective] or "params") if rows else []
             jobs = read_jobs(run.settings.name, run.url) if chosen else None
             done = jobs[jobs["state"] == TRAINED]["trial"].value_counts().to_dict() if jobs is not None else {}
             wanted = sum((throughput.predict(ledger.trained[t]["macs"], epochs_images) or 0.0)

@@ -40,7 +40,7 @@ class SearchSettings:
     data: str = "demo"  # "demo", an .npz file, or a folder of class sub-folders
     trials: int = 30  # candidates to train over the study's life (resuming counts what is done)
     minutes: float | None = None  # wall-clock limit for this invocation
-    objective: str = "accuracy"  # the score alone, or the score against params | macs | activation
+    objective: str = "params"  # the score against params (default) | macs | activation, or the score alone ("accuracy")
     metric: str = "accuracy"  # the score: accuracy, or balanced_accuracy (mean recall per class) for rare classes
     sampler: str = "tpe"  # tpe | nsga2 | random
     storage: str | None = None  # Optuna storage URL or .journal path; default SQLite in the run folder

@@ -146,7 +146,8 @@ class Worker:
         if self.plan.deadline is not None and time.time() >= self.plan.deadline - self._reserve():
             return StopReason(Ending.TIME_NEAR, "the rest of the time box is kept for confirming the front")
         if self.plan.deadline is not None and (too_long >= MAX_TOO_LONG or self._nothing_fits_in_time()):
-            return StopReason(Ending.TIME_NEAR, "time limit near: " + (
+            return StopReason(Ending.TIME_NEAR, "the rest of the time box is kept for confirming the front"
+                              if self._reserve() > 0 else "time limit near: " + (
                 f"{too_long} proposals in a row were predicted not to finish in the time left" if too_long >= MAX_TOO_LONG
                 else "not even the space's cheapest candidate would finish in the time left"))
         if self.plan.parent_pid is not None and os.getppid() != self.plan.parent_pid:
