@@ -119,12 +119,17 @@ def front(
     return chosen.sort_values([columns[0], score], ascending=[True, False], kind="stable")
 
 
+MIN_RATE_RATIO = 1.25  # a step must raise the cost by a quarter (a third of a doubling) to give a rate per doubling
+
+
 def accuracy_per_doubling(accuracy: Sequence[float] | np.ndarray, cost: Sequence[float] | np.ndarray) -> np.ndarray:
     """Accuracy gained per doubling of cost from each front point to the next.
 
     Element i compares point i with point i-1 of the front sorted by cost (element 0 is
     NaN): what each step up in budget buys. NaN where the cost does not grow or is not
-    positive, since no doubling happens there.
+    positive, since no doubling happens there, and where it grows by less than
+    MIN_RATE_RATIO: a rate per doubling read off a small step is mostly noise blown up (a
+    half-point step at ×1.01 cost reads as +30 points per doubling).
     """
     acc = np.asarray(accuracy, dtype=float)
     costs = np.asarray(cost, dtype=float)
@@ -136,7 +141,7 @@ def accuracy_per_doubling(accuracy: Sequence[float] | np.ndarray, cost: Sequence
     with np.errstate(divide="ignore", invalid="ignore"):
         doublings = np.log2(costs[1:] / costs[:-1])
         steps = np.diff(acc) / doublings
-    usable = (costs[:-1] > 0) & (costs[1:] > 0) & (doublings > 0)
+    usable = (costs[:-1] > 0) & (costs[1:] > 0) & (doublings >= np.log2(MIN_RATE_RATIO))
     gain[1:] = np.where(usable, steps, np.nan)
     return gain
 

@@ -34,6 +34,13 @@ def _label(confirmation: Confirmation | None) -> str:
     return ACCURACY.label if confirmation is None else confirmation.metric.label
 
 
+def mean_sd(mean: float, sd: float, seeds: int) -> str:
+    """A confirmed mean with its seeds' sd; one seed has no spread to show, and says so rather than '± 0.0%'."""
+    if int(seeds) < 2 or not math.isfinite(sd):
+        return f"{percent(mean)} (1 seed, no spread yet)"
+    return f"{percent(mean)} ± {percent(sd)} over {int(seeds)} seeds"
+
+
 def add_confirmed(fig: go.Figure, confirmation: Confirmation | None, cost: str) -> None:
     """Confirmed means ± 1 sd of the seeds, on a plot of accuracy against ``cost``."""
     rows = _confirmed(confirmation)
@@ -44,9 +51,9 @@ def add_confirmed(fig: go.Figure, confirmation: Confirmation | None, cost: str) 
         x=rows[cost], y=rows["score_mean"], mode="markers", name="confirmed mean ± 1 sd",
         error_y={"type": "data", "array": sd, "visible": True, "color": CONFIRMED_COLOUR, "thickness": 1.5},
         marker={"color": CONFIRMED_COLOUR, "size": 9, "symbol": "square"},
-        text=[f"<b>{html.escape(a)}</b><br>trial {int(t)} · confirmed {percent(m)} ± {percent(s)} over {int(n)} "
-              f"seeds · proxy {percent(p)}" for a, t, m, s, n, p in zip(rows["arch"], rows["trial"], rows["score_mean"],
-                                                                       sd, rows["seeds"], rows["score_proxy"])],
+        text=[f"<b>{html.escape(a)}</b><br>trial {int(t)} · confirmed {mean_sd(m, s, n)} · proxy {percent(p)}"
+              for a, t, m, s, n, p in zip(rows["arch"], rows["trial"], rows["score_mean"], rows["score_sd"],
+                                          rows["seeds"], rows["score_proxy"])],
         hovertemplate="%{text}<extra></extra>")
 
 
@@ -88,7 +95,7 @@ def confirmed_front_html(confirmation: Confirmation | None, cost: str, caps: dic
             step = (f"{gain * 100:+.1f} pts for ×{getattr(row, cost) / getattr(before, cost):.2f} cost"
                     + ("" if apart else " <b>(within noise)</b>"))
         body.append([str(int(row.trial)), f"<code>{html.escape(row.arch)}</code>",
-                     f"{percent(row.score_mean)} ± {percent(np.nan_to_num(row.score_sd))}", str(int(row.seeds)),
+                     mean_sd(row.score_mean, row.score_sd, row.seeds), str(int(row.seeds)),
                      percent(row.score_proxy), cost_text(cost, getattr(row, cost)), step])
         before = row
     heads = ["trial", "architecture", "confirmed mean ± sd", "seeds", "proxy", COST_LABELS[cost][0],
