@@ -23,7 +23,7 @@ from searchkit import (
     start, stop, trial_rows, training_now, wait_until_training, write_space,
 )
 import searcher.study.liveness
-import searcher.study.worker
+import searcher.study.loop
 from searcher.core.budget import Budget
 from searcher.results.records import INTERRUPTED, REJECTED, SPENT, counts, distinct_rows, trials_frame
 from searcher.core.space_file import load_space
@@ -407,7 +407,7 @@ def test_running_search_recovers_what_dies_later(tmp_path: Path, monkeypatch) ->
     study.ask()  # a worker asked and was killed before it could claim the trial
     monkeypatch.setattr(searcher.study.liveness, "UNCLAIMED_SECONDS", 0.0)  # its grace period has passed
     assert worker.stop_reason() is None and study.trials[0].state == TrialState.RUNNING  # not looked yet
-    monkeypatch.setattr(searcher.study.worker, "RECOVER_SECONDS", 0.0)  # time for the next look
+    monkeypatch.setattr(searcher.study.loop, "RECOVER_SECONDS", 0.0)  # time for the next look
     assert worker.stop_reason() is None
     assert study.trials[0].state == TrialState.FAIL
 

@@ -11,13 +11,10 @@ never touched.
 
 from __future__ import annotations
 
-import contextlib
 import logging
 import math
 import time
 from dataclasses import dataclass, replace
-from pathlib import Path
-from typing import Callable
 
 import numpy as np
 import optuna
@@ -28,19 +25,20 @@ from searcher.core.arch import Arch, parse_arch
 from searcher.core.budget import Budget
 from searcher.core.cost import cost
 from searcher.core.train_settings import TrainSettings
-from searcher.model.train import Diverged, OutOfTime, TrainProgress
+from searcher.model.train import TrainProgress
 from searcher.results.confirmed import ConfirmSettings, confirmation, cost_columns, select
 from searcher.results.records import ACCURACY, Metric
 from searcher.results.records import (
     DUPLICATE, FAILED, INTERRUPTED, NOT_STARTED, RECORD, TRAINED, TRAINING, pack_classes, record_of, trials_frame,
     unpack_classes,
 )
-from searcher.study.ending import Ending, StopReason, StopRequested, StopSignals
-from searcher.study.liveness import Heartbeat, Registry, claim, queue_retry, recover_stale
+from searcher.study.ending import Ending, StopReason
+from searcher.study.liveness import claim, queue_retry
+from searcher.study.loop import LoopPlan, TrialLoop
 from searcher.study.optuna_private import queued_params
 from searcher.study.storage import OBJECTIVES, open_storage, trial_seed
 from searcher.study.timebox import Throughput
-from searcher.study.worker import RECOVER_SECONDS, Trainer, scores_of
+from searcher.study.worker import Trainer, scores_of
 
 log = logging.getLogger(__name__)
 
@@ -158,54 +156,34 @@ class ConfirmTally:
     stop: StopReason | None = None
 
 
-@dataclass(frozen=True)
-class ConfirmPlan:
+@dataclass(frozen=True, kw_only=True)
+class ConfirmPlan(LoopPlan):
     """What a confirming worker needs beyond the studies."""
 
-    deadline: float | None  # time.time() after which nothing new starts and training stops
     run_seed: int
     images: int  # training images a job sees per epoch
-    log_path: Path | None = None
-    run_folder: Path | None = None  # given when every worker of the study runs on this machine
-    flush: Callable[[], None] | None = None
 
 
-class Confirmer:
+class Confirmer(TrialLoop):
     """Takes queued jobs one at a time and trains each with the full schedule until none is left."""
 
     def __init__(self, study: optuna.Study, main: optuna.Study, settings: TrainSettings, plan: ConfirmPlan,
                  trainer: Trainer, throughput: Throughput) -> None:
-        self.study, self.main, self.settings, self.plan = study, main, settings, plan
+        super().__init__(study, plan)
+        self.main, self.settings = main, settings
         self.archs: dict[int, Arch] = {}  # the search's trial number -> its candidate, read as jobs need them
         self.trainer, self.throughput = trainer, throughput
-        self.signals = StopSignals()
         self.tally = ConfirmTally()
-        self.registry: Registry | None = None  # this run's local worker registry, when its store is local
-        self._recovered_at = -math.inf  # time.monotonic() of the last look for dead workers' jobs
 
     def run(self) -> ConfirmTally:
-        """Work through the queued jobs until none is left, the time is up or a signal came."""
+        """Work through the queued jobs until none is left, the time is up or a signal came (a job predicted
+        not to finish is put back at the end of the queue once)."""
         started = time.time()
-        self.signals.install()
-        registry = Registry(self.plan.run_folder) if self.plan.run_folder else contextlib.nullcontext()
-        with registry as self.registry:
-            while (stop := self.stop_reason()) is None:
-                state = self.step()  # a job predicted not to finish is put back at the end of the queue once
-                if state == INTERRUPTED:
-                    stop = self.stop_reason() or StopReason(Ending.TIME_LIMIT, "time limit reached")
-                    break
+        stop = super().run()
         self.tally.stop, self.tally.seconds = stop, time.time() - started
         return self.tally
 
-    def stop_reason(self) -> StopReason | None:
-        """Why to stop now, or None; looks for jobs dead workers left running every RECOVER_SECONDS."""
-        if self.signals.received:
-            return StopReason.by_signal(self.signals.received)
-        if self.plan.deadline is not None and time.time() >= self.plan.deadline:
-            return StopReason(Ending.TIME_LIMIT, "time limit reached")
-        if time.monotonic() - self._recovered_at >= RECOVER_SECONDS:
-            recover_stale(self.study, self.registry)
-            self._recovered_at = time.monotonic()
+    def done(self) -> StopReason | None:
         if not self.study.get_trials(deepcopy=False, states=(TrialState.WAITING,)):
             return StopReason(Ending.DONE, "confirmation done")
         return None
@@ -215,7 +193,7 @@ class Confirmer:
         trial = self.study.ask()
         claim(trial)
         if queued_params(trial) is None:  # another worker took the last queued job meanwhile
-            return self._end(trial, {"state": EMPTY}, EMPTY, "no queued job left", TrialState.FAIL)
+            return self.end(trial, {}, EMPTY, "no queued job left", TrialState.FAIL)
         source, index = trial.suggest_int("trial", 0, 2**31 - 1), trial.suggest_int("seed_index", 0, 10**6)
         arch = self.arch_of(source)
         record = {"trial": source, "seed_index": index, "arch": arch.to_text(), "chosen": trial.user_attrs.get("chosen", ""),
@@ -225,14 +203,14 @@ class Confirmer:
             r = record_of(other)
             if other.number != trial.number and (r.get("trial"), r.get("seed_index")) == (source, index) and (
                     other.state == TrialState.RUNNING or r.get("state") in (TRAINED, FAILED)):
-                return self._end(trial, record, DUPLICATE, f"job done or running as trial {other.number}", TrialState.FAIL)
+                return self.end(trial, record, DUPLICATE, f"job done or running as trial {other.number}", TrialState.FAIL)
         images = self.settings.epochs * self.plan.images
         predicted = self.throughput.predict(self._macs(arch), images)
         left = None if self.plan.deadline is None else self.plan.deadline - time.time()
         if left is not None and predicted is not None and predicted > left:
             queue_retry(self.study, trial)
-            return self._end(trial, record, NOT_STARTED, f"predicted {predicted:.0f} s but {left:.0f} s left",
-                             TrialState.FAIL)
+            return self.end(trial, record, NOT_STARTED, f"predicted {predicted:.0f} s but {left:.0f} s left",
+                            TrialState.FAIL)
         return self._train(trial, arch, record, job_seed(self.plan.run_seed, source, index))
 
     def arch_of(self, number: int) -> Arch:
@@ -251,20 +229,9 @@ class Confirmer:
     def _train(self, trial: optuna.Trial, arch: Arch, record: dict, seed: int) -> str:
         progress = TrainProgress()
         deadline = None if self.plan.deadline is None else time.monotonic() + (self.plan.deadline - time.time())
-        with Heartbeat(self.study, trial):
-            try:
-                with self.signals.raising():
-                    result = self.trainer(arch, seed=seed, on_epoch=_ignore, deadline=deadline, progress=progress)
-                state, reason = TRAINED, ""
-            except Diverged as exc:
-                state, reason, result = FAILED, f"diverged: {exc.reason}", exc.result
-            except OutOfTime as exc:
-                state, reason, result = INTERRUPTED, "the run's time limit was reached during training; queued again", exc.result
-            except StopRequested as exc:
-                state, reason, result = INTERRUPTED, f"stopped by {exc}; queued again", progress.result()
-        if state == INTERRUPTED:
-            queue_retry(self.study, trial)
-        else:
+        state, reason, result = self.train(trial, lambda p: self.trainer(arch, seed=seed, on_epoch=_ignore,
+                                                                         deadline=deadline, progress=p), progress)
+        if state != INTERRUPTED:
             self.throughput.add(self._macs(arch), progress.images_seen, result.seconds)
             self.tally.trained += state == TRAINED
         record |= scores_of(result) | {"history": list(result.history), "train_seconds": round(result.seconds, 3),
@@ -273,26 +240,16 @@ class Confirmer:
             record["val_predicted"] = pack_classes(result.val_predicted)
         score = result.history[-1] if result.history else math.nan  # the run's metric, as the search told it
         record["score"] = score if math.isfinite(score) else None
-        return self._end(trial, record, state, reason, TrialState.COMPLETE if state == TRAINED and record["score"]
-                         is not None else TrialState.FAIL)
+        return self.end(trial, record, state, reason, TrialState.COMPLETE if state == TRAINED and record["score"]
+                        is not None else TrialState.FAIL, record["score"])
 
-    def _end(self, trial: optuna.Trial, record: dict, state: str, reason: str, optuna_state: TrialState) -> str:
-        record = record | {"state": state, "reason": reason}
-        trial.set_user_attr(RECORD, record)
-        if optuna_state == TrialState.COMPLETE:
-            self.study.tell(trial, record["score"])
-        else:
-            self.study.tell(trial, state=optuna_state)
-        if self.plan.flush is not None and state in (TRAINED, FAILED):
-            self.plan.flush()
-        if self.plan.log_path is not None and state != EMPTY:
-            acc = record.get("val_accuracy")
-            line = (f"{time.strftime('%Y-%m-%d %H:%M:%S')} confirm trial {record.get('trial')} seed "
-                    f"{record.get('seed_index')} {state} acc={'-' if acc is None else f'{acc:.4f}'} "
-                    f"seconds={record.get('train_seconds', 0):.1f}" + (f" reason={reason}" if reason else ""))
-            with open(self.plan.log_path, "a", encoding="utf-8") as handle:
-                handle.write(line + "\n")
-        return state
+    def log_line(self, number: int, record: dict) -> str | None:
+        if record["state"] == EMPTY:
+            return None
+        acc = record.get("val_accuracy")
+        return (f"confirm trial {record.get('trial')} seed {record.get('seed_index')} {record['state']} "
+                f"acc={'-' if acc is None else f'{acc:.4f}'} seconds={record.get('train_seconds', 0):.1f}"
+                + (f" reason={record['reason']}" if record.get("reason") else ""))
 
 
 def _ignore(epoch: int, accuracy: float) -> None:
