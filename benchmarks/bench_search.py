@@ -152,7 +152,7 @@ def against_plain_loop(folder: Path, seed: int) -> None:
           f"ours to reach / plain loop to reach = {reached / plain_seconds:.2f}")
 
 
-def halving(folder: Path, data: str, seed: int, trials: int) -> None:
+def halving(folder: Path, data: str, seed: int, trials: int, objective: str | None = None) -> None:
     """One search per rule on ``data``, ``trials`` candidates each, confirmation off; one line per rule."""
     import functools
 
@@ -177,8 +177,9 @@ def halving(folder: Path, data: str, seed: int, trials: int) -> None:
     for rule, neighbours in (("cost neighbours", None), ("all candidates", 10**9)):
         if neighbours is not None:
             worker_module.CostAwareHalving = functools.partial(CostAwareHalving, neighbours=neighbours)
-        settings = SearchSettings(name=f"halving-{data}-{seed}-{neighbours or 8}", space=space, data=source,
-                                  trials=trials, seed=seed, root=folder, confirm=ConfirmSettings(seeds=0))
+        settings = SearchSettings(name=f"halving-{data}-{seed}-{neighbours or 8}-{objective}", space=space,
+                                  data=source, trials=trials, seed=seed, root=folder, confirm=ConfirmSettings(seeds=0),
+                                  **({"objective": objective} if objective else {}))
         try:
             started = time.perf_counter()
             outcome = search(settings)
@@ -199,7 +200,7 @@ def halving(folder: Path, data: str, seed: int, trials: int) -> None:
         inside = full[feasible(full, caps)]
         hv = hypervolume(inside["val_accuracy"], inside["params"], chance=1 / run.data.num_classes,
                          reference_cost=reference_cost(caps, "params", fitting)) if len(inside) else 0.0
-        print(f"[halving {data} seed {seed}] {rule:15s}: {len(table)} trained, stopped {len(stopped) / max(1, len(table)):.0%} "
+        print(f"[halving {data} seed {seed} {settings.objective}] {rule:15s}: {len(table)} trained, stopped {len(stopped) / max(1, len(table)):.0%} "
               f"saving {saved:.0%} of their proxy epochs; in full {int((full['params'] < median).sum())} below / "
               f"{int((full['params'] >= median).sum())} above the median {median:,.0f} params; best fitting "
               f"{inside['val_accuracy'].max() if len(inside) else float('nan'):.4f}; proxy-front hypervolume {hv:.3f}; "
@@ -222,6 +223,7 @@ if __name__ == "__main__":
     parser.add_argument("--data", default="demo,lot-codes", help="halving: data sets, of demo, lot-codes")
     parser.add_argument("--seeds", default="0,1,2", help="halving: seeds (default 0,1,2)")
     parser.add_argument("--trials", type=int, default=30, help="halving: candidates per search (default 30)")
+    parser.add_argument("--objective", help="halving: the search's objective (default: the library's)")
     args = parser.parse_args()
     which = args.what or ["overhead", "plain"]
     with tempfile.TemporaryDirectory() as tmp:
@@ -231,7 +233,7 @@ if __name__ == "__main__":
         if "halving" in which:
             for data in args.data.split(","):
                 for seed in map(int, args.seeds.split(",")):
-                    halving(Path(tmp), data, seed, args.trials)
+                    halving(Path(tmp), data, seed, args.trials, args.objective)
         if "plain" in which:
             for seed in (0, 1, 2):
                 (Path(tmp) / f"seed{seed}").mkdir()
