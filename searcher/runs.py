@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import os
 import re
+import stat
 import tempfile
 from collections.abc import Callable
 from pathlib import Path
@@ -23,6 +24,31 @@ def run_folder(name: str, root: Path = RUNS) -> Path:
             key="--name",
         )
     return root / name
+
+
+def why_unwritable(folder: Path) -> str | None:
+    """Why ``folder`` could not be made or written (None when it can), found without creating anything.
+
+    A command checks this before its work, so that a folder it cannot write costs the user no
+    waiting and leaves nothing behind: the nearest part of the path that exists must be a folder
+    this process may write into.
+    """
+    path = Path(folder)
+    while True:
+        try:
+            mode = os.stat(path).st_mode
+        except (FileNotFoundError, NotADirectoryError):  # not there yet (or under a file: found further up)
+            if path.parent == path:
+                return None
+            path = path.parent
+            continue
+        except OSError as exc:
+            return f"{path}: {exc.strerror or exc}"
+        if not stat.S_ISDIR(mode):
+            return f"{path} is {'a regular file' if stat.S_ISREG(mode) else 'not a folder'}, not a folder"
+        if not os.access(path, os.W_OK | os.X_OK):
+            return f"{path} is read-only"
+        return None
 
 
 def plain_name(text: str, fallback: str = "space") -> str:

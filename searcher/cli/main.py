@@ -19,6 +19,8 @@ from searcher.core.cost import cost
 from searcher.core.space_file import builtin_space, load_space, shipped_spaces
 from searcher.data.load import check_source, describe_few_examples, few_examples, load_dataset
 from searcher.errors import SearcherError, one_of, readable, shown
+from searcher.files import read_regular
+from searcher.limits import MAX_ARCH_FILE_BYTES
 from searcher.redact import redact
 from searcher.runs import plain_name, run_folder
 
@@ -27,6 +29,9 @@ log = logging.getLogger("searcher")
 
 def _space_path(text: str) -> Path:
     """A space is a file path or the name of a shipped space (mcu, workstation, classic)."""
+    if not text.strip():
+        raise SearcherError(f"`--space` {shown(text)} is empty; give a .toml file or a shipped space "
+                            f"({', '.join(shipped_spaces())})", key="--space")
     path = Path(text)
     try:
         found, folder = path.exists(), path.is_dir()
@@ -64,7 +69,7 @@ def _arch_text(given: str) -> str:
         return given
     path = Path(given)
     try:
-        text = path.read_text(encoding="utf-8-sig")
+        text = read_regular(path, MAX_ARCH_FILE_BYTES, "architecture file").decode("utf-8-sig")
     except UnicodeDecodeError:
         raise SearcherError(f"architecture file {shown(given)} is not JSON text (not UTF-8)") from None
     except IsADirectoryError:

@@ -15,7 +15,7 @@ from searcher.core.space import Space
 from searcher.core.stats import wilson_interval
 from searcher.errors import SearcherError, check_int, shown
 from searcher.limits import MAX_CLASSES, MAX_SAMPLES, MAX_SEED
-from searcher.runs import write_atomic
+from searcher.runs import why_unwritable, write_atomic
 
 
 @dataclass(frozen=True)
@@ -139,7 +139,10 @@ def summary_lines(census: Census) -> list[str]:
 
 def write_census(census: Census, folder: Path) -> list[Path]:
     """census_summary.csv, census_spread.csv, census_depth_width.csv and census.html in ``folder``."""
-    writable(folder)
+    try:
+        writable(folder).mkdir(parents=True, exist_ok=True)
+    except OSError as exc:
+        raise _unwritable(folder, exc) from None
     low, high = census.interval
     summary = pd.DataFrame([{
         "space": census.space.name, "configurations": census.size, "exact": census.exact,
@@ -163,16 +166,17 @@ def write_census(census: Census, folder: Path) -> list[Path]:
 
 
 def writable(folder: Path) -> Path:
-    """Make ``folder`` (and its parents) or say plainly why it cannot be made; checked before the work."""
-    try:
-        folder.mkdir(parents=True, exist_ok=True)
-    except OSError as exc:
-        raise _unwritable(folder, exc) from None
+    """``folder``, when it can be made and written; else say plainly why not. Checked before the work,
+    and nothing is created: a census refused later (its --data, say) leaves no empty folder behind."""
+    why = why_unwritable(folder)
+    if why is not None:
+        raise _unwritable(folder, why)
     return folder
 
 
-def _unwritable(folder: Path, exc: OSError) -> SearcherError:
-    return SearcherError(f"cannot write the census to {shown(str(folder))}: {exc.strerror or exc}; run it from a "
+def _unwritable(folder: Path, why: OSError | str) -> SearcherError:
+    why = why if isinstance(why, str) else why.strerror or str(why)
+    return SearcherError(f"cannot write the census to {shown(str(folder))}: {why}; run it from a "
                          f"folder where runs/ can be written", key="--name")
 
 

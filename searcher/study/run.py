@@ -21,7 +21,7 @@ from searcher.data.load import (
     Dataset, check_source, Split, describe_few_examples, few_examples, load_dataset, load_split, resize_images,
 )
 from searcher.errors import SearcherError, check_int, check_number, one_of, shown
-from searcher.limits import MAX_CAP, MAX_MINUTES, MAX_SEED, MAX_TRIALS, MAX_WORKERS
+from searcher.limits import MAX_CAP, MAX_MINUTES, MAX_SEED, MAX_TRIALS, MAX_WORKERS, available_memory
 from searcher.results.confirmed import ConfirmSettings
 from searcher.results.records import METRICS
 from searcher.runs import RUNS, run_folder
@@ -155,10 +155,4 @@ def _check_something_fits(space: Space, budget: Budget, classes: int) -> None:
 
 def default_memory_cap(workers: int) -> int:
     """Half of this machine's available memory, shared among the workers."""
-    try:
-        with open("/proc/meminfo") as handle:
-            info = {line.split(":")[0]: int(line.split()[1]) * 1024 for line in handle}
-        available = info.get("MemAvailable", info["MemTotal"])
-    except (OSError, KeyError, ValueError):
-        available = os.sysconf("SC_PAGE_SIZE") * os.sysconf("SC_PHYS_PAGES")
-    return int(available * 0.5 / workers)
+    return int(available_memory() * 0.5 / workers)
