@@ -284,7 +284,13 @@ def _train_epoch(model: nn.Module, batches: Batches, labels: torch.Tensor, order
                                    label_smoothing=settings.label_smoothing)
             optimizer.zero_grad(set_to_none=True)
             loss.backward()
-            optimizer.step()
+            try:
+                optimizer.step()
+            except RuntimeError as exc:  # a step size beyond float32 (learning rate 1e300) cannot even be applied
+                if "overflow" not in str(exc):
+                    raise
+                raise Diverged(f"the optimiser's step overflowed float32 at epoch {epoch + 1}, step {step + 1} "
+                               f"(learning rate {optimizer.param_groups[0]['lr']:g}): {exc}") from None
             if schedule is not None:
                 schedule.step()
             losses.append(loss.detach())  # read back only every CHECK_EVERY steps
