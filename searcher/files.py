@@ -16,14 +16,14 @@ from pathlib import Path
 from searcher.errors import SearcherError, shown
 from searcher.core.units import format_bytes
 
-_KINDS = ((stat.S_ISDIR, "a folder"), (stat.S_ISFIFO, "a named pipe (FIFO)"), (stat.S_ISCHR, "a character device"),
-          (stat.S_ISBLK, "a block device"), (stat.S_ISSOCK, "a socket"))
+_KINDS = ((stat.S_ISREG, "a regular file"), (stat.S_ISLNK, "a symbolic link"), (stat.S_ISDIR, "a folder"),
+          (stat.S_ISFIFO, "a named pipe (FIFO)"), (stat.S_ISCHR, "a character device"), (stat.S_ISBLK, "a block device"),
+          (stat.S_ISSOCK, "a socket"))
 
 
 def kind_of(mode: int) -> str:
     """What a file system entry is, in words: 'a regular file', 'a named pipe (FIFO)', 'a folder' ..."""
-    return next((name for test, name in _KINDS if test(mode)), "a regular file" if stat.S_ISREG(mode) else
-                "not a regular file")
+    return next((name for test, name in _KINDS if test(mode)), "of an unknown kind")
 
 
 def not_regular(path: str | Path, what: str, key: str | None = None, *, follow: bool = True) -> SearcherError | None:
@@ -37,8 +37,7 @@ def not_regular(path: str | Path, what: str, key: str | None = None, *, follow: 
         return None
     if stat.S_ISREG(mode):
         return None
-    kind = "a symbolic link" if stat.S_ISLNK(mode) else kind_of(mode)
-    return SearcherError(f"{what} {shown(str(path))} is {kind}, not a regular file", key=key)
+    return SearcherError(f"{what} {shown(str(path))} is {kind_of(mode)}, not a regular file", key=key)
 
 
 def read_regular(path: str | Path, limit: int, what: str, key: str | None = None) -> bytes:

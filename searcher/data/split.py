@@ -8,6 +8,7 @@ from pathlib import Path
 import numpy as np
 
 from searcher.errors import SearcherError
+from searcher.files import not_regular
 from searcher.runs import write_atomic
 
 PARTS = ("train", "val", "test")  # names of the three parts, in order
@@ -87,6 +88,9 @@ def save_split(path: str | Path, indices: dict[str, np.ndarray], fingerprint: st
 
 def load_split(path: str | Path) -> tuple[dict[str, np.ndarray], str]:
     """Read a split stored by `save_split`: (indices, fingerprint)."""
+    refused = not_regular(path, "stored split", key="split")
+    if refused is not None:
+        raise refused
     try:
         with np.load(path, allow_pickle=False) as archive:
             stored = {k: archive[k] for k in archive.files}

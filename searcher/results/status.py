@@ -17,8 +17,8 @@ from optuna.trial import TrialState
 from searcher.core.budget import Budget
 from searcher.redact import redact
 from searcher.results.records import HEARTBEAT, METRICS, best_row, counts, trials_frame
-from searcher.results.tables import gather, write_results
-from searcher.runs import RUNS
+from searcher.results.tables import RESULT_FILES, gather, write_results
+from searcher.runs import RUNS, check_run_paths
 from searcher.study.liveness import Registry, is_dead
 from searcher.study.storage import RunConfig, open_run, storage_url
 
@@ -87,6 +87,7 @@ def report(name: str, storage: str | None = None, root: Path = RUNS) -> list[Pat
     """Rebuild the result files of run ``name`` (trials.csv, front.csv, confirmed.csv, summary.json,
     report.html) from its stored studies."""
     folder, study, config = open_run(name, storage, root)
+    check_run_paths(folder, files=("split.npz", *RESULT_FILES), folders=())  # before the work: said plainly
     results = gather(name, study, storage_url(storage, folder), config, folder)
     return write_results(folder, results, title=f"searcher run {name}",
                          notes=[f"space {config.space_name}; data {config.data}; objective {config.objective}",

@@ -16,7 +16,6 @@ from pathlib import Path
 
 import pytest
 
-from searcher.cli.main import main
 from searcher.core.budget import Budget
 from searcher.core.train_settings import TrainSettings
 from searcher.errors import SearcherError
