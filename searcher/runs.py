@@ -147,21 +147,26 @@ def folder_swap(target: Path) -> Iterator[Path]:
     try:
         with _terminate_as_exit():
             yield temp
-        with _locked(target.parent), _signals_held():
-            old = target.with_name(f".{target.name}-old-{owner}")
-            kept = _foreign_entries(target, temp)
-            if target.exists():
-                target.rename(old)
-            temp.rename(target)
-            if kept:
-                aside = target.with_name(f"{target.name}-replaced-{time.strftime('%Y%m%d-%H%M%S')}")
-                old.rename(aside)
-                log.warning("%s held %s, which %s does not write: the previous folder is kept whole in %s", target,
-                            ", ".join(kept[:5]) + (" ..." if len(kept) > 5 else ""), target.name, aside)
-        shutil.rmtree(old, ignore_errors=True)
+            _swap(target, temp, owner)
     except BaseException:
         shutil.rmtree(temp, ignore_errors=True)
         raise
+
+
+def _swap(target: Path, temp: Path, owner: str) -> None:
+    """Put ``temp`` in the place of ``target``, with SIGINT and SIGTERM held until it is done."""
+    with _locked(target.parent), _signals_held():
+        old = target.with_name(f".{target.name}-old-{owner}")
+        kept = _foreign_entries(target, temp)
+        if target.exists():
+            target.rename(old)
+        temp.rename(target)
+        if kept:
+            aside = target.with_name(f"{target.name}-replaced-{time.strftime('%Y%m%d-%H%M%S')}")
+            old.rename(aside)
+            log.warning("%s held %s, which %s does not write: the previous folder is kept whole in %s", target,
+                        ", ".join(kept[:5]) + (" ..." if len(kept) > 5 else ""), target.name, aside)
+        shutil.rmtree(old, ignore_errors=True)  # before a held signal can end the process
 
 
 def clean_stale_swaps(target: Path) -> list[Path]:
@@ -229,16 +234,25 @@ def _locked(folder: Path) -> Iterator[None]:
 
 @contextlib.contextmanager
 def _signals_held() -> Iterator[None]:
-    """SIGINT and SIGTERM wait until the block is done (in the main thread; elsewhere they cannot arrive)."""
+    """SIGINT and SIGTERM wait until the block is done, then act as they would have.
+
+    Python runs its signal handlers in the main thread whichever thread the signal reached (torch
+    keeps threads of its own, so blocking the signals in one thread would not hold them); so the
+    handlers are swapped for one that notes the signal, and a noted signal is raised again after.
+    """
     if threading.current_thread() is not threading.main_thread():
         yield
         return
-    held = {signal.SIGINT, signal.SIGTERM}
-    before = signal.pthread_sigmask(signal.SIG_BLOCK, held)
+    noted: list[int] = []
+    before = {number: signal.signal(number, lambda n, frame: noted.append(n)) for number in (signal.SIGINT,
+                                                                                             signal.SIGTERM)}
     try:
         yield
     finally:
-        signal.pthread_sigmask(signal.SIG_SETMASK, before)
+        for number, handler in before.items():
+            signal.signal(number, handler)
+        for number in dict.fromkeys(noted):
+            signal.raise_signal(number)
 
 
 @contextlib.contextmanager

@@ -47,6 +47,7 @@ from searcher.results.tables import RunResults, gather
 from searcher.ship.deploy_files import DeployReport, write_deploy_files
 from searcher.runs import RUNS, check_run_paths, folder_swap, run_folder
 from searcher.ship.model_card import model_card, standalone_source
+from searcher.ship.quantize import NotFinite
 from searcher.study.run import RunData, default_memory_cap
 from searcher.study.storage import RunConfig, open_run, storage_kind, storage_url
 
@@ -300,8 +301,14 @@ def _write(outcome: ExportOutcome, model: Any, extra: dict, data: Any) -> None:
         example = torch.zeros(2, *arch.input_shape)  # batch size free: any N
         program = torch.export.export(model.eval(), (example,), dynamic_shapes=({0: torch.export.Dim("batch")},))
         torch.export.save(program, str(temp / "model.pt2"))
-        outcome.deploy = write_deploy_files(temp, model, arch, data.train.images, data.test.images, data.test.labels,
-                                            extra["config"].class_names)
+        try:
+            outcome.deploy = write_deploy_files(temp, model, arch, data.train.images, data.test.images,
+                                                data.test.labels, extra["config"].class_names)
+        except NotFinite as exc:
+            raise SearcherError(f"the int8 model of {arch} cannot be built: {exc}; training with the export's schedule "
+                                "diverged though its scores stayed finite, and nothing was written. Lower "
+                                "`train.learning_rate` or `train.weight_decay` in the space file, or export another "
+                                "candidate", key="--arch" if extra["trial"] is None else "--trial") from None
         metrics = {"arch": arch.to_text(), "test_accuracy": outcome.test_accuracy,
                    "test_balanced_accuracy": outcome.test_balanced_accuracy, "per_class": outcome.per_class,
                    "confusion": outcome.confusion, "costs": outcome.costs, "fits_budget": outcome.fits,
