@@ -109,9 +109,10 @@ def read_space_text(text: str, file: str, default_name: str = "space") -> Space:
     except tomllib.TOMLDecodeError as exc:
         raise SearcherError(f"space file is not valid TOML: {_toml_problem(exc, text)}", file=file) from None
     except RecursionError:  # tomllib reads nested lists and tables by recursion
-        raise SearcherError(f"space file nests lists or tables within one another hundreds deep; no key takes lists "
-                            f"nested more than {MAX_NESTING} deep (`input.sizes`: a list of [height, width] pairs)",
-                            file=file) from None
+        key = _deepest_key(text)
+        raise SearcherError(f"{f'`{key}`' if key else 'a value'} nests lists or tables within one another hundreds "
+                            f"deep; no key takes lists nested more than {MAX_NESTING} deep (`input.sizes`: a list of "
+                            "[height, width] pairs)", file=file, key=key) from None
     r = _Reader(data, file)
     _check_keys(r)
 
@@ -195,6 +196,20 @@ def read_space_text(text: str, file: str, default_name: str = "space") -> Space:
 
 _TABLE_LINE = re.compile(r"^\s*\[\s*([^\[\]]+?)\s*\]\s*(#.*)?$")
 _KEY_LINE = re.compile(r"^\s*((?:[A-Za-z0-9_-]+|\"[^\"]*\"|'[^']*')(?:\s*\.\s*(?:[A-Za-z0-9_-]+|\"[^\"]*\"|'[^']*'))*)\s*=")
+
+
+def _deepest_key(text: str) -> str | None:
+    """The key whose line opens the most brackets: what a parse too deep for tomllib was reading."""
+    table, found, most = "", None, 0
+    for line in text.splitlines():
+        if heading := _TABLE_LINE.match(line):
+            table = heading.group(1).strip()
+        elif key := _KEY_LINE.match(line):
+            run = line.count("[", key.end()) + line.count("{", key.end())
+            if run > most:
+                name = ".".join(p.strip().strip("'\"") for p in key.group(1).split("."))
+                found, most = f"{table}.{name}" if table else name, run
+    return found
 
 
 def _toml_problem(exc: tomllib.TOMLDecodeError, text: str) -> str:

@@ -79,7 +79,12 @@ def class_folders(path: Path) -> list[tuple[str, list[Path]]]:
         problem = name_problem(folder.name)
         if problem:
             raise SearcherError(f"class folder {shown(folder.name)} cannot name a class: {problem}", file=path)
-        files = [f for f in _listing(folder) if f.suffix.lower() in IMAGE_SUFFIXES and f.is_file()]
+        named = [f for f in _listing(folder) if f.suffix.lower() in IMAGE_SUFFIXES]
+        files = [f for f in named if f.is_file()]
+        if len(files) < len(named):  # a FIFO or a device would block or never end: passed over, and said so
+            odd = next(f for f in named if not f.is_file())
+            log.warning("class folder %r: passed over %d image name(s) that are not regular files, first %s",
+                        folder.name, len(named) - len(files), odd.name)
         if not files:
             raise SearcherError(f"class folder {folder.name!r} has no PNG or JPEG files "
                                 f"(names ending in {', '.join(IMAGE_SUFFIXES)})", file=folder)

@@ -26,7 +26,7 @@ import numpy as np
 from searcher.data import layout
 from searcher.data.demo import make_demo
 from searcher.data.folder import MODES, Decoded, decode_folder, default_workers
-from searcher.data.npz import read_npz
+from searcher.data.npz import read_member, read_npz
 from searcher.data.split import PARTS, check_split, load_split, save_split, split_indices  # noqa: F401  (re-exported)
 from searcher.errors import SearcherError, shown
 from searcher.files import not_regular
@@ -229,12 +229,13 @@ def _read_saved(folder: Path | None, key: str, shape: tuple[int, int, int],
                 log.info("the decoded copy in %s is out of date (the files changed); decoding again", path)
                 return None
             modes = json.loads(str(saved["modes"]))
-            decoded = Decoded(saved["images"], saved["labels"], tuple(str(n) for n in saved["class_names"]),
-                              tuple(str(u) for u in saved["unreadable"]), modes)
+            decoded = Decoded(read_member(saved, "images", path), read_member(saved, "labels", path),
+                              tuple(str(n) for n in saved["class_names"]), tuple(str(u) for u in saved["unreadable"]),
+                              modes)
             fingerprint = str(saved["fingerprint"])
         if decoded.images.shape[1:] != shape or len(decoded.images) != len(decoded.labels):
             raise ValueError(f"it holds images of shape {decoded.images.shape}, not N×{'×'.join(map(str, shape))}")
-    except (OSError, ValueError, KeyError, EOFError, zipfile.BadZipFile) as err:
+    except (OSError, ValueError, KeyError, EOFError, RecursionError, zipfile.BadZipFile) as err:  # SearcherError too
         log.warning("cannot read the decoded copy %s (%s); decoding again", path, err)
         return None
     log.info("read %d decoded images from %s", len(decoded.labels), path)

@@ -180,7 +180,7 @@ def _declared(archive: np.lib.npyio.NpzFile, key: str, path: Path) -> tuple[tupl
     return shape, dtype
 
 
-def _array(archive: np.lib.npyio.NpzFile, key: str, path: Path) -> np.ndarray:
+def read_member(archive: np.lib.npyio.NpzFile, key: str, path: Path) -> np.ndarray:
     """One member, its header checked before anything is allocated, with its read failures said in the user's terms."""
     try:
         _declared(archive, key, path)
@@ -223,10 +223,10 @@ def read_npz(path: Path, channels: int) -> tuple[np.ndarray, np.ndarray, tuple[s
     with _open(path) as archive:
         image_key = _find_key(archive, IMAGE_KEYS, "image", path)
         label_key = _find_key(archive, LABEL_KEYS, "label", path)
-        raw, labels = _array(archive, image_key, path), _array(archive, label_key, path)
+        raw, labels = read_member(archive, image_key, path), read_member(archive, label_key, path)
         names = None
         if "class_names" in archive.files:
-            stored = _array(archive, "class_names", path)
+            stored = read_member(archive, "class_names", path)
             if stored.dtype.kind not in "USiu":
                 raise SearcherError(f"`class_names` holds {stored.dtype} values; give one name (text) per class",
                                     file=path, key="class_names")

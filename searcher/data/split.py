@@ -3,10 +3,12 @@
 from __future__ import annotations
 
 import io
+import zipfile
 from pathlib import Path
 
 import numpy as np
 
+from searcher.data.npz import read_member
 from searcher.errors import SearcherError
 from searcher.files import not_regular
 from searcher.runs import write_atomic
@@ -93,8 +95,10 @@ def load_split(path: str | Path) -> tuple[dict[str, np.ndarray], str]:
         raise refused
     try:
         with np.load(path, allow_pickle=False) as archive:
-            stored = {k: archive[k] for k in archive.files}
-    except (OSError, ValueError, EOFError) as err:
+            stored = {k: read_member(archive, k, Path(path)) for k in archive.files}  # headers checked first
+    except SearcherError:
+        raise
+    except (OSError, ValueError, EOFError, zipfile.BadZipFile) as err:
         raise SearcherError(f"cannot read the stored split ({err})", file=path, key="split") from err
     if "fingerprint" not in stored:
         raise SearcherError("stored split has no fingerprint; store it with save_split", file=path, key="fingerprint")

@@ -4,6 +4,7 @@ from __future__ import annotations
 
 from pathlib import Path
 
+import numpy as np
 import pytest
 
 from searcher.cli.main import main
@@ -29,3 +30,58 @@ def refused(argv: list[str], capsys: pytest.CaptureFixture) -> str:
     assert status == 2, err
     assert "Traceback" not in err
     return err.strip().splitlines()[-1]
+
+
+def digits_folder(root: Path, per_class: int = 20, broken: bool = True) -> Path:
+    """Class folders of PNGs of three digits from the UCI set scikit-learn ships, plus one broken file."""
+    from PIL import Image
+    from sklearn.datasets import load_digits
+
+    digits = load_digits()
+    for label in range(3):
+        (root / f"digit{label}").mkdir(parents=True)
+        for i, image in enumerate(digits.images[digits.target == label][:per_class]):
+            Image.fromarray((image * 15).astype(np.uint8)).save(root / f"digit{label}" / f"{i}.png")
+    if broken:
+        (root / "digit0" / "broken.png").write_bytes(b"\x89PNG\r\n\x1a\n cut short")
+    return root
+
+
+@pytest.fixture(scope="module")
+def made(tmp_path_factory: pytest.TempPathFactory) -> Path:
+    """A search of three candidates (trained by a stand-in: no torch training) over a folder with one
+    broken file, started with --skip-unreadable; its working folder, holding runs/done/ and digits/."""
+    from searchkit import StandIn, search_here, write_space
+
+    folder = tmp_path_factory.mktemp("made")
+    digits_folder(folder / "digits")
+    search_here(folder, write_space(folder), "done", trainer_for=lambda run, threads: StandIn(1),
+                data=str(folder / "digits"), skip_unreadable=True, trials=3)
+    return folder
+
+
+@pytest.fixture
+def run_copy(made: Path, tmp_path: Path, monkeypatch: pytest.MonkeyPatch) -> Path:
+    """A copy of the made run's working folder to change, as the working folder; data loads start afresh."""
+    import shutil
+
+    from searcher.data import load as load_module
+
+    shutil.copytree(made, tmp_path / "w", symlinks=True)
+    folder = tmp_path / "w"
+    data = folder / "runs" / "done" / "run.json"
+    data.write_text(data.read_text().replace(str(made), str(folder)))  # not read by the commands; kept consistent
+    monkeypatch.chdir(folder)
+    monkeypatch.setattr(load_module, "_CACHE", {})
+    return folder
+
+
+def export_here(folder: Path, **fields) -> object:
+    from searcher.ship.export import ExportSettings, export
+    from searchkit import in_process
+
+    with in_process():
+        return export(ExportSettings(name="done", root=folder / "runs", epochs=1, **fields))
+
+
+ARCH = "1x16x16_c2k3-m2_gap-o3_relu"  # a candidate of searchkit's FAST_SPACE for three classes

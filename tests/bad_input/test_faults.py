@@ -11,10 +11,11 @@ from __future__ import annotations
 import os
 from pathlib import Path
 
+import numpy as np
 import pytest
 
 
-from checks import here, refused  # noqa: F401  (here is a fixture)
+from checks import ARCH, digits_folder, export_here, here, made, refused, run_copy  # noqa: F401  (fixtures)
 from catalogue import space_text
 
 
@@ -67,3 +68,194 @@ def test_a_space_file_that_is_no_regular_file_is_refused_at_once(here, capsys, s
         kind = "is a character device, not a regular file"
     line = refused(["census", "--space", special], capsys)
     assert f"space file '{special}' {kind}" in line
+
+
+# -- data files -------------------------------------------------------------------------------------
+IMAGES = np.random.default_rng(0).integers(0, 256, size=(30, 12, 12), dtype=np.uint8)
+LABELS = np.arange(30) % 3
+
+
+def census_data(here: Path, capsys: pytest.CaptureFixture, name: str = "bad.npz") -> str:
+    """The error line of `census --data`, which must leave no run folder behind (issue 17: it left an empty one)."""
+    line = refused(["census", "--space", "space.toml", "--data", name], capsys)
+    assert not (here / "runs").exists(), "a refused census left a folder behind"
+    return line
+
+
+@pytest.mark.parametrize(("arrays", "says"), [
+    ({"images": IMAGES.astype(bool)}, "`images` holds bool values; pixels must be numbers: uint8 (0–255)"),
+    ({"images": np.zeros((30, 0, 0), np.uint8)}, "`images` has shape (30, 0, 0): images of 0×0 pixels"),
+    ({"labels": np.r_[LABELS[:-1].astype(np.uint64), np.uint64(2**64 - 1)]},
+     "label 18446744073709551615 at position 29 in `labels` is far too large"),  # was reported as -1
+    ({"class_names": np.array([b"a", b"\xff", b"c"])}, "`class_names` holds the name b'\\xff', which is not UTF-8"),
+    ({"class_names": np.array(["a", "b" * 300, "c"])}, "a class name may have at most 255"),
+])
+def test_npz_contents_that_trained_on_black_images_or_were_misread(here, capsys, arrays, says):
+    """Bool and N×0×0 images trained on black images; a uint64 label 2⁶⁴−1 was reported as -1."""
+    np.savez(here / "bad.npz", **({"images": IMAGES, "labels": LABELS} | arrays))
+    assert says in census_data(here, capsys)
+
+
+def test_big_endian_16_bit_pixels_are_read_as_16_bit(tmp_path):
+    """`>u2` images were refused as out of range; they are scaled like native uint16 (value / 257)."""
+    from searcher.data.npz import read_npz
+
+    wide = (IMAGES.astype(np.uint16) * 257).astype(">u2")  # 0..65535, byte order as big-endian machines save it
+    np.savez(tmp_path / "be.npz", images=wide, labels=LABELS)
+    images, _, _ = read_npz(tmp_path / "be.npz", 1)
+    assert np.array_equal(images[:, 0], IMAGES)  # x·257 / 257 = x exactly (the 16-to-8-bit rule in README)
+
+
+def lying_npz(path: Path, shape: str) -> None:
+    """A good archive whose images header claims ``shape`` (padded to the header's length, as numpy pads it)."""
+    import io
+    import zipfile
+
+    buffer = io.BytesIO()
+    np.savez(buffer, images=IMAGES, labels=LABELS)
+    with zipfile.ZipFile(buffer) as source, zipfile.ZipFile(path, "w") as target:
+        for name in source.namelist():
+            data = source.read(name)
+            if name == "images.npy":
+                length = int.from_bytes(data[8:10], "little")
+                header = data[10:10 + length].decode("latin1").replace("(30, 12, 12)", shape).rstrip()
+                data = data[:10] + (header.ljust(length - 1) + "\n").encode("latin1") + data[10 + length:]
+            target.writestr(name, data)
+
+
+def test_an_npz_header_claiming_233_tib_is_refused_before_numpy_allocates(here, capsys):
+    """'Unable to allocate 233 TiB': the shape a header claims is checked against the bytes the file holds."""
+    lying_npz(here / "bad.npz", "(1000000000000, 16, 16)")
+    line = census_data(here, capsys)
+    assert "`images` claims shape (1000000000000, 16, 16) of uint8" in line and "the file holds" in line
+
+
+# -- stores ----------------------------------------------------------------------------------------
+def test_a_text_file_given_as_journal_store_is_refused_untouched(here, capsys):
+    """It was "repaired": 41 bytes cut, then the whole file replaced by a new store."""
+    notes = "shopping: milk, eggs\nremember the dentist on Friday"  # the last line has no line end
+    (here / "notes.journal").write_text(notes)
+    line = refused(["search", "--space", "space.toml", "--name", "j", "--storage", "notes.journal"], capsys)
+    assert "the store notes.journal is not a journal store" in line and "changes nothing in it" in line
+    assert (here / "notes.journal").read_text() == notes
+    assert sorted(p.name for p in here.iterdir()) == ["notes.journal", "space.toml"]  # no lock file, no run folder
+
+
+@pytest.mark.parametrize(("content", "says"), [
+    (b"just some words\n", "is not a journal store: its first line is not one of Optuna's journal records"),
+    (b'{"a":1}\n', "is not a journal store"),  # was "'op_code'"
+    (b"", None),  # empty: no run in it yet, said as such
+])
+def test_status_of_a_journal_that_is_not_one(here, capsys, content, says):
+    """Was "Expecting value: line 1 column 1" and "'op_code'"."""
+    (here / "x.journal").write_bytes(content)
+    line = refused(["status", "--name", "r", "--storage", "x.journal"], capsys)
+    assert (says or "no run 'r' in x.journal") in line
+    assert (here / "x.journal").read_bytes() == content
+
+
+def test_a_journal_damaged_in_the_middle_is_named_and_not_cut(tmp_path):
+    """Only a torn last append is cut (tests/test_crash.py); damage further in is refused by line."""
+    import optuna
+
+    from searcher.errors import SearcherError
+    from searcher.study.storage import open_storage
+
+    path = tmp_path / "study.journal"
+    study = optuna.create_study(storage=open_storage(str(path)), study_name="s")
+    for value in (0.1, 0.2, 0.3):
+        study.tell(study.ask(), value)
+    data = bytearray(path.read_bytes())
+    data[len(data) // 2: len(data) // 2 + 40] = b"x" * 40
+    path.write_bytes(bytes(data))
+    with pytest.raises(SearcherError, match=r"the journal store .* is damaged at line \d+ .*changes nothing"):
+        open_storage(str(path))
+    assert path.read_bytes() == bytes(data)
+
+
+def test_a_sqlite_file_of_another_program_is_not_taken_over(here, capsys):
+    """Optuna would have added its tables to the user's own database."""
+    import sqlite3
+
+    with sqlite3.connect(here / "mine.db") as connection:
+        connection.execute("CREATE TABLE parts (id INTEGER, name TEXT)")
+    before = (here / "mine.db").read_bytes()
+    line = refused(["search", "--space", "space.toml", "--name", "x", "--storage", "sqlite:///mine.db"], capsys)
+    assert "the store mine.db is a SQLite database of another program (tables ['parts'])" in line
+    assert (here / "mine.db").read_bytes() == before
+
+
+@pytest.mark.parametrize("url", [
+    "postgresql://alice:Pa@ss7Word@127.0.0.1:9/db",  # the driver said "failed to resolve host 'ss7Word@127.0.0.1'"
+    "postgresql://alice:A@B@C@Sec9@127.0.0.1:9/db",
+    "postgresql://alice:pa/ss7Word@127.0.0.1:9/db",
+])
+@pytest.mark.parametrize("command", ["search", "status", "export"])
+def test_a_password_with_an_unescaped_at_never_reaches_the_terminal(here, capsys, caplog, url, command):
+    argv = [command, "--name", "x", "--storage", url] + (["--space", "space.toml"] if command == "search" else [])
+    line = refused(argv, capsys)
+    assert "must write percent-encoded" in line and "alice:***@127.0.0.1:9/db" in line
+    for piece in ("ss7Word", "Sec9", "Pa@", "A@B"):
+        assert piece not in line and piece not in caplog.text
+    assert not (here / "runs").exists()
+
+
+def test_what_a_driver_echoes_of_a_password_is_hidden():
+    """The safety net behind the refusal: the driver's own message, as psycopg 3.3 gave it."""
+    from searcher.redact import password_pieces, redact
+
+    said = "(psycopg.OperationalError) failed to resolve host 'ss7Word@127.0.0.1': [Errno -2] Name or service not known"
+    assert "ss7Word" not in redact(said, password_pieces("postgresql://alice:Pa@ss7Word@127.0.0.1:9/db"))
+    said = "failed to resolve host 'B@C@Sec9@127.0.0.1'"
+    shown = redact(said, password_pieces("postgresql://alice:A@B@C@Sec9@127.0.0.1:9/db"))
+    assert "Sec9" not in shown and "C@" not in shown and "127.0.0.1" in shown
+
+
+@pytest.mark.parametrize(("url", "says"), [
+    ("postgresql://u:p@db:notaport/x", "the port 'notaport' must be a whole number from 1 to 65535"),  # int() said
+    ("postgresql://u:p@::1/x", "write an IPv6 address in brackets, as in postgresql://user@[::1]:5432/db"),
+    ("postgresql+psycopg2://u:p@127.0.0.1:9/x", "install the 'psycopg2' package the URL names, or write "
+                                                "postgresql:// to use psycopg 3"),  # advised the psycopg 3 extra
+])
+def test_storage_urls_that_gave_a_python_error(here, capsys, url, says):
+    assert says in refused(["status", "--name", "x", "--storage", url], capsys)
+
+
+# -- runs: a finished search to read, resume and export -------------------------------------------------
+def test_export_after_a_search_with_skip_unreadable_reads_the_run_as_it_was_read(made, run_copy):
+    """Export re-decoded the folder without skipping ("the decoded copy ... is out of date") and failed on
+    the broken file; export has no such option. The run's configuration carries it."""
+    from searcher.study.storage import open_run
+
+    assert open_run("done", root=run_copy / "runs")[2].skip_unreadable
+    (run_copy / "runs" / "done" / "decoded.npz").unlink()  # so the folder itself must be decoded again, skipping
+    outcome = export_here(run_copy, arch=ARCH)
+    assert (outcome.folder / "MODEL_CARD.md").is_file()
+
+
+def test_export_after_the_data_moved(made, run_copy, capsys):
+    """The run's decoded copy is the same data (its fingerprint says so); without it, the advice fits export,
+    which takes no --data."""
+    import shutil
+
+    from searcher.data import load as load_module
+    from searcher.errors import SearcherError
+
+    shutil.move(made / "digits", made / "digits-moved")
+    try:
+        assert export_here(run_copy, arch=ARCH).fits
+        (run_copy / "runs" / "done" / "decoded.npz").unlink()
+        load_module._CACHE.clear()  # as a new process would start
+        with pytest.raises(SearcherError, match=r"searched the data at .*digits, which is no longer there.*"
+                                                r"it takes no --data\): put it back there"):
+            export_here(run_copy, arch=ARCH)
+    finally:
+        shutil.move(made / "digits-moved", made / "digits")
+
+
+def test_resuming_with_other_data_says_what_changed_in_words(made, run_copy, capsys):
+    """Was "data fingerprint d04f... differs from the stored ede6..."."""
+    digits_folder(run_copy / "more", per_class=25, broken=False)
+    line = refused(["search", "--space", "space.toml", "--name", "done", "--data", "more"], capsys)
+    assert f"run 'done' was started on '{made / 'digits'}': 60 images in 3 classes at 1×16×16" in line
+    assert "--data 'more' now gives 75 images in 3 classes at 1×16×16" in line
