@@ -75,8 +75,8 @@ def check_run_paths(folder: Path, files: tuple[str, ...] = RUN_FILES, folders: t
     """
     why = why_unwritable(folder)
     if why is not None:
-        raise SearcherError(f"cannot write into run folder {folder}: {why}; run searcher from a folder where "
-                            "runs/ can be written", key="--name")
+        raise SearcherError(f"cannot write into run folder {folder}: {why}; this command writes there: make it "
+                            "writable, or run searcher from a folder where runs/ can be written", key="--name")
     for name, want in [(n, stat.S_ISREG) for n in files] + [(n, stat.S_ISDIR) for n in folders]:
         try:
             mode = os.lstat(folder / name).st_mode

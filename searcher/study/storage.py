@@ -132,7 +132,7 @@ def open_storage(url: str, *, create: bool = True) -> optuna.storages.BaseStorag
         if kind == "sqlite":
             read_only = check_sqlite(path)
             if not create:  # mode=rw: SQLite opens the file only if it exists, never makes a new one
-                mode = "ro&immutable=1" if read_only else "rw"  # in a read-only folder nobody can be writing it
+                mode = _read_only_mode(path) if read_only else "rw"
                 return _rdb_storage(f"sqlite:///file:{path}?mode={mode}&uri=true", {"connect_args": {"timeout": 120}})
             if read_only:
                 raise SearcherError(f"the store {path} is in a read-only folder; a search writes to it: run it "
@@ -171,7 +171,7 @@ def check_sqlite(path: Path) -> bool:
 
     An empty or missing file is fine (a new store). A file that is not SQLite, a database of another
     program's (it has tables, not Optuna's), or one SQLite finds damaged is named and left as it is.
-    Returns whether the file's folder is read-only (then the file can only be read, as immutable).
+    Returns whether the file's folder is read-only (then the file can only be read: see _read_only_mode).
     """
     if not path.exists() or path.stat().st_size == 0:
         return False
@@ -181,7 +181,7 @@ def check_sqlite(path: Path) -> bool:
         raise SearcherError(f"the store {path} is not a SQLite database (it starts {shown(head)}); searcher changes "
                             "nothing in it: give --storage a new file, or move this one away", key="--storage")
     read_only = not os.access(path.parent, os.W_OK | os.X_OK) or not os.access(path, os.W_OK)
-    uri = f"file:{path}?mode=ro" + ("&immutable=1" if read_only else "")
+    uri = f"file:{path}?mode=" + (_read_only_mode(path) if read_only else "ro")
     try:
         with contextlib.closing(sqlite3.connect(uri, uri=True, timeout=120)) as connection:
             tables = {row[0] for row in connection.execute("SELECT name FROM sqlite_master WHERE type = 'table'")}
@@ -195,6 +195,20 @@ def check_sqlite(path: Path) -> bool:
                             f"{shown(sorted(tables))}); searcher changes nothing in it: give --storage a new file",
                             key="--storage")
     return read_only
+
+
+def _read_only_mode(path: Path) -> str:
+    """How SQLite can read a store in a folder it cannot write: through the store's write-ahead log when one
+    is left (SQLite reads it read-only when its -shm index is there too), else as an immutable file (nobody
+    can be writing to it there)."""
+    wal = path.with_name(path.name + "-wal")
+    if not wal.exists() or wal.stat().st_size == 0:
+        return "ro&immutable=1"
+    if not path.with_name(path.name + "-shm").exists():
+        raise SearcherError(f"the store {path} has a write-ahead log ({wal.name}) that SQLite can read only where it "
+                            "may write its index beside it; make the folder writable once, and the log is folded "
+                            "into the store", key="--storage")
+    return "ro"
 
 
 def _damaged(path: Path, why: str) -> SearcherError:

@@ -2,7 +2,10 @@
 
 from __future__ import annotations
 
+import contextlib
+import signal
 from pathlib import Path
+from typing import Iterator
 
 import numpy as np
 import pytest
@@ -20,12 +23,31 @@ def here(tmp_path: Path, monkeypatch: pytest.MonkeyPatch) -> Path:
     return tmp_path
 
 
+SAFETY = 30  # seconds after which a command that blocks (on a FIFO, say) fails its case instead of hanging
+
+
+@contextlib.contextmanager
+def no_hang() -> Iterator[None]:
+    """A command that is still running after SAFETY seconds fails the case (a guard, not a timed assertion)."""
+    def hung(number, frame):
+        raise AssertionError(f"the command was still running after {SAFETY} s: it blocked on what it was given")
+
+    before = signal.signal(signal.SIGALRM, hung)
+    signal.alarm(SAFETY)
+    try:
+        yield
+    finally:
+        signal.alarm(0)
+        signal.signal(signal.SIGALRM, before)
+
+
 def refused(argv: list[str], capsys: pytest.CaptureFixture) -> str:
     """The one error line of a command that must exit 2 without a traceback."""
-    try:
-        status = main(argv)
-    except SystemExit as exc:
-        status = exc.code
+    with no_hang():
+        try:
+            status = main(argv)
+        except SystemExit as exc:
+            status = exc.code
     err = capsys.readouterr().err
     assert status == 2, err
     assert "Traceback" not in err
@@ -85,3 +107,24 @@ def export_here(folder: Path, **fields) -> object:
 
 
 ARCH = "1x16x16_c2k3-m2_gap-o3_relu"  # a candidate of searchkit's FAST_SPACE for three classes
+
+
+def npz_with_header(arrays: dict[str, np.ndarray], member: str, old: str, new: str) -> bytes:
+    """An archive of ``arrays`` whose ``member`` header says ``new`` where numpy wrote ``old`` (same length kept)."""
+    import io
+    import zipfile
+
+    buffer = io.BytesIO()
+    np.savez(buffer, **arrays)
+    out = io.BytesIO()
+    with zipfile.ZipFile(buffer) as source, zipfile.ZipFile(out, "w") as target:
+        for name in source.namelist():
+            data = source.read(name)
+            if name == f"{member}.npy":
+                length = int.from_bytes(data[8:10], "little")
+                header = data[10:10 + length].decode("latin1")
+                assert old in header, header
+                header = header.replace(old, new).rstrip()
+                data = data[:10] + (header.ljust(length - 1) + "\n").encode("latin1") + data[10 + length:]
+            target.writestr(name, data)
+    return out.getvalue()

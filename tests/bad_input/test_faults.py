@@ -8,15 +8,20 @@ can enter; these pin the examples the issue names.
 
 from __future__ import annotations
 
+import contextlib
 import os
+import subprocess
 from pathlib import Path
 
 import numpy as np
 import pytest
 
 
-from checks import ARCH, digits_folder, export_here, here, made, refused, run_copy  # noqa: F401  (fixtures)
-from catalogue import space_text
+from searcher.cli.main import main
+
+from checks import (ARCH, digits_folder, export_here, here, made, npz_with_header, refused,  # noqa: F401  (fixtures)
+                    run_copy)
+from catalogue import ARCH_OK, space_text
 
 
 def census_of(text: str, here: Path, capsys: pytest.CaptureFixture) -> str:
@@ -106,26 +111,10 @@ def test_big_endian_16_bit_pixels_are_read_as_16_bit(tmp_path):
     assert np.array_equal(images[:, 0], IMAGES)  # x·257 / 257 = x exactly (the 16-to-8-bit rule in README)
 
 
-def lying_npz(path: Path, shape: str) -> None:
-    """A good archive whose images header claims ``shape`` (padded to the header's length, as numpy pads it)."""
-    import io
-    import zipfile
-
-    buffer = io.BytesIO()
-    np.savez(buffer, images=IMAGES, labels=LABELS)
-    with zipfile.ZipFile(buffer) as source, zipfile.ZipFile(path, "w") as target:
-        for name in source.namelist():
-            data = source.read(name)
-            if name == "images.npy":
-                length = int.from_bytes(data[8:10], "little")
-                header = data[10:10 + length].decode("latin1").replace("(30, 12, 12)", shape).rstrip()
-                data = data[:10] + (header.ljust(length - 1) + "\n").encode("latin1") + data[10 + length:]
-            target.writestr(name, data)
-
-
 def test_an_npz_header_claiming_233_tib_is_refused_before_numpy_allocates(here, capsys):
     """'Unable to allocate 233 TiB': the shape a header claims is checked against the bytes the file holds."""
-    lying_npz(here / "bad.npz", "(1000000000000, 16, 16)")
+    data = npz_with_header({"images": IMAGES, "labels": LABELS}, "images", "(30, 12, 12)", "(1000000000000, 16, 16)")
+    (here / "bad.npz").write_bytes(data)
     line = census_data(here, capsys)
     assert "`images` claims shape (1000000000000, 16, 16) of uint8" in line and "the file holds" in line
 
@@ -259,3 +248,131 @@ def test_resuming_with_other_data_says_what_changed_in_words(made, run_copy, cap
     line = refused(["search", "--space", "space.toml", "--name", "done", "--data", "more"], capsys)
     assert f"run 'done' was started on '{made / 'digits'}': 60 images in 3 classes at 1×16×16" in line
     assert "--data 'more' now gives 75 images in 3 classes at 1×16×16" in line
+
+
+# -- folders that cannot be written ------------------------------------------------------------------------
+@contextlib.contextmanager
+def read_only(folder: Path):
+    """``folder`` made read-only: by its mode for an ordinary user, by a read-only bind mount for root (whom
+    modes do not stop); skipped where neither can be had."""
+    if os.geteuid() != 0:
+        modes = {p: p.stat().st_mode for p in [folder, *folder.rglob("*")] if p.is_dir()}
+        for path in modes:
+            path.chmod(0o555)
+        try:
+            yield
+        finally:
+            for path, mode in modes.items():
+                path.chmod(mode)
+        return
+    try:
+        subprocess.run(["mount", "--bind", str(folder), str(folder)], check=True, capture_output=True)
+    except (OSError, subprocess.CalledProcessError):
+        pytest.skip("root ignores folder modes, and this machine allows no bind mount to make a folder read-only")
+    try:
+        subprocess.run(["mount", "-o", "remount,bind,ro", str(folder)], check=True, capture_output=True)
+        yield
+    finally:
+        subprocess.run(["umount", "-l", str(folder)], check=False, capture_output=True)  # lazily: stores stay open
+
+
+@pytest.mark.parametrize("log", ["left", "folded in"])
+def test_a_read_only_run_folder_is_read_and_said_plainly(run_copy, capsys, log):
+    """status, report and export said "attempt to write a readonly database" though status only reads.
+    The store is read with its write-ahead log when a killed search left one, else as an immutable file."""
+    import sqlite3
+
+    if log == "folded in":  # as a search that ended leaves it
+        with sqlite3.connect(run_copy / "runs" / "done" / "study.db") as connection:
+            connection.execute("PRAGMA wal_checkpoint(TRUNCATE)")
+    with read_only(run_copy / "runs"):
+        assert main(["status", "--name", "done"]) == 0
+        assert "tried 3: rejected 0, trained 3" in capsys.readouterr().out
+        for argv in (["report", "--name", "done"], ["export", "--name", "done", "--epochs", "1"],
+                     ["search", "--space", "space.toml", "--name", "done", "--data", "digits"]):
+            line = refused(argv, capsys)
+            assert "cannot write into run folder runs/done: runs/done is read-only" in line, line
+            assert "readonly database" not in line and "--storage" not in line
+
+
+@pytest.mark.parametrize("argv", [["census", "--space", "space.toml"], ["search", "--space", "space.toml", "--name", "x"],
+                                  ["status", "--name", "x"], ["report", "--name", "x"], ["export", "--name", "x"]])
+def test_a_runs_path_that_is_a_file(here, capsys, argv):
+    """Was reported as "cannot open `--storage` sqlite:///..." when no --storage was given."""
+    (here / "runs").write_text("not a folder")
+    line = refused(argv, capsys)
+    assert "runs is a regular file, not a folder" in line and "--storage" not in line.split("(give")[0], line
+    assert (here / "runs").read_text() == "not a folder"
+
+
+# -- options -----------------------------------------------------------------------------------------------
+def test_a_training_memory_guard_no_candidate_can_meet_is_refused_up_front(here, capsys):
+    """`--max-train-memory 1B` ran 12 s of rejections, then said "the space looks exhausted"."""
+    line = refused(["search", "--space", "space.toml", "--name", "x", "--max-train-memory", "1B"], capsys)
+    assert "`--max-train-memory` 1 B is less than training any candidate takes: its batch of 128 input images " \
+           "alone holds 72 KiB in fp32" in line  # 128 · 1·12·12 pixels · 4 bytes, the base space's smallest input
+
+
+def test_a_cap_no_candidate_meets_names_the_option_that_set_it(here, capsys):
+    """`--max-params 5` said no candidate fits "(.../tiny.toml)" without naming the flag."""
+    line = refused(["search", "--space", "space.toml", "--name", "x", "--max-params", "5"], capsys)
+    assert "(cap 5, from --max-params)" in line and "loosen the caps (--max-params)" in line
+
+
+@pytest.mark.parametrize("argv", [["search", "--space", "space.toml", "--name", "x", "--max-params", "-5k"],
+                                  ["census", "--space", "space.toml", "--max-weight", "-1KiB"],
+                                  ["cost", ARCH_OK, "--max-macs", "-2M"]])
+def test_a_value_starting_with_a_dash_reaches_the_options_check(here, capsys, argv):
+    """`--max-params -5k` said "expected one argument"."""
+    option, value = argv[-2], argv[-1]
+    line = refused(argv, capsys)
+    assert f"`{option}` must be" in line and repr(value) in line and "expected one argument" not in line
+
+
+def test_export_refuses_trial_and_arch_together(here, capsys):
+    """`export --trial 0 --arch X` dropped --trial silently."""
+    line = refused(["export", "--name", "x", "--trial", "0", "--arch", ARCH_OK], capsys)
+    assert "give `--trial` or `--arch`, not both" in line
+
+
+def test_status_counts_a_reused_outcome_once(run_copy, capsys):
+    """"trained 269" for one real training: proposals that reused an outcome are said apart."""
+    import optuna
+
+    from searcher.results.records import RECORD, record_of
+
+    study = optuna.load_study(study_name="done", storage=f"sqlite:///{run_copy / 'runs/done/study.db'}")
+    first = next(t for t in study.trials if record_of(t).get("state") == "trained")
+    for _ in range(2):  # two proposals of the same candidate that took its outcome over, as the loop records them
+        trial = study.ask()
+        trial.set_user_attr(RECORD, record_of(first) | {"repeat_of": first.number})
+        study.tell(trial, first.values)
+    assert main(["status", "--name", "done"]) == 0
+    out = capsys.readouterr().out
+    assert "tried 5: rejected 0, trained 3," in out and "; 2 more reused a known outcome without training" in out
+
+
+@pytest.mark.parametrize("form", ["missing", "unreadable", "cut", "pickled", "fifo"])
+def test_a_census_whose_data_is_refused_leaves_no_folder(here, capsys, form):
+    """It exited 2 but left an empty runs/NAME/."""
+    path = here / "bad.npz"
+    if form == "fifo":
+        os.mkfifo(path)
+    elif form == "unreadable":
+        path.write_bytes(b"\x00" * 64)
+    elif form == "cut":
+        np.savez(path, images=IMAGES, labels=LABELS)
+        path.write_bytes(path.read_bytes()[:200])
+    elif form == "pickled":
+        np.savez(path, images=IMAGES, labels=np.array([{"class": 0}] * 30, dtype=object))
+    assert "bad.npz" in census_data(here, capsys)
+
+
+def test_a_resumed_search_reads_the_data_as_its_start_did(made, run_copy):
+    """--skip-unreadable given at the start carries into the next search of the run without being repeated."""
+    from searchkit import StandIn, search_here
+
+    (run_copy / "runs" / "done" / "decoded.npz").unlink()  # so the folder, broken file and all, is decoded again
+    outcome = search_here(run_copy, run_copy / "space.toml", "done", trainer_for=lambda run, threads: StandIn(1),
+                          data=str(made / "digits"), trials=4)
+    assert outcome.exit_status == 0 and outcome.counts["tried"] >= 4

@@ -17,12 +17,11 @@ from __future__ import annotations
 import contextlib
 import os
 import shutil
-import signal
 import socket
 import sqlite3
 import zlib
 from pathlib import Path
-from typing import Callable, Iterator
+from typing import Callable
 
 import numpy as np
 import pytest
@@ -30,25 +29,10 @@ import pytest
 from searcher.cli.main import main
 
 from catalogue import ARCH_OK, SPACE_KEYS, space_text
-from checks import made  # noqa: F401  (a fixture)
+from checks import made, no_hang, npz_with_header  # noqa: F401  (made is a fixture)
 
-SAFETY = 30  # seconds after which a case that blocks (a FIFO opened for reading) fails instead of hanging
 IMAGES = np.random.default_rng(1).integers(0, 256, size=(30, 12, 12), dtype=np.uint8)
 LABELS = np.arange(30) % 3
-
-
-@contextlib.contextmanager
-def no_hang() -> Iterator[None]:
-    def hung(number, frame):
-        raise AssertionError(f"the command was still running after {SAFETY} s: it blocked on what it was given")
-
-    before = signal.signal(signal.SIGALRM, hung)
-    signal.alarm(SAFETY)
-    try:
-        yield
-    finally:
-        signal.alarm(0)
-        signal.signal(signal.SIGALRM, before)
 
 
 def outcome(argv: list[str], capsys: pytest.CaptureFixture) -> tuple[int | None, str]:
@@ -334,27 +318,6 @@ def test_architecture_json_nested_deep(here, capsys, place, depth):
 
 
 # -- headers that lie --------------------------------------------------------------------------------------
-def npz_with_header(arrays: dict[str, np.ndarray], member: str, old: str, new: str) -> bytes:
-    """An archive of ``arrays`` whose ``member`` header says ``new`` where numpy wrote ``old`` (same length kept)."""
-    import io
-    import zipfile
-
-    buffer = io.BytesIO()
-    np.savez(buffer, **arrays)
-    out = io.BytesIO()
-    with zipfile.ZipFile(buffer) as source, zipfile.ZipFile(out, "w") as target:
-        for name in source.namelist():
-            data = source.read(name)
-            if name == f"{member}.npy":
-                length = int.from_bytes(data[8:10], "little")
-                header = data[10:10 + length].decode("latin1")
-                assert old in header, header
-                header = header.replace(old, new).rstrip()
-                data = data[:10] + (header.ljust(length - 1) + "\n").encode("latin1") + data[10 + length:]
-            target.writestr(name, data)
-    return out.getvalue()
-
-
 def npz_with_directory_size(arrays: dict[str, np.ndarray], member: str, size: int) -> bytes:
     """An archive whose zip headers claim ``size`` bytes for ``member`` unpacked (what a zip bomb claims)."""
     import io
