@@ -210,6 +210,12 @@ def test_storage_urls_that_gave_a_python_error(here, capsys, url, says):
     assert says in refused(["status", "--name", "x", "--storage", url], capsys)
 
 
+def test_an_ipv6_host_in_brackets_is_a_host():
+    from searcher.study.storage import storage_kind
+
+    assert storage_kind("postgresql://u:p%40ss@[::1]:5432/db") == "postgresql"  # RFC 3986: bracketed, '@' as %40
+
+
 # -- runs: a finished search to read, resume and export -------------------------------------------------
 def test_export_after_a_search_with_skip_unreadable_reads_the_run_as_it_was_read(made, run_copy):
     """Export re-decoded the folder without skipping ("the decoded copy ... is out of date") and failed on
@@ -240,6 +246,14 @@ def test_export_after_the_data_moved(made, run_copy, capsys):
             export_here(run_copy, arch=ARCH)
     finally:
         shutil.move(made / "digits-moved", made / "digits")
+
+
+def test_resuming_with_another_space_says_what_changed_in_words(made, run_copy, capsys):
+    text = (run_copy / "space.toml").read_text().replace("sizes = [[12, 12], [16, 16]]", "sizes = [[12, 12]]")
+    (run_copy / "other.toml").write_text(text)
+    line = refused(["search", "--space", "other.toml", "--name", "done", "--data", str(made / "digits")], capsys)
+    assert "60 images in 3 classes at 1×16×16" in line and "(the same path) now gives 60 images in 3 classes at " \
+           "1×12×12; the space file changed too" in line
 
 
 def test_resuming_with_other_data_says_what_changed_in_words(made, run_copy, capsys):

@@ -392,6 +392,7 @@ def test_ctrl_c_while_a_new_search_is_set_up_leaves_nothing(tmp_path, monkeypatc
 
 # -- divergence in every training path ---------------------------------------------------------------------
 DIVERGE = {"a step past float32": {"optimizer": "sgd", "learning_rate": 1e300},
+           "a weight decay past float32": {"optimizer": "sgd", "weight_decay": 1e300},
            "weights turned NaN": {"learning_rate": 1e30}}
 
 
