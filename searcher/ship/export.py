@@ -224,7 +224,7 @@ def export(settings: ExportSettings) -> ExportOutcome:
                                  train_settings, seed=config.seed, metric=config.metric, classes=config.classes)
     except Diverged as exc:  # not the user's typing, but nothing to export: said plainly, exit status 2
         raise SearcherError(
-            f"training {arch} with the export's schedule ({epochs} epochs, learning rate "
+            f"training {arch} with the export's schedule (epochs {epochs}, learning rate "
             f"{train_settings.learning_rate:g}, weight decay {train_settings.weight_decay:g}) diverged: {exc.reason}; "
             f"nothing was written. Lower `train.learning_rate` or `train.weight_decay` in the space file, give fewer "
             f"--epochs, or export another candidate", key="--arch" if settings.arch else "--trial") from None

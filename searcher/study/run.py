@@ -146,12 +146,17 @@ def prepare(settings: SearchSettings, budget: dict | None = None, train: dict | 
         log.warning("%s", describe_few_examples(found))
     _check_something_fits(space, budget, dataset.num_classes, given=budget_given(budget_overrides or {}))
     config = RunConfig(
-        space_name=space.name, space_text=read_regular(space.file, MAX_SPACE_FILE_BYTES, "space file").decode("utf-8"),
+        space_name=space.name, space_text=_text_of(space),
         budget=asdict(budget), train=asdict(train_settings), data=settings.data,
         data_fingerprint=dataset.fingerprint, classes=dataset.num_classes, class_names=tuple(dataset.class_names),
         objective=settings.objective, seed=settings.seed, metric=settings.metric, skip_unreadable=skip_unreadable,
     )
     return PreparedRun(settings, space, budget, train_settings, RunData(dataset), config, folder, url)
+
+
+def _text_of(space: Space) -> str:
+    """The space file's text as stored with the run (a byte-order mark kept, as runs before kept it)."""
+    return read_regular(space.file, MAX_SPACE_FILE_BYTES, "space file").decode("utf-8")
 
 
 def _changed(settings: SearchSettings, started: RunConfig | None, split: dict | None, space: Space,
@@ -162,8 +167,7 @@ def _changed(settings: SearchSettings, started: RunConfig | None, split: dict | 
     before = describe_data(sum(len(i) for i in split.values()), started.classes,
                            read_space_text(started.space_text, "<stored space>").data_shape)
     source = f"--data {shown(settings.data)}" + (" (the same path)" if settings.data == started.data else "")
-    space_note = ("" if started.space_text == read_regular(space.file, MAX_SPACE_FILE_BYTES, "space file").decode(
-        "utf-8") else "; the space file changed too")
+    space_note = "" if started.space_text == _text_of(space) else "; the space file changed too"
     return SearcherError(f"run {settings.name!r} was started on {shown(started.data)}: {before}; {source} now gives "
                          f"{exc.now}{space_note}. Continue the run with the data it searched, or start a new run with "
                          "another --name", key="--data")

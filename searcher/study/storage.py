@@ -163,7 +163,7 @@ def _driver_advice(url: str) -> str:
 
 
 SQLITE_HEADER = b"SQLite format 3\0"  # the first 16 bytes of every SQLite database file (sqlite.org/fileformat.html)
-OPTUNA_TABLES = {"studies", "trials", "alembic_version"}  # tables Optuna's RDB storage always creates
+OPTUNA_TABLES = {"studies", "trials"}  # tables Optuna's RDB storage creates at once (alembic_version comes after)
 
 
 def check_sqlite(path: Path) -> bool:
@@ -182,11 +182,18 @@ def check_sqlite(path: Path) -> bool:
                             "nothing in it: give --storage a new file, or move this one away", key="--storage")
     read_only = not os.access(path.parent, os.W_OK | os.X_OK) or not os.access(path, os.W_OK)
     uri = f"file:{path}?mode=" + (_read_only_mode(path) if read_only else "ro")
-    try:
+
+    def look() -> tuple[set[str], list[str]]:
         with contextlib.closing(sqlite3.connect(uri, uri=True, timeout=120)) as connection:
             tables = {row[0] for row in connection.execute("SELECT name FROM sqlite_master WHERE type = 'table'")}
-            verdict = [row[0] for row in connection.execute("PRAGMA quick_check(3)")]
+            return tables, [row[0] for row in connection.execute("PRAGMA quick_check(3)")]
+
+    try:
+        tables, verdict = _retried(look)  # another search may be switching a new store to WAL mode this moment
     except sqlite3.DatabaseError as exc:  # "file is not a database", "database disk image is malformed"
+        if _CREATION_RACE.search(str(exc)):
+            raise SearcherError(f"the store {path} stayed locked by another process: {exc}; try again when it is "
+                                "done", key="--storage") from None
         raise _damaged(path, str(exc)) from None
     if verdict != ["ok"]:
         raise _damaged(path, "; ".join(verdict))
