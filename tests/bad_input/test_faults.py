@@ -16,12 +16,11 @@ from pathlib import Path
 import numpy as np
 import pytest
 
-
 from searcher.cli.main import main
 
 from checks import (ARCH, digits_folder, export_here, here, made, npz_with_header, refused,  # noqa: F401  (fixtures)
                     run_copy)
-from catalogue import ARCH_OK, space_text
+from catalogue import ARCH_OK
 
 
 def census_of(text: str, here: Path, capsys: pytest.CaptureFixture) -> str:
