@@ -126,6 +126,14 @@ def counts(frame: pd.DataFrame) -> dict[str, int]:
     return counts_of(frame["state"].value_counts().to_dict(), repeats)
 
 
+def judged_counts(frame: pd.DataFrame) -> dict[str, int]:
+    """Like :func:`counts`, but each state counts distinct candidates: a proposal that reused a known
+    outcome is counted once, under 'repeats', not again under the state it reused (a run that trained
+    one candidate and was proposed it 268 more times trained 1, not 269). 'tried' still counts them all."""
+    every = counts(frame)
+    return counts(distinct_rows(frame)) | {"tried": every["tried"], "repeats": every["repeats"]}
+
+
 def counts_of(by_state: dict[str, int], repeats: int) -> dict[str, int]:
     """Every state's count, 'tried' (every proposal that was judged: neither left for later nor
     yielded to another worker) and 'repeats' (proposals that reused a known outcome)."""

@@ -129,6 +129,9 @@ def summary(results: RunResults, extra: dict | None = None) -> dict:
     return data | (extra or {})
 
 
+RESULT_FILES = ("trials.csv", "front.csv", "confirmed.csv", "summary.json", "report.html")  # what write_results writes
+
+
 def write_results(folder: Path, results: RunResults, *, title: str, notes: list[str],
                   extra: dict | None = None) -> list[Path]:
     """trials.csv, front.csv, confirmed.csv (once confirmation began), summary.json and report.html."""

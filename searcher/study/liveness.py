@@ -24,6 +24,7 @@ import optuna
 from optuna.trial import TrialState
 
 from searcher.results.records import HEARTBEAT, INTERRUPTED, RECORD, record_of, worker_id
+from searcher.runs import pid_alive
 from searcher.study.optuna_private import set_trial_attr
 
 log = logging.getLogger(__name__)
@@ -37,16 +38,6 @@ UNCLAIMED_SECONDS = 60.0  # asked but never claimed for this long: the worker di
 def claim(trial: optuna.Trial) -> None:
     """Mark the trial as this process's, before anything else happens to it."""
     trial.set_user_attr(WORKER, worker_id())
-
-
-def pid_alive(pid: int) -> bool:
-    try:
-        os.kill(pid, 0)
-    except ProcessLookupError:
-        return False
-    except PermissionError:
-        return True
-    return True
 
 
 class Registry:
