@@ -28,7 +28,7 @@ def cmd_search(args: argparse.Namespace, space_path, budget_of) -> int:
           f"(proxy search {outcome.proxy_seconds / 60:.1f} min, confirmation {outcome.confirm_seconds / 60:.1f} min)")
     print(f"tried {c['tried']}: rejected {c['rejected']}, trained {c['trained']}, stopped early {c['stopped_early']}, "
           f"failed {c['failed']}, interrupted {c['interrupted']}"
-          + (f"; {c['repeats']} of these reused a known outcome" if c["repeats"] else ""))
+          + (f"; {c['repeats']} more reused a known outcome without training" if c["repeats"] else ""))
     if outcome.rejected_share:
         print("share of proposals rejected, per 50: " + ", ".join(f"{s:.0%}" for s in outcome.rejected_share))
     if outcome.rejected_by:

@@ -121,24 +121,19 @@ def trials_frame(study: optuna.Study) -> pd.DataFrame:
 
 
 def counts(frame: pd.DataFrame) -> dict[str, int]:
-    """Trials by state, plus 'tried' and 'repeats' (see :func:`counts_of`)."""
-    repeats = len(frame) - len(distinct_rows(frame))
-    return counts_of(frame["state"].value_counts().to_dict(), repeats)
-
-
-def judged_counts(frame: pd.DataFrame) -> dict[str, int]:
-    """Like :func:`counts`, but each state counts distinct candidates: a proposal that reused a known
-    outcome is counted once, under 'repeats', not again under the state it reused (a run that trained
-    one candidate and was proposed it 268 more times trained 1, not 269). 'tried' still counts them all."""
-    every = counts(frame)
-    return counts(distinct_rows(frame)) | {"tried": every["tried"], "repeats": every["repeats"]}
+    """Distinct candidates by state, plus 'tried' and 'repeats' (see :func:`counts_of`)."""
+    distinct = distinct_rows(frame)
+    state = distinct["state"] if "state" in distinct.columns else pd.Series(dtype=object)
+    return counts_of(state.value_counts().to_dict(), len(frame) - len(distinct))
 
 
 def counts_of(by_state: dict[str, int], repeats: int) -> dict[str, int]:
-    """Every state's count, 'tried' (every proposal that was judged: neither left for later nor
-    yielded to another worker) and 'repeats' (proposals that reused a known outcome)."""
+    """Every state's count of distinct candidates: a proposal that reused a known outcome is counted once,
+    under 'repeats', not again under the state it reused (a run that trained one candidate and was
+    proposed it 268 more times trained 1, not 269). 'tried' counts every proposal that was judged
+    (neither left for later nor yielded to another worker), the repeats among them."""
     out = {s: int(by_state.get(s, 0)) for s in STATES}
-    out["tried"] = sum(out[s] for s in JUDGED)
+    out["tried"] = sum(out[s] for s in JUDGED) + repeats
     out["repeats"] = repeats
     return out
 

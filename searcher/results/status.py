@@ -16,7 +16,7 @@ from optuna.trial import TrialState
 
 from searcher.core.budget import Budget
 from searcher.redact import redact
-from searcher.results.records import HEARTBEAT, METRICS, best_row, judged_counts, trials_frame
+from searcher.results.records import HEARTBEAT, METRICS, best_row, counts, trials_frame
 from searcher.results.tables import RESULT_FILES, gather, write_results
 from searcher.runs import RUNS, check_run_paths
 from searcher.study.liveness import Registry, is_dead
@@ -39,7 +39,7 @@ class RunStatus:
 
     name: str
     config: RunConfig
-    counts: dict[str, int]  # distinct candidates by state, with 'tried' and 'repeats' (see judged_counts)
+    counts: dict[str, int]  # distinct candidates by state, with 'tried' and 'repeats' (see records.counts)
     training_seconds: float  # training time spent over the run's life
     best: dict[str, Any] | None  # the best fully trained candidate that fits
     running: tuple[RunningTrial, ...]
@@ -80,7 +80,7 @@ def status(name: str, storage: str | None = None, root: Path = RUNS) -> RunStatu
         beat = t.user_attrs.get(HEARTBEAT)
         running.append(RunningTrial(t.number, f"{worker.get('host', '?')}:{worker.get('pid', '?')}",
                                     None if beat is None else now - beat, is_dead(t, now, host, alone)))
-    return RunStatus(name, config, judged_counts(frame), float(frame["train_seconds"].sum()),
+    return RunStatus(name, config, counts(frame), float(frame["train_seconds"].sum()),
                      best_row(frame, Budget(**config.budget).caps(), METRICS[config.metric]), tuple(running))
 
 

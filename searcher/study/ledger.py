@@ -36,7 +36,7 @@ class Ledger:
     def __init__(self, score: str = "val_accuracy") -> None:
         self.score = score  # the record's column the search ranks by
         self.seen: set[int] = set()
-        self.by_state: Counter[str] = Counter()  # searcher state -> finished trials (repeats included)
+        self.by_state: Counter[str] = Counter()  # searcher state -> finished distinct candidates (repeats apart)
         self.repeats = 0
         self.spent = 0  # candidates that used training time (trained, stopped early, failed; repeats excluded)
         self.best = math.nan  # best validation score of a trained candidate
@@ -59,10 +59,10 @@ class Ledger:
             return
         self.seen.add(number)
         state = finished_state(record)
-        self.by_state[state] += 1
         if record.get("repeat_of") is not None:
             self.repeats += 1
             return
+        self.by_state[state] += 1
         if state not in SPENT:
             return
         self.spent += 1
