@@ -10,6 +10,13 @@
    only afterwards, on the UCI digits set (scikit-learn) with a 5k-parameter cap. Printed: the wall
    time our search needs to reach the plain loop's best fitting validation accuracy, as a ratio of
    the time the plain loop needed to reach it. Goal: ≤ 1/3.
+3. Early stopping, ``halving``: the same search (confirmation off, a fixed number of candidates)
+   with successive halving among the 8 candidates of nearest cost (today's rule) and among all
+   candidates (plain successive halving, what the search did before), per seed, on the demo and
+   on examples/make_lot_codes.py's lot codes (a real cost trade-off). Printed: the share of
+   candidates stopped and of their proxy epochs saved (halving's savings), full trainings below and
+   above the median cost of the fitting candidates, the best fitting proxy score and the
+   hypervolume of the proxy front (accuracy against parameters within the caps).
 """
 
 from __future__ import annotations
@@ -145,19 +152,88 @@ def against_plain_loop(folder: Path, seed: int) -> None:
           f"ours to reach / plain loop to reach = {reached / plain_seconds:.2f}")
 
 
+def halving(folder: Path, data: str, seed: int, trials: int, objective: str | None = None) -> None:
+    """One search per rule on ``data``, ``trials`` candidates each, confirmation off; one line per rule."""
+    import functools
+
+    import searcher.study.worker as worker_module
+    from searcher.core.census_report import CensusSettings, run_census
+    from searcher.results.pareto import hypervolume, reference_cost
+    from searcher.study.early_stop import CostAwareHalving
+
+    if data == "lot-codes":
+        sys.path.insert(0, str(ROOT / "examples"))
+        import numpy as np
+        from make_lot_codes import make_lot_codes
+
+        path = folder / "lot_codes.npz"
+        if not path.exists():
+            images, labels, names = make_lot_codes()
+            np.savez_compressed(path, images=images, labels=labels, class_names=np.array(names))
+        source, space = str(path), str(ROOT / "examples" / "lot_codes.toml")
+    else:
+        source, space = "demo", str(ROOT / "examples" / "stamp_inspection.toml")
+    real = worker_module.CostAwareHalving
+    for rule, neighbours in (("cost neighbours", None), ("all candidates", 10**9)):
+        if neighbours is not None:
+            worker_module.CostAwareHalving = functools.partial(CostAwareHalving, neighbours=neighbours)
+        settings = SearchSettings(name=f"halving-{data}-{seed}-{neighbours or 8}-{objective}", space=space,
+                                  data=source, trials=trials, seed=seed, root=folder, confirm=ConfirmSettings(seeds=0),
+                                  **({"objective": objective} if objective else {}))
+        try:
+            started = time.perf_counter()
+            outcome = search(settings)
+            wall = time.perf_counter() - started
+        finally:
+            worker_module.CostAwareHalving = real
+        run = prepare(settings)
+        census = run_census(run.space, run.budget, CensusSettings(classes=run.data.num_classes))
+        fitting = census.costs["params"][census.fits]
+        median = float(pd.Series(fitting).median())
+        table = pd.read_csv(outcome.folder / "trials.csv")
+        table = table[table["repeat_of"].isna() & table["state"].isin(["trained", "stopped_early"])]
+        full = table[table["state"] == "trained"]
+        stopped = table[table["state"] == "stopped_early"]
+        epochs = run.train.epochs
+        saved = (epochs - stopped["epochs"]).sum() / max(1, len(table) * epochs)
+        caps = run.budget.caps()
+        inside = full[feasible(full, caps)]
+        hv = hypervolume(inside["val_accuracy"], inside["params"], chance=1 / run.data.num_classes,
+                         reference_cost=reference_cost(caps, "params", fitting)) if len(inside) else 0.0
+        print(f"[halving {data} seed {seed} {settings.objective}] {rule:15s}: {len(table)} trained, stopped {len(stopped) / max(1, len(table)):.0%} "
+              f"saving {saved:.0%} of their proxy epochs; in full {int((full['params'] < median).sum())} below / "
+              f"{int((full['params'] >= median).sum())} above the median {median:,.0f} params; best fitting "
+              f"{inside['val_accuracy'].max() if len(inside) else float('nan'):.4f}; proxy-front hypervolume {hv:.3f}; "
+              f"{wall:.0f} s", flush=True)
+
+
+def feasible(frame: pd.DataFrame, caps: dict) -> pd.Series:
+    from searcher.results.pareto import feasible_mask
+
+    return feasible_mask(frame, caps)
+
+
 if __name__ == "__main__":
     optuna.logging.set_verbosity(optuna.logging.WARNING)
     import argparse
 
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
-    parser.add_argument("what", nargs="*", choices=["overhead", "plain"])
+    parser.add_argument("what", nargs="*", choices=["overhead", "plain", "halving"])
     parser.add_argument("--epochs", type=int, help="proxy epochs for the overhead part (default: the example's)")
+    parser.add_argument("--data", default="demo,lot-codes", help="halving: data sets, of demo, lot-codes")
+    parser.add_argument("--seeds", default="0,1,2", help="halving: seeds (default 0,1,2)")
+    parser.add_argument("--trials", type=int, default=30, help="halving: candidates per search (default 30)")
+    parser.add_argument("--objective", help="halving: the search's objective (default: the library's)")
     args = parser.parse_args()
     which = args.what or ["overhead", "plain"]
     with tempfile.TemporaryDirectory() as tmp:
         if "overhead" in which:
             for store in ("sqlite", "journal"):
                 overhead(Path(tmp), store, args.epochs)
+        if "halving" in which:
+            for data in args.data.split(","):
+                for seed in map(int, args.seeds.split(",")):
+                    halving(Path(tmp), data, seed, args.trials, args.objective)
         if "plain" in which:
             for seed in (0, 1, 2):
                 (Path(tmp) / f"seed{seed}").mkdir()

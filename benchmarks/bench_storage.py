@@ -38,7 +38,6 @@ import numpy as np  # noqa: E402
 import optuna  # noqa: E402
 
 from searcher.core.budget import Budget  # noqa: E402
-from searcher.study.early_stop import make_pruner  # noqa: E402
 from searcher.study.worker import Worker, WorkerPlan  # noqa: E402
 from searcher.core.space_file import load_space  # noqa: E402
 from searcher.study.storage import RunConfig, make_sampler, open_study  # noqa: E402
@@ -71,7 +70,7 @@ def make_search(url: str | None, name: str, budget: Budget, worker: int = 0) -> 
                        class_names=tuple(map(str, range(CLASSES))), objective="accuracy", seed=0)
     if url is None:
         study = optuna.create_study(study_name=name, sampler=make_sampler("tpe", "accuracy", worker),
-                                    pruner=make_pruner(EPOCHS))
+                                    pruner=optuna.pruners.NopPruner())
     else:
         study, _ = open_study(name, url, config, "tpe", worker=worker)
     plan = WorkerPlan(trials=10**9, deadline=None, candidate_seconds=None, memory_cap=10**15, images_per_epoch=100,

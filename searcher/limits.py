@@ -8,6 +8,8 @@ every bound at its ceiling a conv does at most 1024²·4096²·31² ≈ 1.6·10�
 
 from __future__ import annotations
 
+import os
+
 # -- architectures (space files, the text form, --arch) ----------------------------------------
 MAX_SIDE = 1024  # input height or width in pixels; also the ceiling on a stride or pool window
 MAX_WIDTH = 4096  # channels of a conv, width of a hidden dense layer
@@ -35,3 +37,18 @@ MAX_CONFIRM_SEEDS = 20  # full-schedule trainings per confirmed candidate (--con
 MAX_CONFIRM_CANDIDATES = 100  # candidates confirmed from near the fronts, and drawn at random, each
 MAX_NAME = 80  # characters of a space's name
 MAX_DESCRIPTION = 2000  # characters of a space's description
+
+# -- files read (see searcher/files.py) ----------------------------------------------------------
+MAX_SPACE_FILE_BYTES = 2**20  # a space file: a few kB in practice
+MAX_ARCH_FILE_BYTES = 2**20  # an architecture JSON file (`searcher cost FILE.json`): a few kB in practice
+MAX_CLASS_NAME = 255  # characters of a class name: the longest folder name most file systems allow
+
+
+def available_memory() -> int:
+    """Bytes of memory this machine can give now (Linux's MemAvailable; all of it elsewhere)."""
+    try:
+        with open("/proc/meminfo") as handle:
+            info = {line.split(":")[0]: int(line.split()[1]) * 1024 for line in handle}
+        return info.get("MemAvailable", info["MemTotal"])
+    except (OSError, KeyError, ValueError, IndexError):
+        return os.sysconf("SC_PAGE_SIZE") * os.sysconf("SC_PHYS_PAGES")

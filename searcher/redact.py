@@ -27,14 +27,38 @@ _SETTING = re.compile(
 # Every pattern bounds its repeats before a fixed word, so a long value costs linear time.
 
 
-def redact(text: object) -> str:
+def redact(text: object, secrets: tuple[str, ...] = ()) -> str:
     """``text`` with every password replaced by ``***``; everything else is left as it was.
+
+    ``secrets`` are strings hidden wherever they appear, for text a program echoes back from a URL
+    it parsed its own way (a driver that split ``user:Pa@ss7Word@host`` at the first '@' says
+    "failed to resolve host 'ss7Word@host'"): see :func:`password_pieces`.
 
     >>> redact("postgresql://user:p@ss:w/rd@db:5432/runs?sslmode=require&password=x")
     'postgresql://user:***@db:5432/runs?sslmode=require&password=***'
+    >>> redact("failed to resolve host 'ss7Word@db'", password_pieces("postgresql://u:Pa@ss7Word@db/x"))
+    "failed to resolve host '***@db'"
     """
-    lines = str(text).split("\n")
-    return "\n".join(_user_info(_settings(line)) for line in lines)
+    text = str(text)
+    for secret in sorted(set(secrets), key=len, reverse=True):
+        text = text.replace(secret, HIDDEN)
+    return "\n".join(_user_info(_settings(line)) for line in text.split("\n"))
+
+
+def password_pieces(url: str) -> tuple[str, ...]:
+    """The password of ``url`` as :func:`redact` finds it, and every run of it between the characters a
+    URL parser may split it at ('@', ':', '/', '?', '#'): what a driver may echo of it. Runs shorter
+    than 3 characters are left out (hiding every 'a' of a message would hide nothing of worth)."""
+    head = _USER_INFO.search(url)
+    if head is None:
+        return ()
+    rest = url[head.end():]
+    word = re.match(r"\S*", rest).group(0)
+    password = word[:word.rfind("@")] if "@" in word else ""
+    pieces = [password, *re.split(r"[@:/?#]", password)]
+    pieces += [password[m.end():] for m in re.finditer(r"[@:/?#]", password)]  # what follows each split
+    pieces += [password[:m.start()] for m in re.finditer(r"[@:/?#]", password)]  # and what comes before it
+    return tuple(p for p in dict.fromkeys(pieces) if len(p) >= 3)
 
 
 def _user_info(line: str) -> str:

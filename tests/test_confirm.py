@@ -22,8 +22,8 @@ from searcher.core.budget import Budget
 from searcher.core.stats import accuracy_se
 from searcher.model.metrics import Scores
 from searcher.results.confirmed import (
-    ConfirmSettings, confirmation, confirmed_table, default_pick, difference_noise, proxy_spearman, seed_spread, select,
-    within_noise,
+    ConfirmSettings, Evidence, Judge, confirmation, confirmed_table, contenders, default_pick, difference_noise,
+    proxy_spearman, seed_spread, select,
 )
 from searcher.results.records import TRAINED
 from searcher.study.confirm import ConfirmPlan, Confirmer, jobs_frame, open_confirm_study, plan
@@ -46,7 +46,8 @@ def test_selection_takes_the_front_then_what_is_within_noise_then_random_others(
                     (4, 0.85, 800), (5, 0.50, 900), (6, 0.60, 950)])
     chosen = select(frame, {}, ["params"], VAL, ConfirmSettings(most=10, extra=1), seed=0)
     names = dict(chosen)
-    assert [t for t, why in chosen if why == "on a front"] == [4, 1, 0]  # most accurate first
+    assert [t for t, _ in chosen[:4]] == [4, 0, 1, 2]  # the most accurate first, then the cheapest first
+    assert [t for t, why in chosen if why == "on a front"] == [4, 0, 1]
     assert names[2] == "within noise of a front"  # half of two standard errors behind trial 1, and dearer
     assert 3 not in names or names[3] == "drawn at random"  # twice two standard errors behind: not near
     randoms = [t for t, why in chosen if why == "drawn at random"]
@@ -79,25 +80,36 @@ def test_confirmed_table_means_and_spread_of_the_seeds():
         assert column in table.columns
 
 
+def test_jobs_none_of_which_finished_make_an_empty_table():
+    """Regression: with jobs queued but none finished, the table had a row of NaN seeds per job's candidate,
+    and export died converting NaN to an integer."""
+    frame = _frame([(0, 0.70, 100), (1, 0.80, 200)])
+    jobs = _jobs({0: [math.nan], 1: [math.nan, math.nan]}).assign(state="queued")
+    table = confirmed_table(jobs, frame)
+    assert table.empty
+    assert confirmation(frame, jobs, {}, "params", None, 1, 10).pick is None
+
+
 def test_default_pick_is_the_cheapest_within_noise_of_the_best():
     frame = _frame([(0, 0.83, 3404), (1, 0.94, 16244), (2, 0.80, 1000)])
     table = confirmed_table(_jobs({0: [0.945, 0.947, 0.946], 1: [0.95, 0.948, 0.946], 2: [0.90, 0.91, 0.905]}), frame)
-    pick = default_pick(table, {}, "params", None)
+    pick = default_pick(table, {}, "params", Judge(table))  # no predictions kept: the seed-spread rule
     # trial 1 leads by 0.002, within 2 * 0.002 * sqrt(1/3 + 1/3) = 0.0033 (0.002: the median seed sd)
     assert pick.trial == 0 and pick.best_trial == 1
     assert "4.8x" in pick.reason and "trial 1" in pick.reason  # 16,244 / 3,404 parameters
-    strict = default_pick(table, {}, "params", 0.0)  # no accuracy may be given up
+    strict = default_pick(table, {}, "params", Judge(table, tolerance=0.0))  # no accuracy may be given up
     assert strict.trial == 1
-    loose = default_pick(table, {}, "params", 0.05)
+    loose = default_pick(table, {}, "params", Judge(table, tolerance=0.05))
     assert loose.trial == 2  # five points allowed: the cheapest of all
 
 
-def test_within_noise_uses_the_runs_seed_spread():
-    best = pd.Series({"accuracy_mean": 0.90, "accuracy_sd": 0.01, "seeds": 4})
-    close = pd.Series({"accuracy_mean": 0.89, "accuracy_sd": 0.01, "seeds": 4})
-    far = pd.Series({"accuracy_mean": 0.87, "accuracy_sd": 0.01, "seeds": 4})
-    # 2 * 0.01 * sqrt(1/4 + 1/4) = 0.0141
-    assert within_noise(best, close, None, 0.01) and not within_noise(best, far, None, 0.01)
+def test_without_kept_predictions_the_runs_seed_spread_decides():
+    frame = _frame([(0, 0.9, 100), (1, 0.9, 200), (2, 0.9, 300)])
+    table = confirmed_table(_jobs({0: [0.89, 0.88, 0.90, 0.87], 1: [0.86, 0.87, 0.88, 0.85],
+                                   2: [0.90, 0.89, 0.91, 0.88]}), frame)
+    # seed sd 0.0129 each; two standard errors of a difference of means of 4: 2 * 0.0129 * sqrt(1/2) = 0.0183
+    judge = Judge(table)
+    assert not judge.below(2, 0) and judge.below(2, 1)  # 0.01 and 0.03 behind
     assert difference_noise(4, 4, 0.01) == pytest.approx(0.01414, abs=1e-5)
     table = pd.DataFrame({"accuracy_sd": [0.001, 0.002, 0.08, math.nan], "seeds": [3, 3, 2, 1]})
     assert seed_spread(table) == pytest.approx(0.002)  # the median of those with two seeds or more
@@ -109,7 +121,7 @@ def test_an_unsteady_candidate_is_not_taken_as_good_as_the_best():
     With the run's median seed spread the unsteady one is credibly behind; the steady one is not."""
     frame = _frame([(39, 0.99, 60000), (40, 0.97, 66188), (43, 0.99, 74380)])
     table = confirmed_table(_jobs({39: [0.88, 0.99], 40: [0.985, 0.99, 0.995], 43: [0.99, 0.995, 1.0]}), frame)
-    pick = default_pick(table, {}, "params", None)
+    pick = default_pick(table, {}, "params", Judge(table))
     # median sd 0.005: noise 2 * 0.005 * sqrt(1/3 + 1/3) = 0.0082; trial 40 is 0.005 behind, trial 39 0.06
     # (judged by its own spread, 2 * sqrt(0.005^2/3 + 0.078^2/2) = 0.11, it passed)
     assert pick.trial == 40 and pick.best_trial == 43
@@ -133,10 +145,43 @@ def test_when_the_confirmed_means_are_all_within_noise_the_advice_says_so():
     found = confirmation(frame, jobs, {}, "params", None, proxy_epochs=1, full_epochs=10)
     assert found.spearman == pytest.approx(-1.0) and not found.reliable
     # means 0.945 .. 0.930; seed sd 0.0141 each, so two standard errors of a difference 2 * 0.0141 * 1 = 0.028
-    low, high, noise = found.tied()
-    assert (low, high) == pytest.approx((0.930, 0.945)) and noise == pytest.approx(0.02828, abs=1e-4)
-    assert "within noise of each other" in found.advice() and "unreliable" not in found.advice()
+    assert found.tied() == pytest.approx((0.930, 0.945))
+    assert "within noise of the best" in found.advice() and "unreliable" not in found.advice()
     assert found.summary()["confirmed_within_noise"] is True
+    assert "front is flat" in found.noise_words() and "trial 0" in found.noise_words()
+
+
+def _predicting(wrong: dict[int, list[int]], images: int = 750) -> tuple[pd.DataFrame, np.ndarray]:
+    """Confirmation jobs whose seeds each get the images listed wrong (all of one class, label 0)."""
+    labels = np.zeros(images, np.int64)
+    rows = []
+    for trial, counts in wrong.items():
+        for index, count in enumerate(counts):
+            predicted = labels.copy()
+            predicted[:count] = 1
+            rows.append({"job": 0, "trial": trial, "seed_index": index, "state": TRAINED,
+                         "val_accuracy": 1 - count / images, "val_balanced_accuracy": 1 - count / images,
+                         "val_accuracy_int8": math.nan, "reason": "on a front", "train_seconds": 1.0,
+                         "history": [0.5, 1 - count / images], "predicted": predicted})
+    return pd.DataFrame(rows), labels
+
+
+def test_the_validation_images_count_as_noise_not_only_the_seeds():
+    """Issue 15: two candidates whose seeds agree exactly, 3 images of 750 apart. By the seed spread alone
+    (sd 0) the cheaper is credibly behind; the paired bootstrap over the images sees 3 discordant images
+    (McNemar's exact p = 0.125) and calls them even, so the cheaper is the pick."""
+    frame = _frame([(0, 0.98, 4_222), (1, 0.98, 9_582)])
+    jobs, labels = _predicting({0: [13, 13], 1: [10, 10]})
+    table = confirmed_table(jobs, frame)
+    assert Judge(table).below(1, 0)  # the old rule
+    found = confirmation(frame, jobs, {}, "params", None, 1, 10, labels=labels)
+    assert found.pick.trial == 0 and "paired bootstrap" in found.pick.reason
+    assert found.within == (0, 1)
+    clear, labels = _predicting({0: [60, 62], 1: [10, 11]})  # 50 images apart: credibly behind
+    found = confirmation(frame, clear, {}, "params", None, 1, 10, labels=labels)
+    assert found.pick.trial == 1 and found.within == (1,)
+    assert Evidence.of(clear, labels).predicted[0].shape == (2, 750)
+    assert contenders(found.table, {}, found.judge) == [1]
 
 
 # -- the jobs, on a real (in-memory) study ------------------------------------------------------------

@@ -23,7 +23,7 @@ from searchkit import (
     start, stop, trial_rows, training_now, wait_until_training, write_space,
 )
 import searcher.study.liveness
-import searcher.study.worker
+import searcher.study.loop
 from searcher.core.budget import Budget
 from searcher.results.records import INTERRUPTED, REJECTED, SPENT, counts, distinct_rows, trials_frame
 from searcher.core.space_file import load_space
@@ -88,7 +88,7 @@ def test_killed_search_resumes_without_losing_work(tmp_path: Path) -> None:
     frame = trials_frame(study)
     shown = frame[["trial", "state", "reason", "retry_of", "worker"]].to_string()  # for a failure message
     c = counts(frame)
-    assert sum(c[s] for s in c if s not in ("tried", "repeats")) == len(frame), shown
+    assert sum(c[s] for s in c if s not in ("tried", "repeats")) + c["repeats"] == len(frame), shown
     assert c["running"] <= 1, shown  # at most one unclaimed trial, from the last kill
     assert distinct_rows(frame)["state"].isin(SPENT).sum() == trials, shown  # the final run went on to the end, and one worker no further
     by_number = {t.number: t for t in study.get_trials(deepcopy=False)}
@@ -111,7 +111,7 @@ def test_killed_search_resumes_without_losing_work(tmp_path: Path) -> None:
     for command in ("status", "report"):
         code, out, err = run([sys.executable, "-m", "searcher", command, "--name", "crash"], tmp_path, command)
         assert code == 0, err
-    assert f"trained {c['trained']}" in (tmp_path / "status.out").read_text()
+    assert f"trained {counts(frame)['trained']}" in (tmp_path / "status.out").read_text()  # repeats apart
     assert f"running {c['running']}" in (tmp_path / "status.out").read_text()
     table = pd.read_csv(tmp_path / "runs" / "crash" / "trials.csv")
     assert list(table.trial) == list(frame.trial)
@@ -350,7 +350,8 @@ def test_recovery_queues_a_retry_that_a_kill_kept_from_being_queued() -> None:
         study.tell(trial, state=TrialState.FAIL)
         return trial.number
 
-    owed = [ended(INTERRUPTED), ended(NOT_STARTED)]
+    owed = [ended(INTERRUPTED)]
+    ended(NOT_STARTED)  # skipped for lack of time: the sampler may propose it again, no retry owed
     covered = ended(INTERRUPTED)
     study.enqueue_trial(dict(study.trials[covered].params), user_attrs={"retry_of": covered})
     retry = ended(INTERRUPTED)  # the next ask takes the queued copy: a retry, itself interrupted
@@ -406,7 +407,7 @@ def test_running_search_recovers_what_dies_later(tmp_path: Path, monkeypatch) ->
     study.ask()  # a worker asked and was killed before it could claim the trial
     monkeypatch.setattr(searcher.study.liveness, "UNCLAIMED_SECONDS", 0.0)  # its grace period has passed
     assert worker.stop_reason() is None and study.trials[0].state == TrialState.RUNNING  # not looked yet
-    monkeypatch.setattr(searcher.study.worker, "RECOVER_SECONDS", 0.0)  # time for the next look
+    monkeypatch.setattr(searcher.study.loop, "RECOVER_SECONDS", 0.0)  # time for the next look
     assert worker.stop_reason() is None
     assert study.trials[0].state == TrialState.FAIL
 

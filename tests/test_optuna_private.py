@@ -9,7 +9,7 @@ import optuna
 import pytest
 
 from searcher.study.optuna_private import (
-    OptunaChanged, journal_lock, pruner_rungs, seed_draws, set_trial_attr, trial_id,
+    OptunaChanged, journal_lock, seed_draws, set_trial_attr, trial_id,
 )
 from searcher.study.storage import make_sampler
 
@@ -90,23 +90,3 @@ def test_our_journal_lock_is_the_lock_the_journal_backend_takes(tmp_path: Path) 
     finally:
         ours.release()
     assert not Path(ours._lock_file).exists()
-
-
-def test_pruner_rungs_are_where_successive_halving_judges() -> None:
-    """Successive halving judges at min_resource x reduction_factor^k (Optuna's SuccessiveHalvingPruner
-    docs; Jamieson and Talwalkar, AISTATS 2016); checked on the pruner's own decisions."""
-    pruner = optuna.pruners.SuccessiveHalvingPruner(min_resource=3, reduction_factor=2)
-    assert pruner_rungs(pruner, 3) == [3, 6, 12]
-    study = optuna.create_study(direction="maximize", pruner=pruner)
-    for value in (0.8, 0.9):
-        good = study.ask()
-        for step in range(1, 7):
-            good.report(value, step)
-            assert not good.should_prune()  # a rung's standing is recorded when a trial is judged there
-        study.tell(good, value)
-    poor = study.ask()
-    judged = []
-    for step in range(1, 7):
-        poor.report(0.1, step)
-        judged.append(poor.should_prune())
-    assert judged == [False, False, True, False, False, True]  # only at the rungs 3 and 6

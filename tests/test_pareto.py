@@ -108,6 +108,14 @@ def test_accuracy_per_doubling() -> None:
     assert math.isnan(accuracy_per_doubling([0.5, 0.6], [0, 10])[1])
 
 
+def test_no_rate_per_doubling_from_a_tiny_step() -> None:
+    """Regression (a new user's report): +0.44 points for ×1.01 cost read as "+30 pts per 2× cost" (a
+    3048-point rate from a smaller step); a step under a quarter more cost gives no rate at all."""
+    gain = accuracy_per_doubling([0.90, 0.9044, 0.93], [10_000, 10_100, 12_626])
+    assert math.isnan(gain[1])  # ×1.01
+    assert gain[2] == pytest.approx((0.93 - 0.9044) / math.log2(12_626 / 10_100))  # ×1.25: a rate
+
+
 def test_front_steps_compare_each_row_with_the_one_before() -> None:
     rows = pd.DataFrame({"val_accuracy": [0.5, 0.6, 0.9], "params": [100, 200, 800]}, index=[7, 3, 9])
     steps = front_steps(rows, "params")

@@ -92,8 +92,8 @@ def test_format_picks_the_natural_unit():
     (2**64 + 1, "beyond the largest cap"),  # beyond 64 bits: refused, never an OverflowError downstream
     ("9" * 400, "must be a count such as"),  # float() of 400 digits is inf; round(inf) raised OverflowError
     ("9" * 39, "beyond the largest cap"),
-    (float("inf"), "not infinite"),
-    (float("nan"), "not infinite"),
+    (float("inf"), "must be a count from 1 to 10^15 such as 250k or 5M, got inf (infinite)"),
+    (float("nan"), "got nan (not a number)"),  # issue 17: was "not infinite, got nan"
     ("1000001G", "beyond the largest cap there is, 10^15"),
     (["20k"], "must be a count such as"),
     ({"max": 1}, "must be a count such as"),

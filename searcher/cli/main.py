@@ -19,6 +19,8 @@ from searcher.core.cost import cost
 from searcher.core.space_file import builtin_space, load_space, shipped_spaces
 from searcher.data.load import check_source, describe_few_examples, few_examples, load_dataset
 from searcher.errors import SearcherError, one_of, readable, shown
+from searcher.files import read_regular
+from searcher.limits import MAX_ARCH_FILE_BYTES
 from searcher.redact import redact
 from searcher.runs import plain_name, run_folder
 
@@ -27,6 +29,9 @@ log = logging.getLogger("searcher")
 
 def _space_path(text: str) -> Path:
     """A space is a file path or the name of a shipped space (mcu, workstation, classic)."""
+    if not text.strip():
+        raise SearcherError(f"`--space` {shown(text)} is empty; give a .toml file or a shipped space "
+                            f"({', '.join(shipped_spaces())})", key="--space")
     path = Path(text)
     try:
         found, folder = path.exists(), path.is_dir()
@@ -64,7 +69,7 @@ def _arch_text(given: str) -> str:
         return given
     path = Path(given)
     try:
-        text = path.read_text(encoding="utf-8-sig")
+        text = read_regular(path, MAX_ARCH_FILE_BYTES, "architecture file").decode("utf-8-sig")
     except UnicodeDecodeError:
         raise SearcherError(f"architecture file {shown(given)} is not JSON text (not UTF-8)") from None
     except IsADirectoryError:
@@ -154,10 +159,40 @@ def make_parser() -> argparse.ArgumentParser:
     return parser
 
 
+def _options(parser: argparse.ArgumentParser) -> tuple[set[str], set[str]]:
+    """Every option string of the parser and its commands, and those that take one value."""
+    every, valued = set(), set()
+    parsers = [parser]
+    while parsers:
+        current = parsers.pop()
+        for action in current._actions:  # argparse keeps no public list of them
+            every.update(action.option_strings)
+            if action.option_strings and action.nargs is None:
+                valued.update(action.option_strings)
+            if isinstance(action, argparse._SubParsersAction):
+                parsers.extend(action.choices.values())
+    return every, valued
+
+
+def _dashed_values(argv: list[str], parser: argparse.ArgumentParser) -> list[str]:
+    """``--max-params -5k`` as ``--max-params=-5k``: argparse takes a value that starts with '-' and is not a
+    plain negative number for an option and answers "expected one argument"; joined, the value reaches the
+    check that says what is wrong with it."""
+    every, valued = _options(parser)
+    out: list[str] = []
+    for token in argv:
+        if (out and out[-1] in valued and token.startswith("-") and not token.startswith("--")
+                and token not in every):
+            out[-1] = f"{out[-1]}={token}"
+        else:
+            out.append(token)
+    return out
+
+
 def main(argv: list[str] | None = None) -> int:
     """Run one command; user mistakes print a message and return 2, never a traceback."""
     parser = make_parser()
-    args = parser.parse_args(argv)
+    args = parser.parse_args(_dashed_values(sys.argv[1:] if argv is None else list(argv), parser))
     logging.basicConfig(level=logging.DEBUG if args.verbose else logging.INFO, format="%(message)s")
     try:
         return args.run(args)

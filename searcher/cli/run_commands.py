@@ -28,11 +28,13 @@ def cmd_search(args: argparse.Namespace, space_path, budget_of) -> int:
           f"(proxy search {outcome.proxy_seconds / 60:.1f} min, confirmation {outcome.confirm_seconds / 60:.1f} min)")
     print(f"tried {c['tried']}: rejected {c['rejected']}, trained {c['trained']}, stopped early {c['stopped_early']}, "
           f"failed {c['failed']}, interrupted {c['interrupted']}"
-          + (f"; {c['repeats']} of these reused a known outcome" if c["repeats"] else ""))
+          + (f"; {c['repeats']} more reused a known outcome without training" if c["repeats"] else ""))
     if outcome.rejected_share:
         print("share of proposals rejected, per 50: " + ", ".join(f"{s:.0%}" for s in outcome.rejected_share))
     if outcome.rejected_by:
         print("rejected by: " + ", ".join(f"{k} {v}" for k, v in outcome.rejected_by.items()))
+    if outcome.spread:
+        print(outcome.spread)
     if outcome.best:
         b = outcome.best
         print(f"best fitting by the proxy: trial {b['trial']} {outcome.metric.label} {b[outcome.metric.column]:.4f} "
@@ -44,6 +46,7 @@ def cmd_search(args: argparse.Namespace, space_path, budget_of) -> int:
     if confirmed is not None:
         print(f"confirmed {int((confirmed.table['seeds'] > 0).sum())} candidate(s) with the export's schedule; "
               + confirmed.advice())
+        print(confirmed.noise_words())
         if confirmed.pick is not None:
             print(f"export will take: {confirmed.pick.reason}")
         if confirmed.queued:
@@ -82,7 +85,8 @@ def add_search_commands(sub, space_path, add_budget, budget_of) -> None:
     p.add_argument("--name", required=True, help="run name: results go to runs/NAME/; the same name continues it")
     p.add_argument("--trials", type=int, default=30, help="candidates to train, counted over the whole run (default 30)")
     p.add_argument("--minutes", type=float, help="wall-clock limit for this invocation")
-    p.add_argument("--objective", default="accuracy", help="accuracy (default), or accuracy against params, macs or activation")
+    p.add_argument("--objective", default="params",
+                   help="the score against params (default), macs or activation, or the score alone: accuracy")
     p.add_argument("--metric", default="accuracy",
                    help="the score ranked, pruned, fronted and exported by: accuracy (default), or balanced_accuracy "
                         "(mean recall per class; also weighs the loss by class) when some classes are rare")

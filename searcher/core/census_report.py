@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import html
 from dataclasses import dataclass, field
 from pathlib import Path
 
@@ -15,7 +16,7 @@ from searcher.core.space import Space
 from searcher.core.stats import wilson_interval
 from searcher.errors import SearcherError, check_int, shown
 from searcher.limits import MAX_CLASSES, MAX_SAMPLES, MAX_SEED
-from searcher.runs import write_atomic
+from searcher.runs import check_run_paths, why_unwritable, write_atomic
 
 
 @dataclass(frozen=True)
@@ -137,9 +138,15 @@ def summary_lines(census: Census) -> list[str]:
     return lines
 
 
+CENSUS_FILES = ("census_summary.csv", "census_spread.csv", "census_depth_width.csv", "census.html")
+
+
 def write_census(census: Census, folder: Path) -> list[Path]:
     """census_summary.csv, census_spread.csv, census_depth_width.csv and census.html in ``folder``."""
-    writable(folder)
+    try:
+        writable(folder).mkdir(parents=True, exist_ok=True)
+    except OSError as exc:
+        raise _unwritable(folder, exc) from None
     low, high = census.interval
     summary = pd.DataFrame([{
         "space": census.space.name, "configurations": census.size, "exact": census.exact,
@@ -163,16 +170,18 @@ def write_census(census: Census, folder: Path) -> list[Path]:
 
 
 def writable(folder: Path) -> Path:
-    """Make ``folder`` (and its parents) or say plainly why it cannot be made; checked before the work."""
-    try:
-        folder.mkdir(parents=True, exist_ok=True)
-    except OSError as exc:
-        raise _unwritable(folder, exc) from None
+    """``folder``, when it can be made and written; else say plainly why not. Checked before the work,
+    and nothing is created: a census refused later (its --data, say) leaves no empty folder behind."""
+    why = why_unwritable(folder)
+    if why is not None:
+        raise _unwritable(folder, why)
+    check_run_paths(folder, files=CENSUS_FILES, folders=())  # a FIFO or a link where a census file goes
     return folder
 
 
-def _unwritable(folder: Path, exc: OSError) -> SearcherError:
-    return SearcherError(f"cannot write the census to {shown(str(folder))}: {exc.strerror or exc}; run it from a "
+def _unwritable(folder: Path, why: OSError | str) -> SearcherError:
+    why = why if isinstance(why, str) else why.strerror or str(why)
+    return SearcherError(f"cannot write the census to {shown(str(folder))}: {why}; run it from a "
                          f"folder where runs/ can be written", key="--name")
 
 
@@ -192,7 +201,7 @@ def census_html(census: Census) -> str:
                              colorscale="Blues", showscale=False, texttemplate="%{z}"), row=3, col=1)
     fig.update_xaxes(title_text="first-stage width", row=3, col=1)
     fig.update_yaxes(title_text="stages", row=3, col=1)
-    head = "<br>".join(summary_lines(census)[:3])
-    fig.update_layout(height=1100, title_text=f"Census of {census.space.name}<br><sup>{head}</sup>",
+    head = "<br>".join(html.escape(line) for line in summary_lines(census)[:3])  # plotly reads titles as markup
+    fig.update_layout(height=1100, title_text=f"Census of {html.escape(census.space.name)}<br><sup>{head}</sup>",
                       template="plotly_white", margin=dict(t=140))
     return fig.to_html(include_plotlyjs=True, full_html=True)

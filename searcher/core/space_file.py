@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import math
+import re
 import tomllib
 from pathlib import Path
 from typing import Any, Callable
@@ -13,10 +14,12 @@ from searcher.core.plan import padding_of, window_output
 from searcher.core.space import POOL_CHOICES, SECTIONS, Space
 from searcher.core.train_settings import TrainSettings
 from searcher.errors import SearcherError, check_int, check_number, is_int, one_of, shown
+from searcher.files import read_regular
 from searcher.limits import (CHANNELS, MAX_CHOICES, MAX_CLASSES, MAX_CONVS, MAX_DESCRIPTION, MAX_HIDDEN, MAX_KERNEL,
-                             MAX_NAME, MAX_SIDE, MAX_STAGES, MAX_WIDTH)
+                             MAX_NAME, MAX_SIDE, MAX_SPACE_FILE_BYTES, MAX_STAGES, MAX_WIDTH)
 
 MAX_GROWTH = 16.0  # width factor from stage to stage
+MAX_NESTING = 2  # lists within lists a space file needs at most (stages.convs: a list of [min, max] ranges)
 _SHIPPED = Path(__file__).parent.parent / "spaces"  # links to the repository's spaces/ (a wheel holds copies)
 
 
@@ -64,11 +67,10 @@ class _Reader:
         return self.choices(key, default, lambda v: v in valid, one_of("", valid))
 
     def range_(self, key: str, value: Any, low: int, high: int) -> tuple[int, int]:
-        if is_int(value):
-            value = [value, value]
-        if not (isinstance(value, list) and len(value) == 2 and all(map(is_int, value))):
+        pair = [value, value] if is_int(value) else value
+        if not (isinstance(pair, list) and len(pair) == 2 and all(map(is_int, pair))):
             raise self.fail(key, f"must be a whole number or a range [min, max], got {shown(value)}")
-        lo, hi = value
+        lo, hi = pair
         if lo > hi:
             raise self.fail(key, f"must be a range [min, max] with min ≤ max, got {shown(value)}")
         if lo < low or hi > high:
@@ -90,14 +92,13 @@ def read_space(path: Path) -> Space:
     try:
         if not path.exists():
             raise SearcherError(f"space file not found: {shown(str(path))}", file=None)
-        if path.is_dir():
-            raise SearcherError(f"space file {shown(str(path))} is a folder; give a .toml file", file=None)
-        text = path.read_text(encoding="utf-8-sig")  # a byte-order mark some editors write is not part of the TOML
+        data = read_regular(path, MAX_SPACE_FILE_BYTES, "space file")
+        text = data.decode("utf-8-sig")  # a byte-order mark some editors write is not part of the TOML
     except UnicodeDecodeError as exc:
         raise SearcherError(f"space file cannot be read as UTF-8 text ({exc.reason} at byte {exc.start})",
                             file=str(path)) from None
     except OSError as exc:
-        raise SearcherError(f"space file {shown(str(path))} cannot be read: {exc.strerror}", file=None) from None
+        raise SearcherError(f"space file {shown(str(path))} cannot be read: {exc.strerror or exc}", file=None) from None
     return read_space_text(text, str(path), default_name=path.stem[:MAX_NAME])
 
 
@@ -106,10 +107,18 @@ def read_space_text(text: str, file: str, default_name: str = "space") -> Space:
     try:
         data = tomllib.loads(text.removeprefix("\ufeff"))
     except tomllib.TOMLDecodeError as exc:
-        raise SearcherError(f"space file is not valid TOML: {exc}", file=file) from None
+        raise SearcherError(f"space file is not valid TOML: {_toml_problem(exc, text)}", file=file) from None
+    except RecursionError:  # tomllib reads nested lists and tables by recursion
+        key = _deepest_key(text)
+        raise SearcherError(f"{f'`{key}`' if key else 'a value'} nests lists or tables within one another hundreds "
+                            f"deep; no key takes lists nested more than {MAX_NESTING} deep (`input.sizes`: a list of "
+                            "[height, width] pairs)", file=file, key=key) from None
     r = _Reader(data, file)
     _check_keys(r)
 
+    if r.get("input.sizes") is not None and r.get("input.size") is not None:
+        raise r.fail("input.sizes", "and `input.size` are both set; give one: `input.size` for one [height, width], "
+                                    "`input.sizes` for a list of choices")
     sizes_key = "input.sizes" if r.get("input.sizes") is not None else "input.size"
     sizes = r.get("input.sizes")
     if sizes is None:
@@ -147,6 +156,7 @@ def read_space_text(text: str, file: str, default_name: str = "space") -> Space:
     dropouts = r.choices("head.dropout", [0.0], lambda d: _number_in(d, 0, 1), "a number in [0, 1)")
     batch_norm = r.choices("conv.batch_norm", [True], lambda b: isinstance(b, bool), "true or false")
     hidden_count = r.range_("head.hidden", r.get("head.hidden", [0, 1]), 0, MAX_HIDDEN)
+    hidden_widths = r.int_choices("head.hidden_width", (32,), 1, MAX_WIDTH)  # checked even where unused
     train = r.get("train", {})
     TrainSettings.from_dict(train, file=file)  # checked now, used later
 
@@ -171,16 +181,63 @@ def read_space_text(text: str, file: str, default_name: str = "space") -> Space:
         pool_stride=r.whole("pool.stride", window, 1, MAX_SIDE),
         features=r.word_choices("head.features", ["gap"], FEATURES),
         hidden_count=hidden_count,
-        hidden_widths=r.int_choices("head.hidden_width", (32,), 1, MAX_WIDTH) if hidden_count[1] else (32,),
+        hidden_widths=hidden_widths if hidden_count[1] else (32,),
         dropouts=tuple(dict.fromkeys(float(d) for d in dropouts)),
         budget=Budget.from_table(r.get("budget", {}), file=file),
         train=dict(train),
         file=file,
     )
     r.text("description", "", MAX_DESCRIPTION, printable=False)
+    _check_rounding(space)
     _check_shrink(space)
     _check_widths(space)
     return space
+
+
+_TABLE_LINE = re.compile(r"^\s*\[\s*([^\[\]]+?)\s*\]\s*(#.*)?$")
+_KEY_LINE = re.compile(r"^\s*((?:[A-Za-z0-9_-]+|\"[^\"]*\"|'[^']*')(?:\s*\.\s*(?:[A-Za-z0-9_-]+|\"[^\"]*\"|'[^']*'))*)\s*=")
+
+
+def _deepest_key(text: str) -> str | None:
+    """The key whose line opens the most brackets: what a parse too deep for tomllib was reading."""
+    table, found, most = "", None, 0
+    for line in text.splitlines():
+        if heading := _TABLE_LINE.match(line):
+            table = heading.group(1).strip()
+        elif key := _KEY_LINE.match(line):
+            run = line.count("[", key.end()) + line.count("{", key.end())
+            if run > most:
+                name = ".".join(p.strip().strip("'\"") for p in key.group(1).split("."))
+                found, most = f"{table}.{name}" if table else name, run
+    return found
+
+
+def _toml_problem(exc: tomllib.TOMLDecodeError, text: str) -> str:
+    """tomllib's complaint, with the key named when it is one written twice.
+
+    tomllib says "Cannot overwrite a value (at line 36, column 30)" (or "at end of document"), which
+    leaves the user to find the key; a scan of the assignments finds the first one set twice.
+    """
+    said = str(exc)
+    if "Cannot overwrite a value" not in said:
+        declared = re.match(r"Cannot declare \((.*?),?\) twice", said)
+        if declared:
+            table = ".".join(part.strip().strip("'\"") for part in declared.group(1).split(","))
+            return f"the table [{table}] is declared twice; put all its keys under one [{table}]"
+        return said
+    table, seen = "", {}
+    for number, line in enumerate(text.splitlines(), 1):
+        if found := _TABLE_LINE.match(line):
+            table = found.group(1).strip()
+            continue
+        if found := _KEY_LINE.match(line):
+            parts = [p.strip().strip("'\"") for p in re.split(r"\s*\.\s*(?=(?:[^\"']|\"[^\"]*\"|'[^']*')*$)",
+                                                                   found.group(1))]
+            key = ".".join([table, *parts] if table else parts)
+            if key in seen:
+                return f"`{key}` is set twice (lines {seen[key]} and {number}); keep one"
+            seen[key] = number
+    return said + " (a key is set twice)"
 
 
 def _number_in(value: Any, low: float, high: float) -> bool:
@@ -194,6 +251,23 @@ def _channels(r: _Reader) -> int:
     if not is_int(value) or value not in CHANNELS:
         raise r.fail("input.channels", f"must be 1 (gray), 3 (RGB) or 4 (RGBA), got {shown(value)}")
     return value
+
+
+def _check_rounding(space: Space) -> None:
+    """A width ceiling that rounding keeps: ``max_width`` a multiple of ``round_to``.
+
+    Widths are capped first and rounded after, so a cap that is no multiple would be rounded past
+    (max_width 32 with round_to 64 made every stage 64 wide).
+    """
+    cap, step = space.max_width, space.round_to
+    if cap is None or cap % step == 0:
+        return
+    below = cap // step * step
+    fix = (f"a `stages.max_width` of {below} or {below + step}" if below else
+           f"a `stages.round_to` that divides {cap} (such as {cap})")
+    raise SearcherError(f"`stages.round_to` {step} does not divide `stages.max_width` {cap}: widths are capped at "
+                        f"{cap} and then rounded to a multiple of {step}, so a stage could pass the cap; use {fix}",
+                        file=space.file, key="stages.round_to")
 
 
 def _check_widths(space: Space) -> None:

@@ -66,3 +66,69 @@ def accuracy_se(accuracy: float, images: int) -> float:
         return math.nan
     p = min(max(accuracy, 0.0), 1.0)
     return math.sqrt(p * (1 - p) / images)
+
+
+BOOTSTRAP_REPLICATES = 2000  # resamples of the validation images (and seeds) per comparison
+BOOTSTRAP_BLOCK = 250  # replicates drawn at once: bounds memory at 250 × images counts
+
+
+def resampled_scores(right: np.ndarray, truth: np.ndarray, weights: np.ndarray, balanced: bool) -> np.ndarray:
+    """Scores of each seed (rows of ``right``, bool seeds × images) on each weighted resample of the images
+    (rows of ``weights``, replicates × images: how often each image was drawn); replicates × seeds.
+
+    Accuracy is the weighted share right; balanced accuracy the mean over classes drawn at least
+    once of the weighted share right within the class (mean recall, as scikit-learn defines it).
+    """
+    right = right.astype(np.float64)
+    if not balanced:
+        return weights @ right.T / weights.sum(axis=1, keepdims=True)
+    recalls, present = [], []
+    for label in np.unique(truth):
+        mask = truth == label
+        drawn = weights[:, mask].sum(axis=1, keepdims=True)  # replicates × 1
+        recalls.append(np.divide(weights[:, mask] @ right[:, mask].T, drawn, out=np.zeros((len(weights), len(right))),
+                                 where=drawn > 0))
+        present.append(drawn > 0)
+    present_ = np.stack(present)  # classes × replicates × 1
+    return (np.stack(recalls) * present_).sum(axis=0) / present_.sum(axis=0)
+
+
+def paired_bootstrap(truth: np.ndarray, first: np.ndarray, second: np.ndarray, *, balanced: bool = False,
+                     replicates: int = BOOTSTRAP_REPLICATES, seed: int = 0) -> np.ndarray:
+    """Bootstrap replicates of (first's mean score − second's), resampling the validation images *and* seeds.
+
+    ``first`` and ``second`` hold predicted classes, seeds × images, of two candidates on the same
+    validation images ``truth``. Each replicate draws the images with replacement, the same draw for
+    both (a paired comparison: the images both get right or both get wrong cancel, as in McNemar's
+    test), then each candidate's seeds with replacement, and takes the difference of the mean
+    scores. The spread so covers both noises a confirmed mean carries: which images happen to be in
+    the validation split, and which seeds trained it.
+
+    >>> truth = np.zeros(200, int)
+    >>> a, b = np.zeros((2, 200), int), np.zeros((2, 200), int)
+    >>> b[:, :30] = 1  # the second gets 30 of 200 wrong with either seed
+    >>> bool(np.quantile(paired_bootstrap(truth, a, b), 0.025) > 0)
+    True
+    """
+    truth = np.asarray(truth)
+    right = [np.asarray(p) == truth[None, :] for p in (first, second)]
+    if right[0].ndim != 2 or right[1].ndim != 2 or right[0].shape[1] != len(truth) or right[1].shape[1] != len(truth):
+        raise ValueError(f"predictions must be seeds × {len(truth)} images, got {np.shape(first)} and {np.shape(second)}")
+    rng = np.random.default_rng(seed)
+    n, out = len(truth), []
+    for start in range(0, replicates, BOOTSTRAP_BLOCK):
+        block = min(BOOTSTRAP_BLOCK, replicates - start)
+        weights = rng.multinomial(n, np.full(n, 1 / n), size=block).astype(np.float64)
+        means = []
+        for r in right:
+            per_seed = resampled_scores(r, truth, weights, balanced)  # block × seeds
+            pick = rng.integers(0, len(r), size=(block, len(r)))
+            means.append(np.take_along_axis(per_seed, pick, axis=1).mean(axis=1))
+        out.append(means[0] - means[1])
+    return np.concatenate(out)
+
+
+def credibly_ahead(differences: np.ndarray, level: float = 0.95) -> bool:
+    """True when the lower end of the two-sided ``level`` interval of the differences lies above 0: the first
+    candidate is credibly better (one-sided at (1 − level)/2, as "more than two standard errors")."""
+    return bool(np.quantile(differences, (1 - level) / 2) > 0)

@@ -39,7 +39,9 @@ def _parse(text: object, table: dict[str, int], what: str, example: str, key: st
         else:
             number, unit = float(match.group(1).replace("_", "")), match.group(2)
         if not math.isfinite(number * table[unit]):
-            raise SearcherError(f"{name} must be {what} such as {example}, not infinite, got {shown(text)}", key=key)
+            why = "not a number" if math.isnan(number) else "infinite"
+            raise SearcherError(f"{name} must be {what} from 1 to 10^15 such as {example}, got {shown(text)} ({why})",
+                                key=key)
         value = round(number * table[unit])
     if value < 1:
         why = "rounds to 0" if number > 0 else "is not positive"

@@ -21,7 +21,8 @@ from pathlib import Path
 import numpy as np
 
 from searcher.data import layout
-from searcher.errors import SearcherError
+from searcher.errors import SearcherError, shown
+from searcher.limits import MAX_CLASS_NAME
 
 log = logging.getLogger(__name__)
 logging.getLogger("PIL").setLevel(logging.INFO)  # Pillow logs each PNG chunk at DEBUG: `-v` would print them all
@@ -44,6 +45,21 @@ class Decoded:
     modes: dict[str, int]  # files per Pillow mode as saved (e.g. {"RGB": 900, "L": 12})
 
 
+def name_problem(name: str) -> str | None:
+    """Why a class name cannot be used, or None. Names are data: any character is kept and shown escaped
+    in every output (C, HTML, Markdown, JSON, CSV), but a name must be text that UTF-8 can hold (a file
+    name in another encoding is not) and no longer than a folder name may be."""
+    try:
+        name.encode("utf-8")
+    except UnicodeEncodeError:
+        return "it is not UTF-8 text (a name saved in another encoding); rename it in UTF-8"
+    if not name:
+        return "it is empty; give every class a name"
+    if len(name) > MAX_CLASS_NAME:
+        return f"it has {len(name):,} characters; a class name may have at most {MAX_CLASS_NAME}"
+    return None
+
+
 def _listing(folder: Path) -> list[Path]:
     try:
         return sorted(folder.iterdir())
@@ -60,7 +76,15 @@ def class_folders(path: Path) -> list[tuple[str, list[Path]]]:
                             "named after the class", file=path)
     out = []
     for folder in classes:
-        files = [f for f in _listing(folder) if f.suffix.lower() in IMAGE_SUFFIXES and f.is_file()]
+        problem = name_problem(folder.name)
+        if problem:
+            raise SearcherError(f"class folder {shown(folder.name)} cannot name a class: {problem}", file=path)
+        named = [f for f in _listing(folder) if f.suffix.lower() in IMAGE_SUFFIXES]
+        files = [f for f in named if f.is_file()]
+        if len(files) < len(named):  # a FIFO or a device would block or never end: passed over, and said so
+            odd = next(f for f in named if not f.is_file())
+            log.warning("class folder %r: passed over %d image name(s) that are not regular files, first %s",
+                        folder.name, len(named) - len(files), odd.name)
         if not files:
             raise SearcherError(f"class folder {folder.name!r} has no PNG or JPEG files "
                                 f"(names ending in {', '.join(IMAGE_SUFFIXES)})", file=folder)

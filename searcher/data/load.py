@@ -14,6 +14,7 @@ from __future__ import annotations
 import hashlib
 import json
 import logging
+import os
 import zipfile
 from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass, field
@@ -25,9 +26,10 @@ import numpy as np
 from searcher.data import layout
 from searcher.data.demo import make_demo
 from searcher.data.folder import MODES, Decoded, decode_folder, default_workers
-from searcher.data.npz import read_npz
+from searcher.data.npz import read_member, read_npz
 from searcher.data.split import PARTS, check_split, load_split, save_split, split_indices  # noqa: F401  (re-exported)
 from searcher.errors import SearcherError, shown
+from searcher.files import not_regular
 from searcher.runs import write_atomic
 
 log = logging.getLogger(__name__)
@@ -92,6 +94,19 @@ class Dataset:
         """Whether the parts hold every image of the source (a stored split might leave some out)."""
         every = np.concatenate(list(self.indices.values()))
         return len(every) > 0 and int(every.max()) + 1 == len(every)
+
+
+class DataChanged(SearcherError):
+    """The data found now is not the data a stored split was made from; ``now`` says what it holds, in words."""
+
+    def __init__(self, message: str, *, now: str, file: str | None = None, key: str | None = None) -> None:
+        super().__init__(message, file=file, key=key)
+        self.now = now
+
+
+def describe_data(count: int, classes: int, shape: tuple[int, ...]) -> str:
+    """'90 images in 3 classes at 1×16×16': what a data set holds, for messages that compare two."""
+    return f"{count:,} images in {classes} classes at {'×'.join(map(str, shape))}"
 
 
 def _check_shape(input_shape: tuple[int, int, int]) -> tuple[int, int, int]:
@@ -201,23 +216,26 @@ _CACHE: dict[str, Dataset] = {}  # the last loads' parts by cache key, shared by
 _CACHE_SIZE = 2  # sources kept; a data set may be large
 
 
-def _read_saved(folder: Path | None, key: str, shape: tuple[int, int, int]) -> tuple[Decoded, str] | None:
-    """The copy kept in `folder` by save_decoded, if it was made from the files as they are now."""
+def _read_saved(folder: Path | None, key: str, shape: tuple[int, int, int],
+                gone: str | None = None) -> tuple[Decoded, str] | None:
+    """The copy kept in `folder` by save_decoded, if it was made from the files as they are now, or (`gone`:
+    the fingerprint of the data wanted) from that data when its files are no longer there."""
     path = None if folder is None else Path(folder) / CACHE_FILE
-    if path is None or not path.is_file():
+    if path is None or not_regular(path, "decoded copy") is not None or not path.is_file():
         return None
     try:
         with np.load(path, allow_pickle=False) as saved:
-            if str(saved["key"]) != key:
+            if str(saved["key"]) != key and (gone is None or str(saved["fingerprint"]) != gone):
                 log.info("the decoded copy in %s is out of date (the files changed); decoding again", path)
                 return None
             modes = json.loads(str(saved["modes"]))
-            decoded = Decoded(saved["images"], saved["labels"], tuple(str(n) for n in saved["class_names"]),
-                              tuple(str(u) for u in saved["unreadable"]), modes)
+            decoded = Decoded(read_member(saved, "images", path), read_member(saved, "labels", path),
+                              tuple(str(n) for n in saved["class_names"]), tuple(str(u) for u in saved["unreadable"]),
+                              modes)
             fingerprint = str(saved["fingerprint"])
         if decoded.images.shape[1:] != shape or len(decoded.images) != len(decoded.labels):
             raise ValueError(f"it holds images of shape {decoded.images.shape}, not N×{'×'.join(map(str, shape))}")
-    except (OSError, ValueError, KeyError, EOFError, zipfile.BadZipFile) as err:
+    except (OSError, ValueError, KeyError, EOFError, RecursionError, zipfile.BadZipFile) as err:  # SearcherError too
         log.warning("cannot read the decoded copy %s (%s); decoding again", path, err)
         return None
     log.info("read %d decoded images from %s", len(decoded.labels), path)
@@ -284,7 +302,11 @@ def load_dataset(source: str | Path, input_shape: tuple[int, int, int], *, seed:
         labels, names, found = known.rows(0, known.count, images=False)[1], known.class_names, known.fingerprint
         unreadable, modes = known.unreadable, known.modes
     else:
-        saved = _read_saved(None if cache is None else Path(cache), key, shape)
+        gone = fingerprint if source != "demo" and not os.path.lexists(source) else None
+        saved = _read_saved(None if cache is None else Path(cache), key, shape, gone)
+        if saved is not None and gone is not None:
+            log.info("the data at %s is no longer there; reading the run's decoded copy of it (the same data: its "
+                     "fingerprint is the one the run stored)", source)
         if saved is None:
             decoded = decode(source, shape, skip_unreadable, workers)
             saved = decoded, fingerprint_of(decoded.images, decoded.labels)
@@ -292,9 +314,10 @@ def load_dataset(source: str | Path, input_shape: tuple[int, int, int], *, seed:
         images, labels, names, unreadable, modes = (whole.images, whole.labels, whole.class_names, whole.unreadable,
                                                     whole.modes)
     if fingerprint is not None and fingerprint != found:
-        raise SearcherError(f"data fingerprint {found} differs from the stored {fingerprint}; the data "
-                            "has changed since the split was made", file=None if source == "demo" else source,
-                            key="fingerprint")
+        now = describe_data(len(labels), len(names), shape)
+        raise DataChanged(f"data fingerprint {found} differs from the stored {fingerprint}; the data has changed "
+                          f"since the split was made: it now holds {now}", now=now,
+                          file=None if source == "demo" else source, key="fingerprint")
     if split is None:
         try:
             indices = split_indices(labels, seed, fractions, class_names=names)

@@ -3,11 +3,14 @@
 from __future__ import annotations
 
 import io
+import zipfile
 from pathlib import Path
 
 import numpy as np
 
+from searcher.data.npz import read_member
 from searcher.errors import SearcherError
+from searcher.files import not_regular
 from searcher.runs import write_atomic
 
 PARTS = ("train", "val", "test")  # names of the three parts, in order
@@ -87,10 +90,15 @@ def save_split(path: str | Path, indices: dict[str, np.ndarray], fingerprint: st
 
 def load_split(path: str | Path) -> tuple[dict[str, np.ndarray], str]:
     """Read a split stored by `save_split`: (indices, fingerprint)."""
+    refused = not_regular(path, "stored split", key="split")
+    if refused is not None:
+        raise refused
     try:
         with np.load(path, allow_pickle=False) as archive:
-            stored = {k: archive[k] for k in archive.files}
-    except (OSError, ValueError, EOFError) as err:
+            stored = {k: read_member(archive, k, Path(path)) for k in archive.files}  # headers checked first
+    except SearcherError:
+        raise
+    except (OSError, ValueError, EOFError, zipfile.BadZipFile) as err:
         raise SearcherError(f"cannot read the stored split ({err})", file=path, key="split") from err
     if "fingerprint" not in stored:
         raise SearcherError("stored split has no fingerprint; store it with save_split", file=path, key="fingerprint")

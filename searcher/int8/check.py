@@ -11,13 +11,14 @@ the time. ``python benchmarks/bench_int8.py`` measures its cost against the prox
 
 from __future__ import annotations
 
+import math
 from typing import Any
 
 import numpy as np
 
 from searcher.core.arch import Arch
 from searcher.int8 import reference as int8_reference
-from searcher.int8.quantize import IntegerNet, QuantSettings, quantize, to_pixels
+from searcher.int8.quantize import IntegerNet, NotFinite, QuantSettings, quantize, to_pixels
 
 
 def state_arrays(model: Any) -> dict[str, np.ndarray]:
@@ -47,8 +48,12 @@ def int8_accuracy(model: Any, arch: Arch, train_images: Any, images: Any, labels
     """Share of `images` (uint8 pixels, or floats in [0, 1]; N×C×H×W, torch or numpy) the int8 network
     classifies as `labels`.
 
-    ``fast=False`` runs the reference's int64 engine instead; the answer is the same.
+    ``fast=False`` runs the reference's int64 engine instead; the answer is the same. NaN when no int8
+    network can be built (activations that overflow: the weights diverged while the scores stayed finite).
     """
-    net = quantized(model, arch, train_images, settings)
+    try:
+        net = quantized(model, arch, train_images, settings)
+    except NotFinite:
+        return math.nan
     predicted = int8_reference.classify(net, to_pixels(unit_images(images)), fast=fast)
     return float(np.mean(predicted == _numpy(labels)))

@@ -285,6 +285,10 @@ def float_forward(layers: list[FoldedLayer], images: np.ndarray) -> Iterator[tup
 
 # -- the integer side -----------------------------------------------------------------------------
 
+class NotFinite(ValueError):
+    """A trained network whose activations overflow: training diverged without its loss showing it."""
+
+
 def value_range(values: np.ndarray, settings: QuantSettings) -> tuple[float, float]:
     """The (low, high) a tensor's grid must span, always including 0 (so padding and relu's floor are exact)."""
     flat = values.ravel()
@@ -292,6 +296,9 @@ def value_range(values: np.ndarray, settings: QuantSettings) -> tuple[float, flo
         low, high = np.percentile(flat, [100 - settings.percentile, settings.percentile])
     else:
         low, high = flat.min(), flat.max()
+    if not (math.isfinite(low) and math.isfinite(high)):
+        raise NotFinite("activations reach NaN or infinity on the calibration images (float32, batch norm folded in): "
+                        "the trained weights are too large for any int8 grid")
     return min(float(low), 0.0), max(float(high), 0.0)
 
 

@@ -47,6 +47,8 @@ class TrainResult:
     val_scores: Scores | None = None  # accuracy, balanced accuracy and recall per class after the last epoch
     val_accuracy_int8: float | None = None  # the int8 model's validation accuracy, when the trainer measured it
     int8_seconds: float = 0.0  # what measuring it took (quantizing and scoring)
+    val_predicted: np.ndarray | None = None  # predicted class per validation image after the last epoch
+    threads: int | None = None  # torch threads it trained with, when the caller chose them
 
 
 @dataclass
@@ -60,13 +62,15 @@ class TrainProgress:
     seconds: float = 0.0  # wall time so far
     train_size: int = 0  # training images per epoch
     val_scores: Scores | None = None  # all validation scores of the last finished epoch
+    val_predicted: np.ndarray | None = None  # predicted class per validation image, last finished epoch
+    threads: int | None = None  # torch threads the caller chose for this training
 
     def result(self) -> TrainResult:
         """The figures so far as a TrainResult."""
         speed = self.images_seen / self.train_seconds if self.train_seconds > 0 else 0.0
         last = self.val_scores.accuracy if self.val_scores is not None else math.nan
         return TrainResult(last, tuple(self.history), len(self.history), self.seconds, speed, self.train_loss,
-                           self.train_size, self.val_scores)
+                           self.train_size, self.val_scores, val_predicted=self.val_predicted, threads=self.threads)
 
 
 class TrainingStopped(Exception):
@@ -144,14 +148,23 @@ class Batches:
 
 
 def predict(model: nn.Module, images: Images, batch_size: int = 512,
-            layout: torch.memory_format = torch.contiguous_format) -> torch.Tensor:
-    """Predicted class per image, batch by batch (bytes converted per batch); the model's mode is restored."""
+            layout: torch.memory_format = torch.contiguous_format, finite: str | None = None) -> torch.Tensor:
+    """Predicted class per image, batch by batch (bytes converted per batch); the model's mode is restored.
+
+    ``finite`` (when in training, say "after epoch 3") raises Diverged if a score is NaN or infinite:
+    weights grown huge but still finite give no argmax worth the name.
+    """
     images = as_tensor(images)
     was_training = model.training
     model.eval()
     with torch.inference_mode():
-        batches = [model(to_float(images[i : i + batch_size], layout)).argmax(1)
-                   for i in range(0, len(images), batch_size)]
+        batches = []
+        for i in range(0, len(images), batch_size):
+            scores = model(to_float(images[i : i + batch_size], layout))
+            if finite is not None and not bool(torch.isfinite(scores).all()):
+                model.train(was_training)
+                raise Diverged(f"the scores became NaN or infinite {finite}")
+            batches.append(scores.argmax(1))
         predictions = torch.cat(batches)
     model.train(was_training)
     return predictions.clone()  # a plain tensor, usable outside inference mode
@@ -230,13 +243,15 @@ def train_candidate(
                 try:
                     loss = _train_epoch(model, batches, train_labels, order, optimizer, schedule, settings,
                                         deadline, progress, epoch, augmenter, weights)
+                    predicted = predict(model, val_images, settings.eval_batch_size, layout,
+                                        finite=f"on validation images after epoch {epoch + 1}")
                 except TrainingStopped as stopped:
                     progress.seconds = time.monotonic() - started - waited
                     stopped.result = progress.result()
                     raise
                 progress.train_loss = loss
-                predicted = predict(model, val_images, settings.eval_batch_size, layout)
-                progress.val_scores = scores(val_labels.numpy(), predicted.numpy(), classes)
+                progress.val_predicted = predicted.numpy()
+                progress.val_scores = scores(val_labels.numpy(), progress.val_predicted, classes)
                 score = progress.val_scores.get(metric)
                 progress.history.append(score)
                 progress.seconds = time.monotonic() - started - waited
@@ -284,7 +299,13 @@ def _train_epoch(model: nn.Module, batches: Batches, labels: torch.Tensor, order
                                    label_smoothing=settings.label_smoothing)
             optimizer.zero_grad(set_to_none=True)
             loss.backward()
-            optimizer.step()
+            try:
+                optimizer.step()
+            except RuntimeError as exc:  # a step size beyond float32 (learning rate 1e300) cannot even be applied
+                if "overflow" not in str(exc):
+                    raise
+                raise Diverged(f"the optimiser's step overflowed float32 at epoch {epoch + 1}, step {step + 1} "
+                               f"(learning rate {optimizer.param_groups[0]['lr']:g}): {exc}") from None
             if schedule is not None:
                 schedule.step()
             losses.append(loss.detach())  # read back only every CHECK_EVERY steps
@@ -295,6 +316,8 @@ def _train_epoch(model: nn.Module, batches: Batches, labels: torch.Tensor, order
                 if not bool(finite.all()):
                     bad = since + int((~finite).nonzero()[0])
                     raise Diverged(f"loss became {losses[bad].item()} at epoch {epoch + 1}, step {bad + 1}")
+        if not all(bool(torch.isfinite(p).all()) for p in model.parameters()):  # the last steps' loss was still finite
+            raise Diverged(f"the weights became NaN or infinite in epoch {epoch + 1}")
         return torch.stack(losses).mean().item()
     finally:
         progress.train_seconds += time.monotonic() - start

@@ -7,6 +7,7 @@ study that another process (or machine) is still writing.
 
 from __future__ import annotations
 
+import base64
 import math
 import os
 import socket
@@ -14,6 +15,7 @@ import time
 from dataclasses import dataclass
 from typing import Any
 
+import numpy as np
 import optuna
 import pandas as pd
 from optuna.trial import TrialState
@@ -25,7 +27,7 @@ RECORD = "searcher"
 HEARTBEAT = "heartbeat"
 COLUMNS = (
     "trial", "arch", "state", "reason", "rejected_by", "val_accuracy", "val_balanced_accuracy", "val_accuracy_int8",
-    "val_recall", "train_seconds", "int8_seconds", "epochs",
+    "val_recall", "train_seconds", "int8_seconds", "threads", "epochs",
     "params", "macs", "peak_activation_bytes", "weight_bytes", "training_bytes",
     "stages", "convs", "first_width", "last_width", "worker", "retry_of", "repeat_of",
 )
@@ -119,16 +121,19 @@ def trials_frame(study: optuna.Study) -> pd.DataFrame:
 
 
 def counts(frame: pd.DataFrame) -> dict[str, int]:
-    """Trials by state, plus 'tried' and 'repeats' (see :func:`counts_of`)."""
-    repeats = len(frame) - len(distinct_rows(frame))
-    return counts_of(frame["state"].value_counts().to_dict(), repeats)
+    """Distinct candidates by state, plus 'tried' and 'repeats' (see :func:`counts_of`)."""
+    distinct = distinct_rows(frame)
+    state = distinct["state"] if "state" in distinct.columns else pd.Series(dtype=object)
+    return counts_of(state.value_counts().to_dict(), len(frame) - len(distinct))
 
 
 def counts_of(by_state: dict[str, int], repeats: int) -> dict[str, int]:
-    """Every state's count, 'tried' (every proposal that was judged: neither left for later nor
-    yielded to another worker) and 'repeats' (proposals that reused a known outcome)."""
+    """Every state's count of distinct candidates: a proposal that reused a known outcome is counted once,
+    under 'repeats', not again under the state it reused (a run that trained one candidate and was
+    proposed it 268 more times trained 1, not 269). 'tried' counts every proposal that was judged
+    (neither left for later nor yielded to another worker), the repeats among them."""
     out = {s: int(by_state.get(s, 0)) for s in STATES}
-    out["tried"] = sum(out[s] for s in JUDGED)
+    out["tried"] = sum(out[s] for s in JUDGED) + repeats
     out["repeats"] = repeats
     return out
 
@@ -151,3 +156,20 @@ def best_row(frame: pd.DataFrame, caps: dict[str, int], metric: Metric = ACCURAC
     if rows.empty:
         return None
     return rows.sort_values([metric.column, "params"], ascending=[False, True]).iloc[0].to_dict()
+
+
+def pack_classes(classes: np.ndarray) -> str:
+    """Class numbers (one per validation image) as short text for a record: base64 of bytes, with the width.
+
+    >>> unpack_classes(pack_classes(np.array([0, 3, 2, 300]))).tolist()
+    [0, 3, 2, 300]
+    """
+    values = np.asarray(classes, np.int64).ravel()
+    dtype = "<u1" if not len(values) or values.max() < 256 else "<u2" if values.max() < 65536 else "<u4"
+    return f"{dtype[-2:]}:" + base64.b64encode(values.astype(dtype).tobytes()).decode("ascii")
+
+
+def unpack_classes(text: str) -> np.ndarray:
+    """The class numbers :func:`pack_classes` wrote."""
+    width, _, data = text.partition(":")
+    return np.frombuffer(base64.b64decode(data), f"<{width}").astype(np.int64)

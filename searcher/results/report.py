@@ -169,7 +169,8 @@ def front_table_html(trials: pd.DataFrame, cost: str, caps: Mapping[str, float |
          *([percent(float(q))] if shows_int8 else []),
          *(cost_text(c, getattr(row, c)) for c in COST_COLUMNS),
          "—" if math.isnan(step) else f"{step * 100:+.1f} pts for ×{ratio:.2f} cost",
-         "—" if math.isnan(gain) else f"{gain * 100:+.1f} pts"]
+         ("—" if math.isnan(ratio) else "— (too small a step for a rate)") if math.isnan(gain)
+         else f"{gain * 100:+.1f} pts"]
         for (step, ratio, gain), row, q in zip(steps.itertuples(index=False), best.itertuples(index=False),
                                               int8.reindex(best.index) if shows_int8 else [math.nan] * len(best))
     ]

@@ -12,7 +12,7 @@ import pandas as pd
 import plotly.graph_objects as go
 
 from searcher.core.stats import accuracy_se
-from searcher.results.confirmed import Confirmation, difference_noise, seed_spread
+from searcher.results.confirmed import Confirmation, Judge
 from searcher.results.pareto import feasible_mask, pareto_mask
 from searcher.results.records import ACCURACY
 from searcher.results.report_parts import COST_LABELS, TEMPLATE, cost_text, empty_note, percent, table_html
@@ -34,6 +34,13 @@ def _label(confirmation: Confirmation | None) -> str:
     return ACCURACY.label if confirmation is None else confirmation.metric.label
 
 
+def mean_sd(mean: float, sd: float, seeds: int) -> str:
+    """A confirmed mean with its seeds' sd; one seed has no spread to show, and says so rather than '± 0.0%'."""
+    if int(seeds) < 2 or not math.isfinite(sd):
+        return f"{percent(mean)} (1 seed, no spread yet)"
+    return f"{percent(mean)} ± {percent(sd)} over {int(seeds)} seeds"
+
+
 def add_confirmed(fig: go.Figure, confirmation: Confirmation | None, cost: str) -> None:
     """Confirmed means ± 1 sd of the seeds, on a plot of accuracy against ``cost``."""
     rows = _confirmed(confirmation)
@@ -44,9 +51,9 @@ def add_confirmed(fig: go.Figure, confirmation: Confirmation | None, cost: str) 
         x=rows[cost], y=rows["score_mean"], mode="markers", name="confirmed mean ± 1 sd",
         error_y={"type": "data", "array": sd, "visible": True, "color": CONFIRMED_COLOUR, "thickness": 1.5},
         marker={"color": CONFIRMED_COLOUR, "size": 9, "symbol": "square"},
-        text=[f"<b>{html.escape(a)}</b><br>trial {int(t)} · confirmed {percent(m)} ± {percent(s)} over {int(n)} "
-              f"seeds · proxy {percent(p)}" for a, t, m, s, n, p in zip(rows["arch"], rows["trial"], rows["score_mean"],
-                                                                       sd, rows["seeds"], rows["score_proxy"])],
+        text=[f"<b>{html.escape(a)}</b><br>trial {int(t)} · confirmed {mean_sd(m, s, n)} · proxy {percent(p)}"
+              for a, t, m, s, n, p in zip(rows["arch"], rows["trial"], rows["score_mean"], rows["score_sd"],
+                                          rows["seeds"], rows["score_proxy"])],
         hovertemplate="%{text}<extra></extra>")
 
 
@@ -71,23 +78,24 @@ def proxy_figure(confirmation: Confirmation | None) -> go.Figure:
 
 def confirmed_front_html(confirmation: Confirmation | None, cost: str, caps: dict[str, float]) -> str:
     """The front by one cost on confirmed means, each step from the row above marked where it is within
-    noise (less than two standard errors of the difference, from the run's seed spread)."""
+    noise (neither credibly ahead of the other, by the run's rule: see searcher.results.confirmed.Judge)."""
     rows = _confirmed(confirmation)
     rows = rows[feasible_mask(rows, caps)] if len(rows) else rows
     if rows.empty:
         return ""
     on = rows[pareto_mask(rows["score_mean"].to_numpy(float), rows[cost].to_numpy(float))]
     on = on.sort_values([cost, "score_mean"], ascending=[True, False])
-    body, before, spread = [], None, seed_spread(rows, confirmation.metric)
+    judge = confirmation.judge or Judge(confirmation.table, confirmation.metric)
+    body, before = [], None
     for row in on.itertuples(index=False):
         step = "—"
         if before is not None:
             gain = row.score_mean - before.score_mean
-            noise = difference_noise(row.seeds, before.seeds, spread)
+            apart = judge.below(int(row.trial), int(before.trial)) or judge.below(int(before.trial), int(row.trial))
             step = (f"{gain * 100:+.1f} pts for ×{getattr(row, cost) / getattr(before, cost):.2f} cost"
-                    + (" <b>(within noise)</b>" if abs(gain) <= noise else ""))
+                    + ("" if apart else " <b>(within noise)</b>"))
         body.append([str(int(row.trial)), f"<code>{html.escape(row.arch)}</code>",
-                     f"{percent(row.score_mean)} ± {percent(np.nan_to_num(row.score_sd))}", str(int(row.seeds)),
+                     mean_sd(row.score_mean, row.score_sd, row.seeds), str(int(row.seeds)),
                      percent(row.score_proxy), cost_text(cost, getattr(row, cost)), step])
         before = row
     heads = ["trial", "architecture", "confirmed mean ± sd", "seeds", "proxy", COST_LABELS[cost][0],
@@ -111,6 +119,7 @@ def confirmation_html(confirmation: Confirmation | None, sizes: dict[str, int]) 
         return "".join(lines)
     warn = "" if confirmation.reliable else " class='warn'"
     lines.append(f"<p{warn}>{html.escape(confirmation.advice())}.</p>")
+    lines.append(f"<p>{html.escape(confirmation.noise_words()[0].upper() + confirmation.noise_words()[1:])}.</p>")
     if confirmation.pick is not None:
         lines.append(f"<p>Default export: {html.escape(confirmation.pick.reason)}.</p>")
     if confirmation.queued:

@@ -17,8 +17,8 @@ from optuna.trial import TrialState
 from searcher.core.budget import Budget
 from searcher.redact import redact
 from searcher.results.records import HEARTBEAT, METRICS, best_row, counts, trials_frame
-from searcher.results.tables import gather, write_results
-from searcher.runs import RUNS
+from searcher.results.tables import RESULT_FILES, gather, write_results
+from searcher.runs import RUNS, check_run_paths
 from searcher.study.liveness import Registry, is_dead
 from searcher.study.storage import RunConfig, open_run, storage_url
 
@@ -39,7 +39,7 @@ class RunStatus:
 
     name: str
     config: RunConfig
-    counts: dict[str, int]  # trials by state, with 'tried' and 'repeats'
+    counts: dict[str, int]  # distinct candidates by state, with 'tried' and 'repeats' (see records.counts)
     training_seconds: float  # training time spent over the run's life
     best: dict[str, Any] | None  # the best fully trained candidate that fits
     running: tuple[RunningTrial, ...]
@@ -51,7 +51,8 @@ class RunStatus:
             f"run {self.name}: space {config.space_name}, data {redact(config.data)}, objective {config.objective}",
             f"budget: {Budget(**config.budget).describe()}",
             f"tried {c['tried']}: rejected {c['rejected']}, trained {c['trained']}, stopped early "
-            f"{c['stopped_early']}, failed {c['failed']}, interrupted {c['interrupted']}, running {c['running']}",
+            f"{c['stopped_early']}, failed {c['failed']}, interrupted {c['interrupted']}, running {c['running']}"
+            + (f"; {c['repeats']} more reused a known outcome without training" if c["repeats"] else ""),
             f"training time used: {self.training_seconds / 60:.1f} min",
             "best fitting: " + (f"trial {self.best['trial']} {metric.label} {self.best[metric.column]:.4f} "
                                 f"{self.best['arch']}" if self.best else "none yet"),
@@ -87,6 +88,7 @@ def report(name: str, storage: str | None = None, root: Path = RUNS) -> list[Pat
     """Rebuild the result files of run ``name`` (trials.csv, front.csv, confirmed.csv, summary.json,
     report.html) from its stored studies."""
     folder, study, config = open_run(name, storage, root)
+    check_run_paths(folder, files=("split.npz", *RESULT_FILES), folders=())  # before the work: said plainly
     results = gather(name, study, storage_url(storage, folder), config, folder)
     return write_results(folder, results, title=f"searcher run {name}",
                          notes=[f"space {config.space_name}; data {config.data}; objective {config.objective}",

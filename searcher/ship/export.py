@@ -18,7 +18,7 @@ from __future__ import annotations
 import json
 import math
 import logging
-import shutil
+import os
 import time
 from dataclasses import asdict, dataclass, replace
 from pathlib import Path
@@ -35,18 +35,21 @@ from searcher.limits import MAX_EPOCHS, MAX_TRIAL
 from searcher.core.space_file import read_space_text
 from searcher.core.stats import wilson_interval
 from searcher.data.layout import concatenate
-from searcher.data.load import load_dataset, load_split
+from searcher.data.load import DataChanged, Dataset, load_dataset, load_split
+from searcher.files import read_regular
+from searcher.redact import redact
 from searcher.model.build import build
-from searcher.model.train import TrainSettings, evaluate_scores, train_candidate
+from searcher.model.train import Diverged, TrainSettings, evaluate_scores, train_candidate
 from searcher.study.confirm import full_schedule
-from searcher.results.confirmed import check_tolerance, default_pick
-from searcher.results.records import FAILED, REJECTED, TRAINED, best_row
+from searcher.results.confirmed import check_tolerance
+from searcher.results.records import FAILED, REJECTED, SCORED, TRAINED, best_row
 from searcher.results.tables import RunResults, gather
 from searcher.ship.deploy_files import DeployReport, write_deploy_files
-from searcher.runs import RUNS, run_folder
+from searcher.runs import RUNS, check_run_paths, folder_swap, run_folder
 from searcher.ship.model_card import model_card, standalone_source
+from searcher.int8.quantize import NotFinite
 from searcher.study.run import RunData, default_memory_cap
-from searcher.study.storage import open_run, storage_kind, storage_url
+from searcher.study.storage import RunConfig, open_run, storage_kind, storage_url
 
 log = logging.getLogger(__name__)
 
@@ -65,6 +68,9 @@ class ExportSettings:
     def __post_init__(self) -> None:
         """Refuse a bad option before the run is opened, naming it as typed (``--epochs``)."""
         run_folder(self.name, self.root)
+        if self.trial is not None and self.arch is not None:
+            raise SearcherError(f"give `--trial` or `--arch`, not both: --trial {self.trial} names a trial of the run, "
+                                f"--arch {shown(self.arch)} an architecture of your own", key="--trial")
         if self.trial is not None:
             check_int(self.trial, "--trial", 0, MAX_TRIAL)
         if self.epochs is not None:
@@ -152,10 +158,7 @@ def choose(results: RunResults, settings: ExportSettings) -> Choice:
         how = (f"trial {settings.trial} ({row['state']}, proxy validation {results.metric.label} "
                f"{row[results.metric.column]:.4f}), named with --trial")
         return Choice(parse_arch(row["arch"]), settings.trial, how, str(row["state"]), facts(settings.trial))
-    pick = None
-    if results.confirmation is not None:
-        pick = default_pick(results.confirmation.table, results.budget.caps(), results.cost, settings.tolerance,
-                            results.metric)
+    pick = results.confirmation.pick if results.confirmation is not None else None  # gathered with --tolerance
     if pick is not None:
         return Choice(parse_arch(pick.arch), pick.trial, pick.reason, TRAINED, facts(pick.trial))
     best = best_row(frame, results.budget.caps(), results.metric)
@@ -181,6 +184,7 @@ def _refuse_replacing(choice: Choice, fits: bool, folder: Path, settings: Export
 def export(settings: ExportSettings) -> ExportOutcome:
     """Retrain on train+validation, test once on the held-out split, and write runs/<name>/export/."""
     folder, study, config = open_run(settings.name, settings.storage, settings.root)
+    check_run_paths(folder, files=("split.npz", "decoded.npz", "run.json"), folders=("export",))
     budget = Budget(**config.budget)
     results = gather(settings.name, study, storage_url(settings.storage, folder), config, folder, settings.tolerance)
     choice = choose(results, settings)
@@ -201,10 +205,7 @@ def export(settings: ExportSettings) -> ExportOutcome:
                             f"choose a smaller architecture", key="--arch" if settings.arch else "--trial")
     split_file = folder / "split.npz"
     stored = load_split(split_file)[0] if split_file.exists() else None
-    dataset = load_dataset(config.data, space_shape, seed=config.seed, split=stored, cache=folder)
-    if dataset.fingerprint != config.data_fingerprint:
-        raise SearcherError(f"the data at {config.data} changed since run {settings.name!r} searched it "
-                            f"(fingerprint {dataset.fingerprint}, was {config.data_fingerprint})", key="--data")
+    dataset = _run_data(settings.name, config, space_shape, stored, folder)
     data = RunData(dataset).at(arch.input_shape)
     train_settings = full_schedule(TrainSettings(**config.train))
     if settings.epochs:
@@ -215,8 +216,15 @@ def export(settings: ExportSettings) -> ExportOutcome:
     model = build(arch)
     started = time.time()
     # the schedule's own validation pass reads the training data here: the test split stays unseen
-    result = train_candidate(model, images, labels, data.train.images[:256], data.train.labels[:256],
-                             train_settings, seed=config.seed, metric=config.metric, classes=config.classes)
+    try:
+        result = train_candidate(model, images, labels, data.train.images[:256], data.train.labels[:256],
+                                 train_settings, seed=config.seed, metric=config.metric, classes=config.classes)
+    except Diverged as exc:  # not the user's typing, but nothing to export: said plainly, exit status 2
+        raise SearcherError(
+            f"training {arch} with the export's schedule (epochs {epochs}, learning rate "
+            f"{train_settings.learning_rate:g}, weight decay {train_settings.weight_decay:g}) diverged: {exc.reason}; "
+            f"nothing was written. Lower `train.learning_rate` or `train.weight_decay` in the space file, give fewer "
+            f"--epochs, or export another candidate", key="--arch" if settings.arch else "--trial") from None
     scores, predictions = evaluate_scores(model, data.test.images, data.test.labels, config.classes)
     confusion = _confusion(data.test.labels, predictions.numpy(), config.classes)
     per_class = {name: float(confusion[i, i] / max(1, confusion[i].sum())) for i, name in enumerate(config.class_names)}
@@ -227,11 +235,41 @@ def export(settings: ExportSettings) -> ExportOutcome:
     extra = {"run": settings.name, "how": how, "trial": choice.trial, "confirmed": choice.confirmed, "epochs": epochs,
              "train_seconds": result.seconds, "train_size": len(labels),
              "sizes": {p: len(getattr(data, p).labels) for p in ("train", "val", "test")},
-             "settings": asdict(train_settings), "budget": budget, "config": config}
+             "settings": asdict(train_settings), "budget": budget, "config": config,
+             "noise": None if results.confirmation is None else results.confirmation.noise_words(),
+             "candidates": int(results.frame["state"].isin(SCORED).sum())}
     _write(outcome, model, extra, data)
     log.info("exported %s: %s on %d held-out images (%.0f s in all)", arch, outcome.scores_line(),
              len(data.test.labels), time.time() - started)
     return outcome
+
+
+def _run_data(name: str, config: RunConfig, shape: tuple[int, int, int], split: dict | None, folder: Path) -> Dataset:
+    """The run's data read as its search read it (``--skip-unreadable`` carried over), proven the same by its
+    fingerprint; from the run's decoded copy when the files have moved away since."""
+    try:
+        return load_dataset(config.data, shape, seed=config.seed, split=split, cache=folder,
+                            skip_unreadable=config.skip_unreadable or _started_skipping(folder),
+                            fingerprint=config.data_fingerprint)
+    except DataChanged as exc:
+        raise SearcherError(f"the data at {redact(config.data)} changed since run {name!r} searched it: it now holds "
+                            f"{exc.now}; export reads the data from where the search found it (it takes no --data): "
+                            "put the data the run searched back there", key="--name") from None
+    except SearcherError as exc:
+        if config.data == "demo" or os.path.lexists(config.data):
+            raise
+        raise SearcherError(f"run {name!r} searched the data at {redact(config.data)}, which is no longer there, and "
+                            f"the run folder keeps no decoded copy of it; export reads the data from where the search "
+                            f"found it (it takes no --data): put it back there", key="--name") from exc
+
+
+def _started_skipping(folder: Path) -> bool:
+    """Whether the search of a run stored before its configuration carried --skip-unreadable was given it
+    (its run.json says so)."""
+    try:
+        return bool(json.loads(read_regular(folder / "run.json", 2**20, "run.json"))["settings"]["skip_unreadable"])
+    except (OSError, ValueError, KeyError, TypeError, SearcherError):
+        return False
 
 
 def test_interval(outcome: ExportOutcome) -> tuple[float, float]:
@@ -248,15 +286,13 @@ def _confusion(truth: np.ndarray, predicted: np.ndarray, classes: int) -> np.nda
 
 
 def _write(outcome: ExportOutcome, model: Any, extra: dict, data: Any) -> None:
-    """Write into a fresh folder beside export/, then swap it in, so export/ is never half-written.
+    """Write into a fresh folder beside export/, then swap it in, so export/ is never half-written
+    (see searcher.runs.folder_swap: what a kill leaves is cleaned up by the next export).
 
     The int8 model is calibrated on training images (the first of the training split) and measured
     on the held-out split, like the fp32 one.
     """
-    target = outcome.folder
-    temp = target.with_name(f".export-{int(time.time() * 1000)}")
-    temp.mkdir(parents=True)
-    try:
+    with folder_swap(outcome.folder) as temp:
         arch = outcome.arch
         torch.save(model.state_dict(), temp / "model_state.pt")
         (temp / "arch.json").write_text(arch.to_json(), encoding="utf-8")
@@ -264,8 +300,14 @@ def _write(outcome: ExportOutcome, model: Any, extra: dict, data: Any) -> None:
         example = torch.zeros(2, *arch.input_shape)  # batch size free: any N
         program = torch.export.export(model.eval(), (example,), dynamic_shapes=({0: torch.export.Dim("batch")},))
         torch.export.save(program, str(temp / "model.pt2"))
-        outcome.deploy = write_deploy_files(temp, model, arch, data.train.images, data.test.images, data.test.labels,
-                                            extra["config"].class_names)
+        try:
+            outcome.deploy = write_deploy_files(temp, model, arch, data.train.images, data.test.images,
+                                                data.test.labels, extra["config"].class_names)
+        except NotFinite as exc:
+            raise SearcherError(f"the int8 model of {arch} cannot be built: {exc}; training with the export's schedule "
+                                "diverged though its scores stayed finite, and nothing was written. Lower "
+                                "`train.learning_rate` or `train.weight_decay` in the space file, or export another "
+                                "candidate", key="--arch" if extra["trial"] is None else "--trial") from None
         metrics = {"arch": arch.to_text(), "test_accuracy": outcome.test_accuracy,
                    "test_balanced_accuracy": outcome.test_balanced_accuracy, "per_class": outcome.per_class,
                    "confusion": outcome.confusion, "costs": outcome.costs, "fits_budget": outcome.fits,
@@ -274,13 +316,3 @@ def _write(outcome: ExportOutcome, model: Any, extra: dict, data: Any) -> None:
                    **outcome.deploy.metrics()}
         (temp / "metrics.json").write_text(json.dumps(metrics, indent=2), encoding="utf-8")
         (temp / "MODEL_CARD.md").write_text(model_card(outcome, extra), encoding="utf-8")
-        if target.exists():
-            old = target.with_name(f".export-old-{int(time.time() * 1000)}")
-            target.rename(old)
-            temp.rename(target)
-            shutil.rmtree(old, ignore_errors=True)
-        else:
-            temp.rename(target)
-    except BaseException:
-        shutil.rmtree(temp, ignore_errors=True)
-        raise

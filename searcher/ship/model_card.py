@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import unicodedata
 from typing import Any
 
 from torch import nn
@@ -29,6 +30,25 @@ CAUTIONS = """\
   reference's scores exactly on those images where export could compile it. A different compiler,
   target or calibration set is a different build: check it on your own images.
 """
+
+
+def md_text(text: str) -> str:
+    """``text`` as Markdown that shows it as it is: every ASCII punctuation mark backslash-escaped (so no name
+    can start a link, code, a table cell or HTML), line breaks and other control characters shown as
+    escapes (so none can end a table row).
+
+    >>> print(md_text("a|b<i>" + chr(10)))
+    a\\|b\\<i\\>\\n
+    """
+    out = []
+    for char in text:
+        if unicodedata.category(char)[0] == "C" or char in "\u2028\u2029":  # control, format, line separators
+            out.append("\\" + repr(char)[1:-1].lstrip("\\"))
+        elif char.isascii() and not char.isalnum() and char != " ":
+            out.append("\\" + char)
+        else:
+            out.append(char)
+    return "".join(out)
 
 
 def _leaf_source(module: nn.Module) -> str:
@@ -80,11 +100,11 @@ def model_card(outcome: Any, extra: dict) -> str:
     """Markdown: what the model is, how it was found, how well it did, what it costs, and cautions."""
     arch, config, budget = outcome.arch, extra["config"], extra["budget"]
     result = cost(arch, budget.activation_precision)
-    names = list(config.class_names)
+    names = [md_text(n) for n in config.class_names]  # names are data: escaped wherever they appear
     width = max(len(n) for n in names)
     confusion = ["| true \\ predicted | " + " | ".join(names) + " |", "|" + "---|" * (len(names) + 1)]
     confusion += [f"| {names[i]} | " + " | ".join(str(v) for v in row) + " |" for i, row in enumerate(outcome.confusion)]
-    per_class = "\n".join(f"| {name:<{width}} | {acc:.4f} |" for name, acc in outcome.per_class.items())
+    per_class = "\n".join(f"| {name:<{width}} | {acc:.4f} |" for name, acc in zip(names, outcome.per_class.values()))
     caps = budget.caps()
     cost_rows = "\n".join(
         f"| {c} | {show_cost(c, outcome.costs[c])} ({outcome.costs[c]:,}) | "
@@ -97,6 +117,14 @@ def model_card(outcome: Any, extra: dict) -> str:
                  f"\nConfirmed before export: validation {facts['metric'].replace('_', ' ')} {facts['mean']:.4f} ± "
                  f"{facts['sd']:.4f} (mean ± sd) "
                  f"over {facts['seeds']} seeds of the full schedule on the training split.")
+    if extra.get("noise"):
+        confirmed += f" Among the confirmed candidates, {extra['noise']}."
+    test_score = outcome.test_balanced_accuracy if facts and facts["metric"] == "balanced_accuracy" else outcome.test_accuracy
+    optimism = (f"\nQuote the test figure, not a validation one: this candidate was chosen as the best of "
+                f"{extra.get('candidates', 'many'):,} validation scores, and the best of many scores on one set of "
+                f"images leans high (the images it happened to get right helped it win)"
+                + (f"; here validation {facts['mean']:.4f} against test {test_score:.4f}." if facts else ".")
+                if isinstance(extra.get("candidates"), int) and extra["candidates"] > 1 else "")
     return f"""# Model card: `{arch.to_text()}`
 
 ## What it is
@@ -107,14 +135,14 @@ An image classifier for {arch.head.classes} classes ({', '.join(names)}), input
 {list(arch.head.hidden) or 'none'}.
 
 ## How it was found
-Run `{extra['run']}` searched space `{config.space_name}` with Optuna (objective: {config.objective}),
+Run `{extra['run']}` searched space {md_text(config.space_name)} with Optuna (objective: {config.objective}),
 rejecting every candidate over the budget by exact arithmetic before training and giving the rest a
 short proxy training. This candidate was chosen as: {extra['how']}.
 It was then retrained from scratch for {extra['epochs']} epochs on the training and validation
 splits together ({extra['train_size']} images, {extra['train_seconds']:.0f} s on CPU).
 
 ## Data
-Source: `{redact(config.data)}` (fingerprint `{config.data_fingerprint}`), split with seed {config.seed},
+Source: {md_text(redact(config.data))} (fingerprint `{config.data_fingerprint}`), split with seed {config.seed},
 stratified by class: {sizes['train']} training, {sizes['val']} validation, {sizes['test']} test images.
 The test split was not used by the search or by this training.
 
@@ -126,6 +154,7 @@ The test split was not used by the search or by this training.
 
 fp32: 95% interval {low:.4f}–{high:.4f} (Wilson's score interval at {sizes['test']} images).
 {confirmed}
+{optimism}
 
 Per class, fp32:
 

@@ -11,14 +11,12 @@ never touched.
 
 from __future__ import annotations
 
-import contextlib
 import logging
 import math
 import time
 from dataclasses import dataclass, replace
-from pathlib import Path
-from typing import Callable
 
+import numpy as np
 import optuna
 import pandas as pd
 from optuna.trial import TrialState
@@ -27,23 +25,26 @@ from searcher.core.arch import Arch, parse_arch
 from searcher.core.budget import Budget
 from searcher.core.cost import cost
 from searcher.core.train_settings import TrainSettings
-from searcher.model.train import Diverged, OutOfTime, TrainProgress
-from searcher.results.confirmed import ConfirmSettings, cost_columns, select
+from searcher.model.train import TrainProgress
+from searcher.results.confirmed import ConfirmSettings, confirmation, cost_columns, select
 from searcher.results.records import ACCURACY, Metric
 from searcher.results.records import (
-    DUPLICATE, FAILED, INTERRUPTED, NOT_STARTED, RECORD, TRAINED, TRAINING, record_of, trials_frame,
+    DUPLICATE, FAILED, INTERRUPTED, NOT_STARTED, RECORD, TRAINED, TRAINING, pack_classes, record_of, trials_frame,
+    unpack_classes,
 )
-from searcher.study.ending import Ending, StopReason, StopRequested, StopSignals
-from searcher.study.liveness import Heartbeat, Registry, claim, queue_retry, recover_stale
+from searcher.study.ending import Ending, StopReason
+from searcher.study.liveness import claim, queue_retry
+from searcher.study.loop import LoopPlan, TrialLoop
 from searcher.study.optuna_private import queued_params
 from searcher.study.storage import OBJECTIVES, open_storage, trial_seed
 from searcher.study.timebox import Throughput
-from searcher.study.worker import RECOVER_SECONDS, Trainer, scores_of
+from searcher.study.worker import Trainer, scores_of
 
 log = logging.getLogger(__name__)
 
 EMPTY = "empty"  # a trial asked when another worker had just taken the last queued job: nothing to do
 SCORES = ("val_accuracy", "val_balanced_accuracy", "val_accuracy_int8")  # each job's scores, as confirmed.csv reads them
+VAL_LABELS = "val_labels"  # the confirmation study's attribute holding the validation labels
 
 
 def confirm_name(name: str) -> str:
@@ -86,36 +87,64 @@ def jobs_frame(study: optuna.Study | None) -> pd.DataFrame:
         state = "running" if t.state == TrialState.RUNNING else "queued" if t.state == TrialState.WAITING \
             else record.get("state", FAILED)
         scores = {key: (record.get(key) if state == TRAINED else None) for key in SCORES}
+        predicted = record.get("val_predicted") if state == TRAINED else None
         rows.append({"job": t.number, "trial": record["trial"], "seed_index": record["seed_index"], "state": state,
                      **{key: math.nan if value is None else value for key, value in scores.items()},
                      "reason": record.get("chosen", ""), "train_seconds": record.get("train_seconds", 0.0),
-                     "history": record.get("history", [])})
+                     "history": record.get("history", []),
+                     "predicted": None if predicted is None else unpack_classes(predicted)})
     return pd.DataFrame(rows, columns=["job", "trial", "seed_index", "state", *SCORES, "reason", "train_seconds",
-                                       "history"])
+                                       "history", "predicted"])
+
+
+def keep_labels(study: optuna.Study, labels: np.ndarray) -> None:
+    """Store the validation labels on the confirmation study once: with each job's predictions, what
+    the paired comparison of two candidates needs, on any machine that reads the store."""
+    if VAL_LABELS not in study.user_attrs:
+        study.set_user_attr(VAL_LABELS, pack_classes(labels))
+
+
+def read_labels(name: str, url: str) -> np.ndarray | None:
+    """The validation labels :func:`keep_labels` stored for run ``name``; None before any (or for older runs)."""
+    storage = open_storage(url, create=False)
+    if confirm_name(name) not in {s.study_name for s in optuna.get_all_study_summaries(storage)}:
+        return None
+    packed = optuna.load_study(study_name=confirm_name(name), storage=storage).user_attrs.get(VAL_LABELS)
+    return None if packed is None else unpack_classes(packed)
 
 
 def plan(study: optuna.Study, main: optuna.Study, budget: Budget, objective: str, val_images: int,
-         settings: ConfirmSettings, seed: int, metric: Metric = ACCURACY) -> int:
+         settings: ConfirmSettings, seed: int, metric: Metric = ACCURACY, more_seeds: int = 0) -> int:
     """Queue every job of the current selection that has no trial yet; the number queued.
 
     The order serves a time box that cuts confirmation short: the first two seeds of each candidate
     together, most important candidate first (two seeds give a spread, and the default pick needs
-    them), then the further seeds round by round.
+    them), then the further seeds round by round. With ``more_seeds``, the candidates the default
+    pick chooses between (those not credibly below the best) get that many seeds beyond
+    ``settings.seeds``: time a box has left sharpens the pick.
     """
     frame = trials_frame(main)
     chosen = select(frame, budget.caps(), cost_columns(budget.caps(), OBJECTIVES[objective]), val_images,
-                    settings, seed, metric)
+                    settings, seed, metric, OBJECTIVES[objective] or "params")
     have = set()
     for t in study.get_trials(deepcopy=False):
         params = t.params or queued_params(t) or {}
         if "trial" in params and not (t.state == TrialState.FAIL and record_of(t).get("state") in (INTERRUPTED, NOT_STARTED)):
             have.add((params["trial"], params["seed_index"]))
-    queued = 0
     order = [(trial, why, index) for trial, why in chosen for index in range(min(2, settings.seeds))]
     order += [(trial, why, index) for index in range(2, settings.seeds) for trial, why in chosen]
+    if more_seeds:
+        jobs = jobs_frame(study)
+        packed = study.user_attrs.get(VAL_LABELS)
+        found = confirmation(frame, jobs, budget.caps(), OBJECTIVES[objective] or "params", settings.tolerance, 1, 2,
+                             metric, None if packed is None else unpack_classes(packed))
+        order += [(trial, "within noise of the best", index)
+                  for index in range(settings.seeds, settings.seeds + more_seeds) for trial in found.within]
+    queued = 0
     for trial, why, index in order:
         if (trial, index) not in have:
             study.enqueue_trial({"trial": trial, "seed_index": index}, user_attrs={"chosen": why})
+            have.add((trial, index))
             queued += 1
     return queued
 
@@ -127,58 +156,34 @@ class ConfirmTally:
     stop: StopReason | None = None
 
 
-@dataclass(frozen=True)
-class ConfirmPlan:
+@dataclass(frozen=True, kw_only=True)
+class ConfirmPlan(LoopPlan):
     """What a confirming worker needs beyond the studies."""
 
-    deadline: float | None  # time.time() after which nothing new starts and training stops
     run_seed: int
     images: int  # training images a job sees per epoch
-    log_path: Path | None = None
-    run_folder: Path | None = None  # given when every worker of the study runs on this machine
-    flush: Callable[[], None] | None = None
 
 
-class Confirmer:
+class Confirmer(TrialLoop):
     """Takes queued jobs one at a time and trains each with the full schedule until none is left."""
 
     def __init__(self, study: optuna.Study, main: optuna.Study, settings: TrainSettings, plan: ConfirmPlan,
                  trainer: Trainer, throughput: Throughput) -> None:
-        self.study, self.main, self.settings, self.plan = study, main, settings, plan
+        super().__init__(study, plan)
+        self.main, self.settings = main, settings
         self.archs: dict[int, Arch] = {}  # the search's trial number -> its candidate, read as jobs need them
         self.trainer, self.throughput = trainer, throughput
-        self.signals = StopSignals()
         self.tally = ConfirmTally()
-        self.registry: Registry | None = None  # this run's local worker registry, when its store is local
-        self._recovered_at = -math.inf  # time.monotonic() of the last look for dead workers' jobs
 
     def run(self) -> ConfirmTally:
-        """Work through the queued jobs until none is left, the time is up or a signal came."""
+        """Work through the queued jobs until none is left, the time is up or a signal came (a job predicted
+        not to finish is put back at the end of the queue once)."""
         started = time.time()
-        self.signals.install()
-        registry = Registry(self.plan.run_folder) if self.plan.run_folder else contextlib.nullcontext()
-        with registry as self.registry:
-            while (stop := self.stop_reason()) is None:
-                state = self.step()
-                if state == NOT_STARTED:
-                    stop = StopReason(Ending.TIME_NEAR, "time limit near: the next confirmation would not finish "
-                                                        "in time (queued for the next run)")
-                    break
-                if state == INTERRUPTED:
-                    stop = self.stop_reason() or StopReason(Ending.TIME_LIMIT, "time limit reached")
-                    break
+        stop = super().run()
         self.tally.stop, self.tally.seconds = stop, time.time() - started
         return self.tally
 
-    def stop_reason(self) -> StopReason | None:
-        """Why to stop now, or None; looks for jobs dead workers left running every RECOVER_SECONDS."""
-        if self.signals.received:
-            return StopReason.by_signal(self.signals.received)
-        if self.plan.deadline is not None and time.time() >= self.plan.deadline:
-            return StopReason(Ending.TIME_LIMIT, "time limit reached")
-        if time.monotonic() - self._recovered_at >= RECOVER_SECONDS:
-            recover_stale(self.study, self.registry)
-            self._recovered_at = time.monotonic()
+    def done(self) -> StopReason | None:
         if not self.study.get_trials(deepcopy=False, states=(TrialState.WAITING,)):
             return StopReason(Ending.DONE, "confirmation done")
         return None
@@ -188,7 +193,7 @@ class Confirmer:
         trial = self.study.ask()
         claim(trial)
         if queued_params(trial) is None:  # another worker took the last queued job meanwhile
-            return self._end(trial, {"state": EMPTY}, EMPTY, "no queued job left", TrialState.FAIL)
+            return self.end(trial, {}, EMPTY, "no queued job left", TrialState.FAIL)
         source, index = trial.suggest_int("trial", 0, 2**31 - 1), trial.suggest_int("seed_index", 0, 10**6)
         arch = self.arch_of(source)
         record = {"trial": source, "seed_index": index, "arch": arch.to_text(), "chosen": trial.user_attrs.get("chosen", ""),
@@ -198,14 +203,14 @@ class Confirmer:
             r = record_of(other)
             if other.number != trial.number and (r.get("trial"), r.get("seed_index")) == (source, index) and (
                     other.state == TrialState.RUNNING or r.get("state") in (TRAINED, FAILED)):
-                return self._end(trial, record, DUPLICATE, f"job done or running as trial {other.number}", TrialState.FAIL)
+                return self.end(trial, record, DUPLICATE, f"job done or running as trial {other.number}", TrialState.FAIL)
         images = self.settings.epochs * self.plan.images
         predicted = self.throughput.predict(self._macs(arch), images)
         left = None if self.plan.deadline is None else self.plan.deadline - time.time()
         if left is not None and predicted is not None and predicted > left:
             queue_retry(self.study, trial)
-            return self._end(trial, record, NOT_STARTED, f"predicted {predicted:.0f} s but {left:.0f} s left",
-                             TrialState.FAIL)
+            return self.end(trial, record, NOT_STARTED, f"predicted {predicted:.0f} s but {left:.0f} s left",
+                            TrialState.FAIL)
         return self._train(trial, arch, record, job_seed(self.plan.run_seed, source, index))
 
     def arch_of(self, number: int) -> Arch:
@@ -224,46 +229,27 @@ class Confirmer:
     def _train(self, trial: optuna.Trial, arch: Arch, record: dict, seed: int) -> str:
         progress = TrainProgress()
         deadline = None if self.plan.deadline is None else time.monotonic() + (self.plan.deadline - time.time())
-        with Heartbeat(self.study, trial):
-            try:
-                with self.signals.raising():
-                    result = self.trainer(arch, seed=seed, on_epoch=_ignore, deadline=deadline, progress=progress)
-                state, reason = TRAINED, ""
-            except Diverged as exc:
-                state, reason, result = FAILED, f"diverged: {exc.reason}", exc.result
-            except OutOfTime as exc:
-                state, reason, result = INTERRUPTED, "the run's time limit was reached during training; queued again", exc.result
-            except StopRequested as exc:
-                state, reason, result = INTERRUPTED, f"stopped by {exc}; queued again", progress.result()
-        if state == INTERRUPTED:
-            queue_retry(self.study, trial)
-        else:
+        state, reason, result = self.train(trial, lambda p: self.trainer(arch, seed=seed, on_epoch=_ignore,
+                                                                         deadline=deadline, progress=p), progress)
+        if state != INTERRUPTED:
             self.throughput.add(self._macs(arch), progress.images_seen, result.seconds)
             self.tally.trained += state == TRAINED
         record |= scores_of(result) | {"history": list(result.history), "train_seconds": round(result.seconds, 3),
                                        "epochs": result.epochs, "seed": seed}
+        if state == TRAINED and result.val_predicted is not None:  # what the paired comparison resamples
+            record["val_predicted"] = pack_classes(result.val_predicted)
         score = result.history[-1] if result.history else math.nan  # the run's metric, as the search told it
         record["score"] = score if math.isfinite(score) else None
-        return self._end(trial, record, state, reason, TrialState.COMPLETE if state == TRAINED and record["score"]
-                         is not None else TrialState.FAIL)
+        return self.end(trial, record, state, reason, TrialState.COMPLETE if state == TRAINED and record["score"]
+                        is not None else TrialState.FAIL, record["score"])
 
-    def _end(self, trial: optuna.Trial, record: dict, state: str, reason: str, optuna_state: TrialState) -> str:
-        record = record | {"state": state, "reason": reason}
-        trial.set_user_attr(RECORD, record)
-        if optuna_state == TrialState.COMPLETE:
-            self.study.tell(trial, record["score"])
-        else:
-            self.study.tell(trial, state=optuna_state)
-        if self.plan.flush is not None and state in (TRAINED, FAILED):
-            self.plan.flush()
-        if self.plan.log_path is not None and state != EMPTY:
-            acc = record.get("val_accuracy")
-            line = (f"{time.strftime('%Y-%m-%d %H:%M:%S')} confirm trial {record.get('trial')} seed "
-                    f"{record.get('seed_index')} {state} acc={'-' if acc is None else f'{acc:.4f}'} "
-                    f"seconds={record.get('train_seconds', 0):.1f}" + (f" reason={reason}" if reason else ""))
-            with open(self.plan.log_path, "a", encoding="utf-8") as handle:
-                handle.write(line + "\n")
-        return state
+    def log_line(self, number: int, record: dict) -> str | None:
+        if record["state"] == EMPTY:
+            return None
+        acc = record.get("val_accuracy")
+        return (f"confirm trial {record.get('trial')} seed {record.get('seed_index')} {record['state']} "
+                f"acc={'-' if acc is None else f'{acc:.4f}'} seconds={record.get('train_seconds', 0):.1f}"
+                + (f" reason={record['reason']}" if record.get("reason") else ""))
 
 
 def _ignore(epoch: int, accuracy: float) -> None:

@@ -14,15 +14,20 @@ from typing import Callable
 
 import optuna
 import pandas as pd
+import torch
 
 from searcher.core.arch import Arch
 from searcher.core.train_settings import TrainSettings
+from searcher.int8.check import int8_accuracy
+from searcher.limits import MAX_CONFIRM_SEEDS
 from searcher.model.build import build
 from searcher.model.train import TrainProgress, TrainResult, train_candidate
-from searcher.int8.check import int8_accuracy
 from searcher.results.confirmed import ConfirmSettings, cost_columns, select
-from searcher.results.records import METRICS, REJECTED, TRAINED
-from searcher.study.confirm import ConfirmPlan, Confirmer, ConfirmTally, full_schedule, open_confirm_study, plan
+from searcher.results.records import METRICS, REJECTED, SPENT, TRAINED
+from searcher.study.confirm import (
+    ConfirmPlan, Confirmer, ConfirmTally, full_schedule, keep_labels, open_confirm_study, plan, read_jobs,
+)
+from searcher.study.cpu_share import CpuShare
 from searcher.study.ending import Ending, Phases, StopReason
 from searcher.study.ledger import Ledger
 from searcher.study.run import PreparedRun, RunData, default_memory_cap
@@ -47,17 +52,22 @@ class TorchTrainer:
     threads: int | None = None  # torch threads while training; None leaves torch's setting alone
     metric: str = "accuracy"  # the validation score reported each epoch
     int8: bool = False  # measure the int8 validation accuracy after training
+    share: CpuShare | None = None  # when given, the threads of each candidate: the cores other programs leave free
 
     @classmethod
     def for_run(cls, run: PreparedRun, threads: int | None = None) -> TorchTrainer:
-        return cls(run.data, run.train, threads, run.settings.metric, run.budget.weight_precision == "int8")
+        """The run's trainer; each candidate trains with at most ``threads`` (default: torch's count), fewer
+        while other programs keep cores busy (:mod:`searcher.study.cpu_share`)."""
+        share = CpuShare(limit=threads or torch.get_num_threads())
+        return cls(run.data, run.train, threads, run.settings.metric, run.budget.weight_precision == "int8", share)
 
     def __call__(self, arch: Arch, *, seed: int, on_epoch: Callable[[int, float], None], deadline: float | None,
                  progress: TrainProgress) -> TrainResult:
         split = self.data.at(arch.input_shape)
         model = build(arch)
+        threads = progress.threads = self.share.threads() if self.share is not None else self.threads
         result = train_candidate(model, split.train.images, split.train.labels, split.val.images, split.val.labels,
-                                 self.settings, seed=seed, on_epoch=on_epoch, deadline=deadline, threads=self.threads,
+                                 self.settings, seed=seed, on_epoch=on_epoch, deadline=deadline, threads=threads,
                                  progress=progress, metric=self.metric, classes=self.data.num_classes)
         if not self.int8:
             return result
@@ -71,12 +81,14 @@ TrainerFor = Callable[[PreparedRun, "int | None"], Trainer]  # (prepared run, to
 
 def run_worker(run: PreparedRun, study: optuna.Study, deadline: float | None, index: int, *,
                threads: int | None = None, parent_pid: int | None = None,
-               trainer_for: TrainerFor | None = None, confirm: ConfirmSettings | None = None) -> WorkerTally:
+               trainer_for: TrainerFor | None = None, confirm: ConfirmSettings | None = None,
+               throughput: Throughput | None = None) -> WorkerTally:
     """One worker's loop over the study, with progress lines on the log.
 
     ``trainer_for(run, threads)`` makes the trainer in place of :class:`TorchTrainer` (a notebook's
     own training loop, or a test that records what was built). With ``confirm``, the time box keeps
-    what the confirmation of the current front is predicted to need.
+    what the confirmation of the current front is predicted to need. ``throughput`` carries what
+    earlier rounds measured, so predictions hold from the first candidate on.
     """
     s = run.settings
     local = _local(run)
@@ -88,10 +100,13 @@ def run_worker(run: PreparedRun, study: optuna.Study, deadline: float | None, in
         log_path=run.folder / "search.log", seed=s.seed + index, parent_pid=parent_pid,
         run_folder=run.folder if local else None, flush=disk_flush(run.url),
         reserve=confirmation_reserve(run, confirm, deadline - time.time()) if confirm and confirm.on and deadline else None,
+        least_macs=run.least_macs,
     )
     trainer = (trainer_for or TorchTrainer.for_run)(run, threads)
     worker = Worker(study, run.space, run.budget, run.train, s.objective, run.data.num_classes, plan, trainer,
                     METRICS[s.metric])
+    if throughput is not None:
+        worker.tally.throughput = throughput
     worker.on_proposal = progress_printer(deadline, prefix=f"[worker {index}] " if s.workers > 1 else "")
     return worker.run()
 
@@ -108,7 +123,8 @@ def confirmation_reserve(run: PreparedRun, confirm: ConfirmSettings, box: float)
     """Seconds the confirmation of the current selection is predicted to take (this worker's share),
     at most CONFIRM_SHARE of the ``box`` seconds: what does not fit stays queued for the next run.
 
-    Recomputed only when a candidate was added to the ledger, from the throughput measured so far.
+    Recomputed only when a candidate was added to the ledger, from the throughput measured so far;
+    seeds already confirmed (in an earlier round or run) are not counted again.
     """
     caps = run.budget.caps()
     columns = cost_columns(caps, OBJECTIVES[run.settings.objective])
@@ -121,11 +137,14 @@ def confirmation_reserve(run: PreparedRun, confirm: ConfirmSettings, box: float)
         if len(ledger.trained) != seen["count"]:
             rows = [record | {"trial": number, "state": TRAINED} for number, record in ledger.trained.items()]
             frame = pd.DataFrame(rows) if rows else pd.DataFrame(columns=["trial", "state", metric.column, "params"])
-            chosen = select(frame, caps, columns, val_images, confirm, run.settings.seed, metric) if rows else []
-            predicted = [throughput.predict(ledger.trained[t]["macs"], epochs_images) for t, _ in chosen
-                         if t in ledger.trained]
+            chosen = select(frame, caps, columns, val_images, confirm, run.settings.seed, metric,
+                            OBJECTIVES[run.settings.objective] or "params") if rows else []
+            jobs = read_jobs(run.settings.name, run.url) if chosen else None
+            done = jobs[jobs["state"] == TRAINED]["trial"].value_counts().to_dict() if jobs is not None else {}
+            wanted = sum((throughput.predict(ledger.trained[t]["macs"], epochs_images) or 0.0)
+                         * max(0, confirm.seeds - done.get(t, 0)) for t, _ in chosen if t in ledger.trained)
             seen["count"] = len(ledger.trained)
-            wanted = sum(p or 0.0 for p in predicted) * confirm.seeds / run.settings.workers
+            wanted /= run.settings.workers
             seen["seconds"] = min(wanted, CONFIRM_SHARE * box)
         return seen["seconds"]
 
@@ -134,11 +153,13 @@ def confirmation_reserve(run: PreparedRun, confirm: ConfirmSettings, box: float)
 
 def run_confirmation(run: PreparedRun, main: optuna.Study, deadline: float | None, confirm: ConfirmSettings,
                      throughput: Throughput, *, threads: int | None = None,
-                     trainer_for: TrainerFor | None = None) -> ConfirmTally:
-    """Queue the jobs the current front calls for (if not queued yet) and work through the queue."""
+                     trainer_for: TrainerFor | None = None, more_seeds: int = 0) -> ConfirmTally:
+    """Queue the jobs the current front calls for (if not queued yet; ``more_seeds`` further seeds for the
+    candidates within noise of the best) and work through the queue."""
     study = open_confirm_study(run.settings.name, run.url)
+    keep_labels(study, run.data.dataset.val.labels)
     queued = plan(study, main, run.budget, run.settings.objective, len(run.data.dataset.val.labels), confirm,
-                  run.settings.seed, METRICS[run.settings.metric])
+                  run.settings.seed, METRICS[run.settings.metric], more_seeds)
     log.info("confirmation: %d job(s) queued now; each candidate retrained %d times with the export's schedule",
              queued, confirm.seeds)
     full = replace(run, train=full_schedule(run.train))
@@ -152,21 +173,64 @@ def run_confirmation(run: PreparedRun, main: optuna.Study, deadline: float | Non
 def run_phases(run: PreparedRun, study: optuna.Study, deadline: float | None, *, index: int = 0,
                threads: int | None = None, parent_pid: int | None = None,
                trainer_for: TrainerFor | None = None) -> Phases:
-    """One worker's proxy search, then its share of the confirmation (when on, and when the proxy phase
-    ended by itself rather than by a signal or the time running out)."""
+    """One worker's proxy search, then its share of the confirmation, round after round until the box is spent.
+
+    Confirmation follows a proxy phase that ended by itself (not by a signal or the time running
+    out). Time the confirmation leaves goes back to work rather than idle: to the proxy search
+    when it had stopped only to keep time for confirming, else to further seeds of the candidates
+    the default pick must choose between. Without a time box there is one round.
+    """
     confirm = run.settings.confirm
-    started = time.time()
-    tally = run_worker(run, study, deadline, index, threads=threads, parent_pid=parent_pid,
-                       trainer_for=trainer_for, confirm=confirm)
-    phases = Phases(tally.stop, tally.proposals, time.time() - started)
-    if confirm.on and tally.stop.kind in (Ending.DONE, Ending.TIME_NEAR, Ending.EXHAUSTED):
-        confirmed = run_confirmation(run, study, deadline, confirm, tally.throughput, threads=threads,
-                                     trainer_for=trainer_for)
-        phases.confirm_seconds = confirmed.seconds
-        phases.stop = StopReason(confirmed.stop.kind if confirmed.stop.kind is Ending.SIGNAL else tally.stop.kind,
-                                 f"proxy search: {tally.stop.text}; confirmation: {confirmed.stop.text}",
-                                 confirmed.stop.signum)
+    throughput = Throughput()  # measured over every round: a later round predicts from the first candidate on
+    phases = Phases(StopReason(Ending.DONE, ""), [])
+    texts: list[str] = []
+    more_seeds = 0  # seeds added beyond confirm.seeds for close calls
+    while True:
+        started = time.time()
+        tally = run_worker(run, study, deadline, index, threads=threads, parent_pid=parent_pid,
+                           trainer_for=trainer_for, confirm=confirm, throughput=throughput)
+        phases.proposals += tally.proposals
+        phases.proxy_seconds += time.time() - started
+        searched = any(p in SPENT for p in tally.proposals)  # some candidate cost training time
+        phases.stop = tally.stop
+        texts.append(f"proxy search: {tally.stop.text}")
+        if not confirm.on or tally.stop.kind not in (Ending.DONE, Ending.TIME_NEAR, Ending.EXHAUSTED):
+            break
+        started = time.time()
+        confirmed = run_confirmation(run, study, deadline, confirm, throughput, threads=threads,
+                                     trainer_for=trainer_for, more_seeds=more_seeds)
+        phases.confirm_seconds += time.time() - started
+        texts.append(f"confirmation: {confirmed.stop.text}")
+        if confirmed.stop.kind is Ending.SIGNAL:
+            phases.stop = confirmed.stop
+            break
+        if deadline is None or confirmed.stop.kind is not Ending.DONE or not _time_for_more(deadline, throughput, run):
+            break
+        if tally.stop.kind is Ending.TIME_NEAR and searched:  # it stopped to keep time for confirming: time is back
+            log.info("%s of the time box left after the confirmation: back to the proxy search",
+                     clock(deadline - time.time()))
+            continue
+        if (more_seeds and not confirmed.trained) or confirm.seeds + more_seeds >= MAX_CONFIRM_SEEDS:
+            break  # the last round of further seeds found nothing to do, or the seeds are at their ceiling
+        more_seeds += 1
+        log.info("%s of the time box left: one more seed for the candidates the default pick chooses between",
+                 clock(deadline - time.time()))
+    phases.stop = StopReason(phases.stop.kind, "; ".join(_collapse(texts)), phases.stop.signum)
     return phases
+
+
+def _time_for_more(deadline: float, throughput: Throughput, run: PreparedRun) -> bool:
+    """Is there time for at least one more proxy training of the space's cheapest candidate?"""
+    predicted = throughput.predict(run.least_macs, run.train.epochs * len(run.data.train.labels))
+    return deadline - time.time() > (predicted or 0.0)
+
+
+def _collapse(texts: list[str]) -> list[str]:
+    """Repeated rounds say so once: 'proxy search: x (3 rounds)'."""
+    counted: dict[str, int] = {}
+    for text in texts:
+        counted[text] = counted.get(text, 0) + 1
+    return [text + (f" ({n} rounds)" if n > 1 else "") for text, n in counted.items()]
 
 
 def progress_printer(deadline: float | None, prefix: str) -> Callable[[str, WorkerTally, Ledger], None]:

@@ -2,8 +2,8 @@
 
 A finished trial never changes, so the ledger reads each one once and keeps what the loop asks
 about every proposal: counts by state, how many candidates cost training time, the best accuracy,
-the first outcome of every architecture (a repeat takes it over), and the per-epoch accuracy of
-fully trained candidates (for the two-objective early stop). This keeps the bookkeeping per
+the first outcome of every architecture (a repeat takes it over), and the per-epoch scores of
+every trained or stopped candidate (the early stop judges a candidate against them). This keeps the bookkeeping per
 proposal flat as a study grows to thousands of trials. This worker's own trials are added as it
 tells them, other workers' at the next :meth:`Ledger.update`.
 """
@@ -17,7 +17,7 @@ from dataclasses import dataclass
 import optuna
 from optuna.trial import TrialState
 
-from searcher.results.records import SPENT, TRAINED, counts_of, finished_state, record_of
+from searcher.results.records import SPENT, STOPPED, TRAINED, counts_of, finished_state, record_of
 
 
 @dataclass(frozen=True)
@@ -36,12 +36,13 @@ class Ledger:
     def __init__(self, score: str = "val_accuracy") -> None:
         self.score = score  # the record's column the search ranks by
         self.seen: set[int] = set()
-        self.by_state: Counter[str] = Counter()  # searcher state -> finished trials (repeats included)
+        self.by_state: Counter[str] = Counter()  # searcher state -> finished distinct candidates (repeats apart)
         self.repeats = 0
         self.spent = 0  # candidates that used training time (trained, stopped early, failed; repeats excluded)
         self.best = math.nan  # best validation score of a trained candidate
         self.outcomes: dict[str, Outcome] = {}  # arch text -> its first spent trial's outcome
         self.trained: dict[int, dict] = {}  # trial number -> record, of fully trained candidates (repeats excluded)
+        self.judged: list[dict] = []  # records of trained and stopped candidates: their histories meet the rungs
 
     def update(self, study: optuna.Study) -> list[optuna.trial.FrozenTrial]:
         """Read trials finished since the last call; return the running ones."""
@@ -58,22 +59,25 @@ class Ledger:
             return
         self.seen.add(number)
         state = finished_state(record)
-        self.by_state[state] += 1
         if record.get("repeat_of") is not None:
             self.repeats += 1
             return
+        self.by_state[state] += 1
         if state not in SPENT:
             return
         self.spent += 1
         self.outcomes.setdefault(record["arch"], Outcome(number, optuna_state, values, record))
+        if state in (TRAINED, STOPPED) and record.get("history"):
+            self.judged.append(record)
         accuracy = record.get(self.score)
         if state == TRAINED and accuracy is not None:
             self.best = accuracy if math.isnan(self.best) else max(accuracy, self.best)
             self.trained[number] = record
 
-    def histories_within(self, column: str, limit: float) -> list[tuple[float, ...]]:
-        """Per-epoch accuracy of every fully trained candidate whose ``column`` cost is at most ``limit``."""
-        return [tuple(r.get("history") or ()) for r in self.trained.values() if r.get(column, math.inf) <= limit]
+    def reached(self, rung: int, column: str) -> list[tuple[float, float]]:
+        """(``column`` cost, score after epoch ``rung``) of every trained or stopped candidate that got that far."""
+        return [(r[column], r["history"][rung - 1]) for r in self.judged
+                if len(r["history"]) >= rung and r["history"][rung - 1] is not None and r.get(column) is not None]
 
     def counts(self) -> dict[str, int]:
         """As :func:`searcher.results.records.counts` gives for the finished trials."""

@@ -23,7 +23,8 @@ from types import TracebackType
 import optuna
 from optuna.trial import TrialState
 
-from searcher.results.records import HEARTBEAT, INTERRUPTED, NOT_STARTED, RECORD, record_of, worker_id
+from searcher.results.records import HEARTBEAT, INTERRUPTED, RECORD, record_of, worker_id
+from searcher.runs import pid_alive
 from searcher.study.optuna_private import set_trial_attr
 
 log = logging.getLogger(__name__)
@@ -37,16 +38,6 @@ UNCLAIMED_SECONDS = 60.0  # asked but never claimed for this long: the worker di
 def claim(trial: optuna.Trial) -> None:
     """Mark the trial as this process's, before anything else happens to it."""
     trial.set_user_attr(WORKER, worker_id())
-
-
-def pid_alive(pid: int) -> bool:
-    try:
-        os.kill(pid, 0)
-    except ProcessLookupError:
-        return False
-    except PermissionError:
-        return True
-    return True
 
 
 class Registry:
@@ -102,8 +93,9 @@ def recover_stale(study: optuna.Study, registry: Registry | None = None) -> list
     """Fail every dead RUNNING trial as interrupted and queue its parameters again (once).
 
     ``registry``: the run's local worker registry, given when the store is the run's own.
-    Also queues the retry of any interrupted or put-off trial that lacks one: a kill between
-    ending a trial and queueing its copy would otherwise lose the retry.
+    Also queues the retry of any interrupted trial that lacks one: a kill between ending a trial and
+    queueing its copy would otherwise lose the retry. (A candidate skipped for lack of time is not
+    owed one: the sampler may propose it again when there is time.)
     """
     now, host = time.time(), socket.gethostname()
     trials = study.get_trials(deepcopy=False)
@@ -124,7 +116,7 @@ def recover_stale(study: optuna.Study, registry: Registry | None = None) -> list
     retried = {t.user_attrs.get("retry_of") for t in trials}
     for trial in trials:
         owed = trial.number in recovered or (
-            trial.state == TrialState.FAIL and record_of(trial).get("state") in (INTERRUPTED, NOT_STARTED))
+            trial.state == TrialState.FAIL and record_of(trial).get("state") == INTERRUPTED)
         if owed and trial.number not in retried and trial.params:
             queue_retry(study, trial)
     return recovered

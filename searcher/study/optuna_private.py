@@ -61,15 +61,6 @@ def journal_lock(path: str) -> optuna.storages.journal.BaseJournalFileLock:
     return optuna.storages.journal.JournalFileSymlinkLock(path)
 
 
-def pruner_rungs(pruner: optuna.pruners.SuccessiveHalvingPruner, count: int) -> list[int]:
-    """The first ``count`` rungs (resources at which it judges) of a successive-halving pruner."""
-    try:
-        first, factor = pruner._min_resource, pruner._reduction_factor
-    except AttributeError:
-        raise OptunaChanged("SuccessiveHalvingPruner keeps no `_min_resource`/`_reduction_factor`") from None
-    return [first * factor**k for k in range(count)]
-
-
 def queued_params(trial: optuna.Trial | optuna.trial.FrozenTrial) -> dict[str, Any] | None:
     """The parameters a trial was queued with (``study.enqueue_trial``), or None for a sampled trial.
 

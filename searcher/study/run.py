@@ -12,20 +12,24 @@ import os
 from dataclasses import asdict, dataclass, replace
 from pathlib import Path
 
-from searcher.core.budget import Budget, show_cost
-from searcher.core.census_report import CensusSettings, run_census
+from searcher.core.budget import CAP_KEYS, Budget, show_cost
+from searcher.core.census_report import Census, CensusSettings, run_census
+from searcher.core.cost import cost
 from searcher.core.space import Space
-from searcher.core.space_file import load_space
+from searcher.core.space_file import load_space, read_space_text
 from searcher.core.train_settings import TrainSettings
 from searcher.data.load import (
-    Dataset, check_source, Split, describe_few_examples, few_examples, load_dataset, load_split, resize_images,
+    DataChanged, Dataset, check_source, Split, describe_data, describe_few_examples, few_examples, load_dataset,
+    load_split, resize_images,
 )
-from searcher.errors import SearcherError, check_int, check_number, one_of, shown
-from searcher.limits import MAX_CAP, MAX_MINUTES, MAX_SEED, MAX_TRIALS, MAX_WORKERS
+from searcher.errors import SearcherError, check_int, check_number, one_of, shown, spelled
+from searcher.files import read_regular
+from searcher.limits import (MAX_CAP, MAX_MINUTES, MAX_SEED, MAX_SPACE_FILE_BYTES, MAX_TRIALS, MAX_WORKERS,
+                             available_memory)
 from searcher.results.confirmed import ConfirmSettings
 from searcher.results.records import METRICS
-from searcher.runs import RUNS, run_folder
-from searcher.study.storage import OBJECTIVES, SAMPLERS, RunConfig, storage_kind, storage_url
+from searcher.runs import RUNS, check_run_paths, run_folder
+from searcher.study.storage import OBJECTIVES, SAMPLERS, RunConfig, storage_kind, storage_url, stored_config
 
 log = logging.getLogger(__name__)
 
@@ -39,7 +43,7 @@ class SearchSettings:
     data: str = "demo"  # "demo", an .npz file, or a folder of class sub-folders
     trials: int = 30  # candidates to train over the study's life (resuming counts what is done)
     minutes: float | None = None  # wall-clock limit for this invocation
-    objective: str = "accuracy"  # the score alone, or the score against params | macs | activation
+    objective: str = "params"  # the score against params (default) | macs | activation, or the score alone ("accuracy")
     metric: str = "accuracy"  # the score: accuracy, or balanced_accuracy (mean recall per class) for rare classes
     sampler: str = "tpe"  # tpe | nsga2 | random
     storage: str | None = None  # Optuna storage URL or .journal path; default SQLite in the run folder
@@ -111,6 +115,7 @@ class PreparedRun:
     config: RunConfig
     folder: Path
     url: str
+    least_macs: int | None = None  # MACs of the space's cheapest candidate within the caps (from the census)
 
 
 def prepare(settings: SearchSettings, budget: dict | None = None, train: dict | None = None) -> PreparedRun:
@@ -120,45 +125,92 @@ def prepare(settings: SearchSettings, budget: dict | None = None, train: dict | 
     """
     settings.check()
     space = load_space(settings.space)
+    budget_overrides = budget
     budget = space.budget.updated(budget or {}, prefix="--")
     TrainSettings.from_dict(train or {}, prefix="--")  # an override's mistake is the option's, not the file's
     train_settings = TrainSettings.from_dict({**space.train, **(train or {})}, file=space.file)
     folder = run_folder(settings.name, settings.root)
+    check_run_paths(folder)  # before the data is loaded: a folder that cannot take the run costs no waiting
+    _check_memory_cap(settings.memory_cap, space, train_settings.batch_size)
+    url = storage_url(settings.storage, folder)
+    started = stored_config(settings.name, url)  # what the run was started with, if it was
+    skip_unreadable = settings.skip_unreadable or (started is not None and started.skip_unreadable)
     split_file = folder / "split.npz"
     stored, known = load_split(split_file) if split_file.exists() else (None, None)
-    dataset = load_dataset(settings.data, space.data_shape, seed=settings.seed,
-                           skip_unreadable=settings.skip_unreadable, split=stored, fingerprint=known, cache=folder)
+    try:
+        dataset = load_dataset(settings.data, space.data_shape, seed=settings.seed, skip_unreadable=skip_unreadable,
+                               split=stored, fingerprint=known, cache=folder)
+    except DataChanged as exc:
+        raise _changed(settings, started, stored, space, exc) from None
     if dataset.skipped:
         log.warning("skipped %d unreadable image file(s) in %s", dataset.skipped, settings.data)
     if found := few_examples(dataset):
         log.warning("%s", describe_few_examples(found))
-    _check_something_fits(space, budget, dataset.num_classes)
+    census = _check_something_fits(space, budget, dataset.num_classes, given=budget_given(budget_overrides or {}))
     config = RunConfig(
-        space_name=space.name, space_text=Path(space.file).read_text(encoding="utf-8"),
+        space_name=space.name, space_text=_text_of(space),
         budget=asdict(budget), train=asdict(train_settings), data=settings.data,
         data_fingerprint=dataset.fingerprint, classes=dataset.num_classes, class_names=tuple(dataset.class_names),
-        objective=settings.objective, seed=settings.seed, metric=settings.metric,
+        objective=settings.objective, seed=settings.seed, metric=settings.metric, skip_unreadable=skip_unreadable,
     )
-    url = storage_url(settings.storage, folder)
-    return PreparedRun(settings, space, budget, train_settings, RunData(dataset), config, folder, url)
+    return PreparedRun(settings, space, budget, train_settings, RunData(dataset), config, folder, url,
+                       cost(census.cheapest).macs)
 
 
-def _check_something_fits(space: Space, budget: Budget, classes: int) -> None:
-    """Refuse a search in which nothing can fit, and say how far off the caps are."""
+def _text_of(space: Space) -> str:
+    """The space file's text as stored with the run (a byte-order mark kept, as runs before kept it)."""
+    return read_regular(space.file, MAX_SPACE_FILE_BYTES, "space file").decode("utf-8")
+
+
+def _changed(settings: SearchSettings, started: RunConfig | None, split: dict | None, space: Space,
+             exc: DataChanged) -> SearcherError:
+    """A resumed run whose data is not the data it searched: what it was and what it is now, in words."""
+    if started is None or split is None:
+        return exc
+    before = describe_data(sum(len(i) for i in split.values()), started.classes,
+                           read_space_text(started.space_text, "<stored space>").data_shape)
+    source = f"--data {shown(settings.data)}" + (" (the same path)" if settings.data == started.data else "")
+    space_note = "" if started.space_text == _text_of(space) else "; the space file changed too"
+    return SearcherError(f"run {settings.name!r} was started on {shown(started.data)}: {before}; {source} now gives "
+                         f"{exc.now}{space_note}. Continue the run with the data it searched, or start a new run with "
+                         "another --name", key="--data")
+
+
+def budget_given(overrides: dict) -> dict[str, str]:
+    """Cost column -> the command-line option that set its cap, for messages about caps."""
+    return {CAP_KEYS[k][1]: spelled("--", k) for k, v in overrides.items() if k in CAP_KEYS and v is not None}
+
+
+def _check_memory_cap(cap: int | None, space: Space, batch_size: int) -> None:
+    """Refuse a --max-train-memory below what any candidate's training takes: its input batch alone, in fp32.
+
+    Otherwise every proposal would be rejected, and the search would end saying the space looks exhausted."""
+    if cap is None:
+        return
+    smallest = min(h * w for h, w in space.resolutions)
+    floor = 4 * batch_size * space.channels * smallest
+    if cap < floor:
+        raise SearcherError(f"`--max-train-memory` {show_cost('training_bytes', cap)} is less than training any "
+                            f"candidate takes: its batch of {batch_size} input images alone holds "
+                            f"{show_cost('training_bytes', floor)} in fp32; give more (the default is half of this "
+                            "machine's free memory), or a smaller --batch-size", key="--max-train-memory")
+
+
+def _check_something_fits(space: Space, budget: Budget, classes: int, given: dict[str, str] | None = None) -> Census:
+    """Refuse a search in which nothing can fit, and say how far off the caps are (naming the option that set
+    a cap, when one did: ``given`` maps cost columns to options); the census otherwise."""
+    given = given or {}
     census = run_census(space, budget, CensusSettings(samples=20_000, exact_limit=50_000, classes=classes))
     if not census.fits.any():
-        lowest = "; ".join(f"{c} ≥ {show_cost(c, census.lowest[c])} (cap {show_cost(c, v)})"
-                           for c, v in budget.caps().items())
+        lowest = "; ".join(f"{c} ≥ {show_cost(c, census.lowest[c])} (cap {show_cost(c, v)}"
+                           + (f", from {given[c]})" if c in given else ")") for c, v in budget.caps().items())
+        options = " ".join(sorted(given.values()))
         raise SearcherError(f"no candidate of space {space.name!r} fits the budget: {lowest}; "
-                            f"loosen the caps or allow smaller networks", file=space.file, key="budget")
+                            f"loosen the caps" + (f" ({options})" if options else "") + " or allow smaller networks",
+                            file=space.file, key=next(iter(given.values()), "budget"))
+    return census
 
 
 def default_memory_cap(workers: int) -> int:
     """Half of this machine's available memory, shared among the workers."""
-    try:
-        with open("/proc/meminfo") as handle:
-            info = {line.split(":")[0]: int(line.split()[1]) * 1024 for line in handle}
-        available = info.get("MemAvailable", info["MemTotal"])
-    except (OSError, KeyError, ValueError):
-        available = os.sysconf("SC_PAGE_SIZE") * os.sysconf("SC_PHYS_PAGES")
-    return int(available * 0.5 / workers)
+    return int(available_memory() * 0.5 / workers)

@@ -7,8 +7,11 @@
 
 from __future__ import annotations
 
+import contextlib
 import json
 import logging
+import shutil
+import sqlite3
 import time
 from dataclasses import asdict, dataclass, field
 from pathlib import Path
@@ -47,6 +50,7 @@ class SearchOutcome:
     confirm_seconds: float = 0.0  # wall time of the confirmation that followed
     confirmation: Confirmation | None = None  # what confirmation found (None when it is off or nothing ran)
     metric: Metric = ACCURACY  # the score the search ranked by
+    spread: str = ""  # how the trained candidates spread over cost, in one line
 
     @property
     def exit_status(self) -> int:
@@ -63,13 +67,19 @@ def search(settings: SearchSettings, budget: dict | None = None, train: dict | N
     """
     run = prepare(settings, budget, train)
     _keep_earlier_results(run)
-    study, _ = open_study(settings.name, run.url, run.config, settings.sampler)
-    run.folder.mkdir(parents=True, exist_ok=True)
-    save_split(run.folder / "split.npz", run.data.dataset.indices, run.data.dataset.fingerprint)
-    save_decoded(run.folder, run.data.dataset)  # resume and export read these bytes instead of decoding again
-    write_atomic(run.folder / "run.json", json.dumps(
-        {"settings": {k: str(v) if isinstance(v, Path) else v for k, v in asdict(settings).items()}
-         | {"storage": redact(run.url)}, "config": run.config.to_dict()}, indent=2, default=str))
+    fresh = not run.folder.exists()
+    try:
+        study, _ = open_study(settings.name, run.url, run.config, settings.sampler)
+        run.folder.mkdir(parents=True, exist_ok=True)
+        save_split(run.folder / "split.npz", run.data.dataset.indices, run.data.dataset.fingerprint)
+        save_decoded(run.folder, run.data.dataset)  # resume and export read these bytes instead of decoding again
+        write_atomic(run.folder / "run.json", json.dumps(
+            {"settings": {k: str(v) if isinstance(v, Path) else v for k, v in asdict(settings).items()}
+             | {"storage": redact(run.url)}, "config": run.config.to_dict()}, indent=2, default=str))
+    except BaseException:  # Ctrl-C while the run is set up: a new run leaves nothing behind
+        if fresh:
+            _forget_fresh_run(run)
+        raise
     started = time.time()
     deadline = None if settings.minutes is None else started + settings.minutes * 60
     log.info("run %s: space %s, budget %s, %d classes, data %s; storage %s", settings.name, run.space.name,
@@ -95,11 +105,26 @@ def finish(run: PreparedRun, study: optuna.Study, phases: Phases, seconds: float
     rejected_by = frame.loc[frame["state"] == REJECTED, "rejected_by"].value_counts().to_dict()
     return SearchOutcome(run.folder, counts(frame), best_row(frame, run.budget.caps(), results.metric), phases.stop, share,
                          {str(k): int(v) for k, v in rejected_by.items()}, seconds, phases.proxy_seconds,
-                         phases.confirm_seconds, results.confirmation, results.metric)
+                         phases.confirm_seconds, results.confirmation, results.metric, results.spread_words())
 
 
 RESULT_FILES = ("trials.csv", "front.csv", "confirmed.csv", "summary.json", "report.html", "run.json", "search.log",
                 "split.npz", "export")
+
+
+def _forget_fresh_run(run: PreparedRun) -> None:
+    """Remove the folder of a run this invocation began and that has no trial yet (its store included,
+    when it lives there): an interrupted start leaves no lone empty store behind."""
+    store = run.folder / "study.db"
+    if store.exists():
+        try:
+            with contextlib.closing(sqlite3.connect(f"file:{store}?mode=ro", uri=True)) as connection:
+                if connection.execute("SELECT count(*) FROM trials").fetchone()[0]:
+                    return  # another search of this name got further: its run stays
+        except sqlite3.Error:
+            pass  # the tables were not even made
+    shutil.rmtree(run.folder, ignore_errors=True)
+    log.info("run %s: interrupted while it was set up; nothing kept", run.settings.name)
 
 
 def _keep_earlier_results(run: PreparedRun) -> None:

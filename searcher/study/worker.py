@@ -5,11 +5,13 @@ Each proposal ends in one state (the ``state`` column of trials.csv):
 * ``rejected`` — breaks a cap by exact arithmetic (:mod:`searcher.core.gate`); never built. Told to
   Optuna as COMPLETE with a plausible accuracy (chance level) and a positive constraint, so TPE
   and NSGA-II learn to avoid the region (a FAIL would be invisible to TPE).
-* ``trained`` / ``stopped_early`` — trained; stopped early means it fell behind its peers
-  (:mod:`searcher.study.early_stop`).
+* ``trained`` / ``stopped_early`` — trained; stopped early means it fell behind candidates of
+  similar cost at a rung (:mod:`searcher.study.early_stop`).
 * ``failed`` — training diverged, or it ran past the per-candidate time limit.
 * ``interrupted`` — a signal, the run's time limit or a crash ended it; queued again once.
-* ``not_started`` — predicted not to finish in the time left; queued for the next run.
+* ``not_started`` — predicted not to finish in the time left; skipped, and the loop goes on with
+  the next proposal (a smaller candidate may well fit). The phase ends when not even the space's
+  cheapest fitting candidate would finish, or after MAX_TOO_LONG such proposals in a row.
 * ``duplicate`` — another worker was training the same architecture at that moment.
 
 A proposal of an architecture that was already trained, stopped early or failed takes that
@@ -21,13 +23,11 @@ Optuna as soon as it ends, so a kill loses at most the candidate in flight, and
 
 from __future__ import annotations
 
-import contextlib
 import logging
 import math
 import os
 import time
 from dataclasses import dataclass, field
-from pathlib import Path
 from typing import Callable, Protocol
 
 import optuna
@@ -38,22 +38,23 @@ from searcher.core.budget import Budget
 from searcher.core.gate import judge
 from searcher.core.space import Space
 from searcher.core.train_settings import TrainSettings
-from searcher.model.train import Diverged, OutOfTime, TrainProgress, TrainResult
+from searcher.model.train import OutOfTime, TrainProgress, TrainResult
 from searcher.results.records import ACCURACY, Metric
 from searcher.results.records import (
     DUPLICATE, FAILED, INTERRUPTED, NOT_STARTED, RECORD, REJECTED, STOPPED, TRAINED, describe, record_of,
 )
-from searcher.study.early_stop import Dominance, EarlyStop, Halving
-from searcher.study.ending import Ending, StopReason, StopRequested, StopSignals
+from searcher.study.early_stop import CostAwareHalving, EarlyStop
+from searcher.study.ending import Ending, StopReason
 from searcher.study.ledger import Ledger, Outcome
-from searcher.study.liveness import Heartbeat, Registry, claim, queue_retry, recover_stale
+from searcher.study.liveness import claim
+from searcher.study.loop import LoopPlan, TrialLoop
 from searcher.study.storage import OBJECTIVES, trial_seed
 from searcher.study.timebox import Throughput
 
 log = logging.getLogger(__name__)
 
 MAX_IDLE_PROPOSALS = 300  # stop after this many proposals in a row that could not be trained
-RECOVER_SECONDS = 30.0  # how often a running worker looks for trials that dead workers left running
+MAX_TOO_LONG = 25  # end the phase after this many proposals in a row predicted not to finish in the time left
 REPEAT = "repeat"  # what step() returns for a proposal that reused a known outcome
 _IDLE = (REJECTED, DUPLICATE, REPEAT)  # proposals that trained nothing
 
@@ -70,21 +71,18 @@ class Trainer(Protocol):
         """
 
 
-@dataclass(frozen=True)
-class WorkerPlan:
-    """What one worker needs beyond the study: limits and where to write its log."""
+@dataclass(frozen=True, kw_only=True)
+class WorkerPlan(LoopPlan):
+    """What one worker needs beyond the study: limits, and the loop's deadline and log."""
 
     trials: int  # candidates to train over the study's life (repeats of known results are free)
-    deadline: float | None  # time.time() after which nothing new starts and training stops
     candidate_seconds: float | None  # per-candidate training time limit
     memory_cap: int  # bytes; candidates whose training-memory estimate exceeds it are rejected
     images_per_epoch: int  # training images one candidate sees per epoch (for time predictions)
-    log_path: Path | None = None  # one line per candidate, appended
     seed: int = 0
     parent_pid: int | None = None  # stop when the parent process is gone
-    run_folder: Path | None = None  # given when every worker of the study runs on this machine
-    flush: Callable[[], None] | None = None  # puts what the store has committed on disk (storage.disk_flush)
     reserve: Callable[[Ledger, Throughput], float] | None = None  # seconds of the time box kept for confirmation
+    least_macs: int | None = None  # MACs of the space's cheapest candidate within the caps (the census's)
 
 
 @dataclass
@@ -97,63 +95,53 @@ class WorkerTally:
     stop: StopReason | None = None  # why the loop ended
 
 
-class Worker:
+class Worker(TrialLoop):
     """One worker's loop over a study; see the module docstring for the states."""
 
     def __init__(self, study: optuna.Study, space: Space, budget: Budget, settings: TrainSettings,
                  objective: str, classes: int, plan: WorkerPlan, trainer: Trainer, metric: Metric = ACCURACY) -> None:
-        self.study, self.space, self.budget, self.settings = study, space, budget, settings
-        self.objective, self.classes, self.plan, self.trainer = objective, classes, plan, trainer
+        super().__init__(study, plan)
+        self.space, self.budget, self.settings = space, budget, settings
+        self.objective, self.classes, self.trainer = objective, classes, trainer
         self.metric = metric  # the score told to Optuna, pruned and ranked by
         self.tally = WorkerTally()
-        self.signals = StopSignals()
         self.ledger = Ledger(metric.column)
         self.on_proposal: Callable[[str, WorkerTally, Ledger], None] | None = None  # after each proposal
-        self.registry: Registry | None = None  # this run's local worker registry, when its store is local
-        self._recovered_at = -math.inf  # time.monotonic() of the last look for dead workers' trials
+        self.idle = 0  # proposals in a row that trained nothing
+        self.too_long = 0  # proposals in a row predicted not to finish in the time left
+        self._limit: float | None = None  # time.monotonic() of the candidate in training's own limit
 
     # -- the loop ----------------------------------------------------------------------------------
     def run(self) -> WorkerTally:
         """Propose and settle candidates until a stop reason comes up; the first look recovers dead trials."""
-        self.signals.install()
-        registry = Registry(self.plan.run_folder) if self.plan.run_folder else contextlib.nullcontext()
-        with registry as self.registry:
-            idle = 0
-            while (stop := self.stop_reason(idle)) is None:
-                state = self.step()
-                self.tally.proposals.append(state)
-                if self.on_proposal is not None:
-                    self.on_proposal(state, self.tally, self.ledger)
-                idle = idle + 1 if state in _IDLE else 0
-                if state in (NOT_STARTED, INTERRUPTED):  # say why (a signal sets the exit status)
-                    stop = self.stop_reason(idle) or (
-                        StopReason(Ending.TIME_NEAR, "time limit near: the next candidate would not finish in "
-                                                     "time (queued for the next run)")
-                        if state == NOT_STARTED else
-                        StopReason(Ending.TIME_LIMIT, "interrupted during training (queued for the next run)"))
-                    break
-        self.tally.stop = stop
+        self.tally.stop = super().run()
         return self.tally
 
-    def stop_reason(self, idle: int = 0) -> StopReason | None:
-        """Why the loop must stop now, or None; looks for dead workers' trials every RECOVER_SECONDS."""
-        if self.signals.received:
-            return StopReason.by_signal(self.signals.received)
-        if self.plan.deadline is not None and time.time() >= self.plan.deadline:
-            return StopReason(Ending.TIME_LIMIT, "time limit reached")
+    def after(self, state: str) -> None:
+        self.tally.proposals.append(state)
+        if self.on_proposal is not None:
+            self.on_proposal(state, self.tally, self.ledger)
+        self.idle = self.idle + 1 if state in _IDLE else 0
+        self.too_long = self.too_long + 1 if state == NOT_STARTED else 0 if state not in _IDLE else self.too_long
+
+    def ends(self) -> StopReason | None:
         if self.plan.deadline is not None and time.time() >= self.plan.deadline - self._reserve():
             return StopReason(Ending.TIME_NEAR, "the rest of the time box is kept for confirming the front")
+        if self.plan.deadline is not None and (self.too_long >= MAX_TOO_LONG or self._nothing_fits_in_time()):
+            return StopReason(Ending.TIME_NEAR, "the rest of the time box is kept for confirming the front"
+                              if self._reserve() > 0 else "time limit near: " + (
+                f"{self.too_long} proposals in a row were predicted not to finish in the time left"
+                if self.too_long >= MAX_TOO_LONG else
+                "not even the space's cheapest candidate would finish in the time left"))
         if self.plan.parent_pid is not None and os.getppid() != self.plan.parent_pid:
             return StopReason(Ending.PARENT_GONE, "parent process gone")
-        if idle >= MAX_IDLE_PROPOSALS:
-            return StopReason(Ending.EXHAUSTED, f"{idle} proposals in a row were over budget or already known; "
+        if self.idle >= MAX_IDLE_PROPOSALS:
+            return StopReason(Ending.EXHAUSTED, f"{self.idle} proposals in a row were over budget or already known; "
                                                 "the space looks exhausted")
-        if time.monotonic() - self._recovered_at >= RECOVER_SECONDS:
-            # not only at start: a worker elsewhere may die later, and a trial a kill left unclaimed is
-            # only called dead after a grace period; until recovered, both count as in flight below
-            recover_stale(self.study, self.registry)
-            self._recovered_at = time.monotonic()
-        # other workers' candidates will count too; an unclaimed trial is a kill's leftover (or one that is
+        return None
+
+    def done(self) -> StopReason | None:
+        # other workers' candidates count too; an unclaimed trial is a kill's leftover (or one that is
         # claimed a moment later), so it does not hold back the last candidate
         in_flight = sum("worker" in t.user_attrs for t in self.ledger.update(self.study))
         if self.ledger.spent + in_flight >= self.plan.trials:
@@ -186,11 +174,17 @@ class Worker:
         left = None if self.plan.deadline is None else self.plan.deadline - self._reserve() - time.time()
         predicted = self.predicted_seconds(verdict.totals["macs"])
         if left is not None and predicted is not None and predicted > left:
-            queue_retry(self.study, trial)
             return self._end(trial, record, NOT_STARTED,
-                             f"predicted {predicted:.0f} s of training but {left:.0f} s left; queued for the next run",
+                             f"predicted {predicted:.0f} s of training but {left:.0f} s left; skipped",
                              optuna_state=TrialState.FAIL)
         return self._train(trial, arch, verdict.totals, record)
+
+    def _nothing_fits_in_time(self) -> bool:
+        """True when the time left (less the confirmation's reserve) is shorter than the cheapest candidate's prediction."""
+        if self.plan.least_macs is None:
+            return False
+        predicted = self.predicted_seconds(self.plan.least_macs)
+        return predicted is not None and predicted > self.plan.deadline - self._reserve() - time.time()
 
     def _reserve(self) -> float:
         return 0.0 if self.plan.reserve is None else self.plan.reserve(self.ledger, self.tally.throughput)
@@ -203,8 +197,8 @@ class Worker:
     def _train(self, trial: optuna.Trial, arch: Arch, totals: dict, record: dict) -> str:
         progress = TrainProgress()
         run_deadline = _monotonic(self.plan.deadline)
-        limit = None if self.plan.candidate_seconds is None else time.monotonic() + self.plan.candidate_seconds
-        deadline = min((d for d in (run_deadline, limit) if d is not None), default=None)
+        self._limit = None if self.plan.candidate_seconds is None else time.monotonic() + self.plan.candidate_seconds
+        deadline = min((d for d in (run_deadline, self._limit) if d is not None), default=None)
         policy = self._early_stop(trial, totals)
 
         def on_epoch(epoch: int, accuracy: float) -> None:
@@ -212,42 +206,37 @@ class Worker:
                 if policy(epoch, accuracy):
                     raise optuna.TrialPruned()
 
-        with Heartbeat(self.study, trial):
-            try:
-                with self.signals.raising():
-                    result = self.trainer(arch, seed=trial_seed(self.plan.seed, trial.number), on_epoch=on_epoch,
-                                          deadline=deadline, progress=progress)
-                state, reason = TRAINED, ""
-            except optuna.TrialPruned:
-                state, reason, result = STOPPED, f"behind its peers after epoch {len(progress.history)}", progress.result()
-            except Diverged as exc:
-                state, reason, result = FAILED, f"diverged: {exc.reason}", exc.result
-            except OutOfTime as exc:
-                result = exc.result
-                if limit is not None and (run_deadline is None or limit <= run_deadline):
-                    state, reason = FAILED, f"over the per-candidate limit of {self.plan.candidate_seconds:.3g} s"
-                else:
-                    state, reason = INTERRUPTED, "the run's time limit was reached during training; queued again"
-            except StopRequested as exc:
-                state, reason, result = INTERRUPTED, f"stopped by {exc}; queued again", progress.result()
-        if state == INTERRUPTED:
-            queue_retry(self.study, trial)
+        def call(progress: TrainProgress) -> TrainResult:
+            return self.trainer(arch, seed=trial_seed(self.plan.seed, trial.number), on_epoch=on_epoch,
+                                deadline=deadline, progress=progress)
+
+        try:
+            state, reason, result = self.train(trial, call, progress)
+        except optuna.TrialPruned:
+            state, reason = STOPPED, f"behind candidates of similar cost after epoch {len(progress.history)}"
+            result = progress.result()
         if state in (TRAINED, STOPPED):
             self.tally.throughput.add(totals["macs"], progress.images_seen, result.seconds)
         record.update(scores_of(result), history=[_finite(h) for h in result.history],
                       train_seconds=round(result.seconds, 3), epochs=result.epochs,
-                      int8_seconds=round(result.int8_seconds, 3))
+                      int8_seconds=round(result.int8_seconds, 3), threads=result.threads)
         optuna_state = {TRAINED: TrialState.COMPLETE, STOPPED: TrialState.PRUNED}.get(state, TrialState.FAIL)
         score = result.history[-1] if result.history else math.nan  # the metric's score after the last epoch
         values = self._values(score, totals) if state == TRAINED else None
         return self._end(trial, record, state, reason, values=values, optuna_state=optuna_state)
 
+    def out_of_time(self, exc: OutOfTime) -> tuple[str, str]:
+        run_deadline = _monotonic(self.plan.deadline)
+        if self._limit is not None and (run_deadline is None or self._limit <= run_deadline):
+            return FAILED, f"over the per-candidate limit of {self.plan.candidate_seconds:.3g} s"
+        return super().out_of_time(exc)
+
     def _early_stop(self, trial: optuna.Trial, totals: dict) -> EarlyStop:
-        column = OBJECTIVES[self.objective]
-        if column is None:
-            return Halving(trial, self.settings.epochs)
-        return Dominance(lambda limit: self.ledger.histories_within(column, limit), totals[column],
-                         self.settings.epochs)
+        """Successive halving among candidates of similar cost: the objective's cost, else parameters."""
+        column = OBJECTIVES[self.objective] or "params"
+        single = OBJECTIVES[self.objective] is None  # Optuna takes intermediate scores in one-objective studies only
+        return CostAwareHalving(lambda rung: self.ledger.reached(rung, column), totals[column], self.settings.epochs,
+                                report=trial.report if single else None)
 
     # -- telling Optuna and the log ---------------------------------------------------------------
     def _values(self, accuracy: float, totals: dict) -> list[float]:
@@ -257,21 +246,18 @@ class Worker:
 
     def _end(self, trial: optuna.Trial, record: dict, state: str, reason: str, *, rejected_by: str = "",
              values: list[float] | None = None, optuna_state: TrialState = TrialState.COMPLETE) -> str:
-        """Store the record, tell Optuna, account for it, flush and log; returns ``state``."""
-        record = record | {"state": state, "reason": reason, "rejected_by": rejected_by}
+        """The loop's end of a trial, with what the search keeps: rejections told at chance, the ledger."""
+        record = record | {"rejected_by": rejected_by}
         if state == REJECTED:
             values = self._values(1.0 / self.classes, record)  # chance level: plausible for GP, dull for TPE
             record["train_seconds"] = 0.0
-        trial.set_user_attr(RECORD, record)
-        if optuna_state == TrialState.COMPLETE:
-            self.study.tell(trial, values)
-        else:
-            self.study.tell(trial, state=optuna_state)
-        self.ledger.add(trial.number, optuna_state, values if optuna_state == TrialState.COMPLETE else None, record)
-        if self.plan.flush is not None and state not in (REJECTED, DUPLICATE):
-            self.plan.flush()  # a power cut now can cost only rejections, which are free to redo
-        self._log(trial.number, record)
+        self.end(trial, record, state, reason, optuna_state, values)
+        self.ledger.add(trial.number, optuna_state, values if optuna_state == TrialState.COMPLETE else None,
+                        record | {"state": state, "reason": reason})
         return state
+
+    def flushes(self, state: str) -> bool:
+        return state not in (REJECTED, DUPLICATE)  # a power cut can cost only rejections, which are free to redo
 
     def _repeat(self, trial: optuna.Trial, record: dict, known: Outcome) -> str:
         """Reuse the outcome of the same architecture trained before, whatever it was; no training time."""
@@ -282,18 +268,15 @@ class Worker:
         self._end(trial, record, earlier["state"], reason, values=known.values, optuna_state=known.optuna_state)
         return REPEAT
 
-    def _log(self, number: int, record: dict) -> None:
+    def log_line(self, number: int, record: dict) -> str:
         acc = record.get("val_accuracy")
-        line = (f"{time.strftime('%Y-%m-%d %H:%M:%S')} trial {number} {record['state']}"
-                f" acc={'-' if acc is None else f'{acc:.4f}'}"
+        line = (f"trial {number} {record['state']} acc={'-' if acc is None else f'{acc:.4f}'}"
                 + (f" int8={record['val_accuracy_int8']:.4f}" if record.get("val_accuracy_int8") is not None else "")
                 + f" params={record['params']} macs={record['macs']}"
                 f" seconds={record.get('train_seconds', 0):.1f} arch={record['arch']}"
                 + (f" reason={record['reason']}" if record.get("reason") else ""))
         log.debug(line)
-        if self.plan.log_path is not None:
-            with open(self.plan.log_path, "a", encoding="utf-8") as handle:
-                handle.write(line + "\n")
+        return line
 
 
 def _monotonic(wall: float | None) -> float | None:

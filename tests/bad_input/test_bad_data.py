@@ -7,6 +7,7 @@ where it would open its study, so a defect the loader lets through fails the cas
 from __future__ import annotations
 
 import io
+import os
 import zipfile
 from pathlib import Path
 from typing import Callable
@@ -17,6 +18,7 @@ import pytest
 from searcher.cli.main import main
 
 from catalogue import space_text
+from checks import no_hang, npz_with_header
 
 IMAGES = np.random.default_rng(0).integers(0, 256, size=(30, 12, 12), dtype=np.uint8)
 LABELS = np.arange(30) % 3
@@ -81,6 +83,21 @@ def pickled_npz(folder: Path) -> str:
     np.savez(folder / "bad.npz", images=IMAGES, labels=np.array([{"class": 0}] * len(IMAGES), dtype=object))
     return "bad.npz"
 
+def special(name: str, make) -> Callable[[Path], str]:
+    def write(folder: Path) -> str:
+        make(folder / name)
+        return name
+
+    return write
+
+
+def lying_header(folder: Path) -> str:
+    """An archive whose images header claims 10^12 images (numpy would allocate 233 TiB before reading)."""
+    data = npz_with_header({"images": IMAGES, "labels": LABELS}, "images", "(30, 12, 12)", "(1000000000000, 12, 12)")
+    (folder / "bad.npz").write_bytes(data)
+    return "bad.npz"
+
+
 # (A folder of 16-bit PNGs is not among them: it is read, scaled by 1/257; tests/test_data.py checks that.)
 DATA_FORMS: dict[str, Callable[[Path], str]] = {
     "npz: a text file": raw("bad.npz", b"images and labels, honestly"),
@@ -112,6 +129,17 @@ DATA_FORMS: dict[str, Callable[[Path], str]] = {
     "npz: two-dimensional labels": npz(images=IMAGES, labels=np.stack([LABELS, LABELS], axis=1)),
     "npz: labels that skip a class": npz(images=IMAGES, labels=np.where(LABELS == 1, 5, LABELS)),
     "npz: too few images of a class": npz(images=IMAGES, labels=np.r_[np.zeros(28, np.int64), 1, 1]),
+    # issue 17
+    "npz: bool images": npz(images=IMAGES > 127, labels=LABELS),
+    "npz: images of 0×0 pixels": npz(images=np.zeros((30, 0, 0), np.uint8), labels=LABELS),
+    "npz: a uint64 label of 2^64-1": npz(images=IMAGES, labels=np.r_[LABELS[:-1].astype(np.uint64), np.uint64(2**64 - 1)]),
+    "npz: a class name not in UTF-8": npz(images=IMAGES, labels=LABELS, class_names=np.array([b"a", b"\xff", b"c"])),
+    "npz: a class name of 300 characters": npz(images=IMAGES, labels=LABELS, class_names=np.array(["a", "b" * 300, "c"])),
+    "npz: an empty class name": npz(images=IMAGES, labels=LABELS, class_names=np.array(["a", "", "c"])),
+    "npz: a header claiming 10^12 images": lying_header,
+    "npz: a FIFO": special("bad.npz", os.mkfifo),
+    "npz: /dev/zero": special("bad.npz", lambda path: path.symlink_to("/dev/zero")),
+    "npz: a folder": special("bad.npz", lambda path: path.mkdir()),
 }
 
 
@@ -133,13 +161,14 @@ def workdir(tmp_path: Path, monkeypatch: pytest.MonkeyPatch) -> Path:
 def test_defective_data_is_refused_by_name(workdir, capsys, form):
     given = DATA_FORMS[form](workdir)
     before = sorted(p for p in workdir.rglob("*"))
-    try:
-        status = main(["search", "--space", "space.toml", "--name", "bad", "--data", given])
-    except SystemExit as exc:
-        status = exc.code
+    with no_hang():
+        try:
+            status = main(["search", "--space", "space.toml", "--name", "bad", "--data", given])
+        except SystemExit as exc:
+            status = exc.code
     err = capsys.readouterr().err
     assert status == 2, err
     assert "Traceback" not in err
     line = err.strip().splitlines()[-1]
     assert line.startswith("searcher: error:") and given in line, line
-    assert sorted(p for p in workdir.rglob("*")) == before
+    assert sorted(p for p in workdir.rglob("*")) == before and not (workdir / "runs").exists()

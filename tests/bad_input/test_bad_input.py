@@ -55,6 +55,21 @@ class _Fence(types.ModuleType):
         return reached
 
 
+@pytest.fixture(scope="module", autouse=True)
+def forget_fenced_imports():
+    """Modules first imported while the fence stood bound its functions in place of the loader's; once this
+    module's cases are done they are forgotten, so later tests import them afresh with the real loader."""
+    import searcher
+
+    before = set(sys.modules)
+    yield
+    for name in set(sys.modules) - before:
+        if name.startswith("searcher."):
+            del sys.modules[name]
+    for name in searcher._LATE:  # the package caches what it loaded on first use
+        vars(searcher).pop(name, None)
+
+
 @pytest.fixture(scope="module")
 def base(tmp_path_factory: pytest.TempPathFactory) -> Path:
     return tmp_path_factory.mktemp("bad_input")

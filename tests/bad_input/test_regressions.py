@@ -16,31 +16,12 @@ from pathlib import Path
 
 import pytest
 
-from searcher.cli.main import main
 from searcher.core.budget import Budget
 from searcher.core.train_settings import TrainSettings
 from searcher.errors import SearcherError
 
+from checks import here, refused  # noqa: F401  (here is a fixture)
 from catalogue import ARCH_OK, LENET5, space_text
-
-
-@pytest.fixture
-def here(tmp_path: Path, monkeypatch: pytest.MonkeyPatch) -> Path:
-    monkeypatch.chdir(tmp_path)
-    (tmp_path / "space.toml").write_text(space_text(), encoding="utf-8")
-    return tmp_path
-
-
-def refused(argv: list[str], capsys: pytest.CaptureFixture) -> str:
-    """The one error line of a command that must exit 2."""
-    try:
-        status = main(argv)
-    except SystemExit as exc:
-        status = exc.code
-    err = capsys.readouterr().err
-    assert status == 2, err
-    assert "Traceback" not in err
-    return err.strip().splitlines()[-1]
 
 
 def written(folder: Path) -> list[Path]:
