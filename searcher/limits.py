@@ -23,6 +23,8 @@ MAX_CHOICES = 64  # entries in any list of choices of a space file
 
 # -- budgets ------------------------------------------------------------------------------------
 MAX_CAP = 10**15  # any cap: parameters, MACs, bytes
+MAX_LATENCY_MS = 86_400_000.0  # a cap on time per inference: one day
+CLOCK_HZ = (1e3, 1e10)  # a target's clock: 1 kHz to 10 GHz
 
 # -- runs -----------------------------------------------------------------------------------------
 MAX_SEED = 2**31 - 1  # seeds; a worker's sampler seed (seed + worker) stays below numpy's 2³²

@@ -7,10 +7,11 @@ from collections import Counter
 import numpy as np
 import pytest
 
-from searcher.core.budget import CAP_COLUMNS, Budget
+from searcher.core.budget import CAP_COLUMNS, LATENCY, Budget, show_cost
 from searcher.core.census import batch_costs, decode, enumerate_all, multiplicity, sample
 from searcher.core.census_report import CensusSettings, run_census, summary_lines
 from searcher.core.cost import cost
+from searcher.core.latency import parse_target, predict
 from searcher.core.space import Space
 from searcher.core.space_file import load_space
 
@@ -23,7 +24,7 @@ def assert_batch_equals_scalar(space: Space, batch: dict, budget: Budget, classe
         arch = decode(space, batch, i, classes)
         totals = budget.totals(cost(arch, budget.activation_precision))
         got = {column: int(fast[column][i]) for column in CAP_COLUMNS}
-        assert got == totals, (i, arch)
+        assert got == totals, (i, arch)  # (the latency, with a target: test_census_latency_equals_the_prediction...)
         assert (fast["stages"][i], fast["last_width"][i]) == (arch.depth, arch.widths[-1])
 
 
@@ -176,3 +177,33 @@ def test_census_at_every_ceiling_stays_exact(write_space):
     batch = sample(space, 40, seed=3)
     assert_batch_equals_scalar(space, batch, space.budget)
     assert int(batch_costs(space, batch, space.budget)["macs"].max()) > 10**18  # near 2^63, and still exact
+
+
+M4 = parse_target("cortex-m4@80MHz")
+
+
+@pytest.mark.parametrize("name", SHIPPED_SPACES)
+def test_census_latency_equals_the_prediction_candidate_by_candidate(shipped, name):
+    """The census applies searcher.core.latency's formulas to arrays; each entry equals predict() on its candidate."""
+    space = shipped[name]
+    budget = space.budget.targeted(M4)
+    batch = sample(space, 400, seed=3, timed=True)
+    fast = batch_costs(space, batch, budget)
+    for i in range(len(batch["stages"])):
+        arch = decode(space, batch, i)
+        assert fast[LATENCY][i] == pytest.approx(predict(arch, M4).seconds * 1e3, rel=1e-9), arch
+    assert_batch_equals_scalar(space, batch, budget)
+
+
+def test_exact_census_with_a_latency_cap_equals_brute_force_counting(write_space):
+    space = load_space(write_space())  # relu and tanh: the activation now changes a cost (tanh is a table lookup)
+    budget = space.budget.targeted(M4)
+    median = float(np.median([budget.totals(cost(a), a)[LATENCY] for a in space.enumerate()]))
+    budget = budget.updated({"max_latency": f"{median}ms"})
+    census = run_census(space, budget)
+    fitting = [a for a in space.enumerate() if not budget.check(budget.totals(cost(a), a))]
+    assert census.exact and 0 < len(fitting) < space.size()
+    assert census.fraction == pytest.approx(len(fitting) / space.size(), abs=1e-12)
+    assert multiplicity(space, timed=True) * len(space.activations) == multiplicity(space)
+    assert census.lowest[LATENCY] == pytest.approx(min(budget.totals(cost(a), a)[LATENCY] for a in space.enumerate()))
+    assert f"latency_ms ≤ {show_cost(LATENCY, budget.max_latency_ms)}" in "\n".join(summary_lines(census))

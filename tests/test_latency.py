@@ -108,9 +108,10 @@ def test_targets_are_read(text, core, hz):
     assert latency.parse_target(latency.parse_target(text).text()) == latency.parse_target(text)
 
 
-@pytest.mark.parametrize("text,says", [("cortex-m4", "a core and a clock"), ("cortex-m4@", "a core and a clock"),
-                                       ("cortex-m0@48MHz", "cortex-m"), ("cortex-m4@80", "a core and a clock"),
-                                       ("cortex-m4@0Hz", "between"), (80, "a core and a clock")])
+@pytest.mark.parametrize("text,says", [("cortex-m4", "a core and a clock"), ("cortex-m4@", "a clock such as"),
+                                       ("cortex-m0@48MHz", "cortex-m3"), ("cortex-m4@80", "a clock such as"),
+                                       ("cortex-m4@0Hz", "from 1 kHz"), (80, "a core and a clock"),
+                                       ("cortex-m4@80MHz@1GHz", "a core and a clock")])
 def test_bad_targets_are_refused_naming_the_key(text, says):
     with pytest.raises(SearcherError, match=f"`--target`.*{says}"):
         latency.parse_target(text, "--target")
@@ -137,3 +138,12 @@ def test_prediction_is_within_ten_percent_of_emulation_on_unseen_candidates(ship
                        profile=False)[3]
         predicted = latency.predict(arch, latency.Target(core.name, 1e8)).instructions
         assert abs(predicted / run.instructions - 1) <= 0.10, (arch.to_text(), core.name, predicted, run.instructions)
+
+
+def test_a_target_table_is_read_and_its_mistakes_named(tmp_path):
+    assert latency.target_from_table({"core": "cortex-m7", "clock": "216MHz"}) == latency.Target("cortex-m7", 216e6)
+    for table, key in (({"core": "cortex-m7"}, "target.clock"), ({"clock": "80MHz"}, "target.core"),
+                       ({"core": "m4", "clock": "80MHz"}, "target.core"), ({"core": "cortex-m4", "clock": 80}, "target.clock")):
+        with pytest.raises(SearcherError, match=f"`{key}`") as caught:
+            latency.target_from_table(table, "space.toml")
+        assert caught.value.file == "space.toml"

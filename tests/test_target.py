@@ -22,6 +22,7 @@ import torch
 
 from searcher.core.arch import ACTIVATIONS, parse_arch
 from searcher.core.cost import cost
+from searcher.core.latency import parse_target
 from searcher.int8 import reference as int8_reference
 from searcher.int8.quantize import to_pixels
 from searcher.ship import arm_build, c_build, deploy_files, emulate
@@ -219,6 +220,12 @@ def test_deploy_files_report_every_core_in_metrics_and_card(tools, tmp_path):
         layers = {"input", "s1_conv1", "s1_pool", "s2_conv1", "out", "output"}
         assert set(metrics[f"instructions_per_layer_{key}"]) == layers
     assert metrics["int8"]["arm_check"].startswith("ARM builds checked")
-    card = int8_section(report, arch)
+    card = int8_section(report, arch, parse_target("cortex-m4@80MHz"))
     assert "On Cortex-M cores (emulated)" in card and "| cortex-m55 (mps3-an547) |" in card
+    assert "instructions emulated | predicted |" in card and "On the target, cortex-m4@80MHz:" in card
+    m4 = metrics["instructions_cortex_m4"]
+    # the latency model (searcher.core.latency) beside QEMU's count; tests/test_latency.py bounds its error
+    assert metrics["predicted_instructions_cortex_m4"] == pytest.approx(m4, rel=0.25)
+    conv_row = next(line for line in card.splitlines() if line.startswith("| s1_conv1 | "))
+    assert conv_row.count(" / ") == len(CORES)  # per layer and core: emulated / predicted
     assert not any(p.name in ("start.S", "link.ld", "harness.c") for p in tmp_path.iterdir())  # scratch only

@@ -13,9 +13,10 @@ import pandas as pd
 
 from searcher.cli.run_commands import add_search_commands
 from searcher.core.arch import parse_arch
-from searcher.core.budget import BUDGET_KEYS, Budget, show_cost
+from searcher.core.budget import BUDGET_KEYS, LATENCY, Budget, show_cost
 from searcher.core.census_report import CensusSettings, run_census, summary_lines, writable, write_census
 from searcher.core.cost import cost
+from searcher.core.latency import Latency, cores, parse_target, predict
 from searcher.core.space_file import builtin_space, load_space, shipped_spaces
 from searcher.data.load import check_source, describe_few_examples, few_examples, load_dataset
 from searcher.errors import SearcherError, one_of, readable, shown
@@ -56,11 +57,26 @@ def _add_budget(parser: argparse.ArgumentParser) -> None:
     group.add_argument("--max-weight", metavar="BYTES", help="cap on weight storage, e.g. 256KiB")
     group.add_argument("--weight-precision", choices=["fp32", "fp16", "int8"])
     group.add_argument("--activation-precision", choices=["fp32", "fp16", "int8"])
+    group.add_argument("--max-latency", metavar="TIME", help="cap on predicted time per inference on the target, "
+                       "e.g. 20ms (needs a target)")
+    add_target(group)
+
+
+def add_target(parser) -> None:
+    """--target, on cost, census, search and export."""
+    parser.add_argument("--target", metavar="CORE@CLOCK", help="the core and clock the int8 C file runs on, "
+                        f"e.g. cortex-m4@80MHz (cores: {', '.join(cores())}; overrides the space file's [target])")
 
 
 def _budget(args: argparse.Namespace) -> dict:
     """The budget options given on the command line, keyed like a space file's [budget]."""
     return {key: getattr(args, key) for key in BUDGET_KEYS if getattr(args, key, None) is not None}
+
+
+def _with_target(budget: Budget, args: argparse.Namespace) -> Budget:
+    """The budget judged on --target when given; a --max-latency with no target anywhere is refused."""
+    target = None if args.target is None else parse_target(args.target, "--target")
+    return budget.targeted(target).check_target("--max-latency")
 
 
 def _arch_text(given: str) -> str:
@@ -84,25 +100,45 @@ def _arch_text(given: str) -> str:
 def cmd_cost(args: argparse.Namespace) -> int:
     arch = parse_arch(_arch_text(args.arch))
     base = load_space(_space_path(args.space)).budget if args.space is not None else Budget()
-    budget = base.updated(_budget(args), prefix="--")
+    budget = _with_target(base.updated(_budget(args), prefix="--"), args)
     result = cost(arch, budget.activation_precision)
     table = pd.DataFrame(result.table())
+    predicted = None if budget.target is None else predict(arch, budget.target)
+    if predicted is not None:  # beside each layer, its predicted instructions and time on the target
+        table = _with_latency(table, predicted)
     print(arch)
     print(table.to_string(index=False))
-    totals = budget.totals(result)
+    totals = budget.totals(result, arch)
     print(f"parameters {totals['params']:,} (+{result.buffers:,} batch-norm running statistics)")
     print(f"MACs {totals['macs']:,}")
     print(f"peak activation {totals['peak_activation_bytes']:,} bytes at {budget.activation_precision}")
     print("weights " + ", ".join(f"{p} {show_cost('weight_bytes', result.weight_bytes(p))}" for p in ("fp32", "fp16", "int8")))
+    if predicted is not None:
+        print(f"predicted time per inference on {budget.target.text()}: {show_cost(LATENCY, totals[LATENCY])} "
+              f"({predicted.instructions:,.0f} instructions of the int8 C file at "
+              f"{predicted.target.cycles_per_instruction:g} cycle each: a lower bound, see searcher.core.latency)")
     broken = budget.check(totals)
     if budget.caps():
         print("budget: " + ("fits" if not broken else "breaks " + "; ".join(map(str, broken))))
     return 0
 
 
+def _with_latency(table: pd.DataFrame, predicted: Latency) -> pd.DataFrame:
+    """The cost table with each layer's predicted instructions and time, and rows for the copy in and out."""
+    rows = dict(predicted.rows)
+    table = table.astype(object)
+    ends = pd.DataFrame([{"layer": name, "kind": kind} for name, kind in (("input", "copy in"), ("output", "class out"))],
+                        columns=table.columns)
+    table = pd.concat([ends[:1], table, ends[1:]], ignore_index=True).fillna("")
+    table["instructions"] = [f"{rows[name]:,.0f}" if name in rows else "" for name in table["layer"]]
+    table["latency"] = [show_cost(LATENCY, predicted.target.seconds(rows[name]) * 1e3) if name in rows else ""
+                        for name in table["layer"]]
+    return table
+
+
 def cmd_census(args: argparse.Namespace) -> int:
     space = load_space(_space_path(args.space))
-    budget = space.budget.updated(_budget(args), prefix="--")
+    budget = _with_target(space.budget.updated(_budget(args), prefix="--"), args)
     settings = CensusSettings(samples=args.samples, seed=args.seed, classes=args.classes)
     folder = writable(run_folder(args.name if args.name is not None else f"census-{plain_name(space.name)}"))
     if args.data is not None:  # the data's classes size the output layer, and thin classes are named now
@@ -155,7 +191,7 @@ def make_parser() -> argparse.ArgumentParser:
     _add_budget(p)
     p.set_defaults(run=cmd_census)
 
-    add_search_commands(sub, _space_path, _add_budget, _budget)
+    add_search_commands(sub, _space_path, _add_budget, _budget, add_target)
     return parser
 
 

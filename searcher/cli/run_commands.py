@@ -19,7 +19,7 @@ def cmd_search(args: argparse.Namespace, space_path, budget_of) -> int:
         seed=args.seed,
         candidate_minutes=args.candidate_minutes,
         memory_cap=None if args.max_train_memory is None else parse_bytes(args.max_train_memory, key="--max-train-memory"),
-        skip_unreadable=args.skip_unreadable, force=args.force,
+        skip_unreadable=args.skip_unreadable, force=args.force, target=args.target,
         confirm=searcher.ConfirmSettings(seeds=args.confirm, most=args.confirm_candidates, extra=args.confirm_random),
     )
     outcome = searcher.search(settings, budget_of(args), train)
@@ -69,7 +69,7 @@ def cmd_status(args: argparse.Namespace) -> int:
 def cmd_export(args: argparse.Namespace) -> int:
     outcome = searcher.export(searcher.ExportSettings(name=args.name, trial=args.trial, arch=args.arch,
                                                       epochs=args.epochs, storage=args.storage,
-                                                      tolerance=args.tolerance, force=args.force))
+                                                      tolerance=args.tolerance, force=args.force, target=args.target))
     print(f"exported {outcome.arch}")
     print(f"{outcome.scores_line()} on the held-out split; "
           + ("meets every cap" if outcome.fits else "BREAKS a cap"))
@@ -77,7 +77,7 @@ def cmd_export(args: argparse.Namespace) -> int:
     return 0
 
 
-def add_search_commands(sub, space_path, add_budget, budget_of) -> None:
+def add_search_commands(sub, space_path, add_budget, budget_of, add_target) -> None:
     """Register the commands that work on a run folder."""
     p = sub.add_parser("search", help="search the space for the most accurate candidates that fit the budget")
     p.add_argument("--space", required=True, help="space file, or a shipped space: mcu, workstation, classic")
@@ -131,4 +131,5 @@ def add_search_commands(sub, space_path, add_budget, budget_of) -> None:
                         "(0.01 = one point; default: two standard errors from the run's seed spread)")
     p.add_argument("--force", action="store_true",
                    help="replace an existing export with a candidate that breaks a cap or failed")
+    add_target(p)
     p.set_defaults(run=cmd_export)

@@ -4,9 +4,11 @@ from __future__ import annotations
 
 from dataclasses import dataclass, replace
 
+from searcher.core.arch import Arch
 from searcher.core.cost import PRECISION_BYTES, Cost, check_precision
+from searcher.core.latency import Target, predict
 from searcher.errors import SearcherError, one_of, shown, spelled
-from searcher.core.units import format_bytes, format_count, parse_bytes, parse_count
+from searcher.core.units import format_bytes, format_count, format_duration, parse_bytes, parse_count, parse_duration
 
 # budget key in a space file / CLI option -> (field of Budget, column of the cost totals)
 CAP_KEYS = {
@@ -14,9 +16,11 @@ CAP_KEYS = {
     "max_macs": ("max_macs", "macs"),
     "max_activation": ("max_activation_bytes", "peak_activation_bytes"),
     "max_weight": ("max_weight_bytes", "weight_bytes"),
+    "max_latency": ("max_latency_ms", "latency_ms"),
 }
 BUDGET_KEYS = (*CAP_KEYS, "weight_precision", "activation_precision")
-CAP_COLUMNS = tuple(column for _, column in CAP_KEYS.values())
+LATENCY = "latency_ms"  # predicted time per inference on the budget's target: a cost only when a target is set
+CAP_COLUMNS = tuple(column for _, column in CAP_KEYS.values() if column != LATENCY)  # costs every candidate has
 
 
 @dataclass(frozen=True)
@@ -46,6 +50,13 @@ class Budget:
     max_weight_bytes: int | None = None  # weight storage at weight_precision
     weight_precision: str = "fp32"  # fp32, fp16 or int8: how weights are stored
     activation_precision: str = "fp32"  # fp32, fp16 or int8: how activations are held
+    max_latency_ms: float | None = None  # predicted time per inference on `target`, in milliseconds
+    target: Target | None = None  # core and clock the int8 C file runs on ([target], --target); None: no latency
+
+    def __post_init__(self) -> None:
+        """A target stored with a run comes back as a plain dict (``Budget(**asdict(budget))``)."""
+        if isinstance(self.target, dict):
+            object.__setattr__(self, "target", Target(**self.target))
 
     @classmethod
     def from_table(cls, table: dict, file: str | None = None, prefix: str = "budget.") -> Budget:
@@ -71,7 +82,9 @@ class Budget:
                 continue
             where = spelled(prefix, key)
             try:
-                if key in CAP_KEYS:
+                if key == "max_latency":
+                    values["max_latency_ms"] = parse_duration(raw, key=where)
+                elif key in CAP_KEYS:
                     parse = parse_bytes if key in ("max_activation", "max_weight") else parse_count
                     values[CAP_KEYS[key][0]] = parse(raw, key=where)
                 elif key in ("weight_precision", "activation_precision"):
@@ -83,19 +96,42 @@ class Budget:
         return replace(self, **values)
 
     def to_table(self) -> dict:
-        """The budget as a [budget] table, so ``Budget().updated(b.to_table()) == b``."""
+        """The budget as a [budget] table, so ``Budget(target=b.target).updated(b.to_table()) == b`` (the target
+        is a table of its own)."""
         table = {key: getattr(self, name) for key, (name, _) in CAP_KEYS.items() if getattr(self, name) is not None}
+        if self.max_latency_ms is not None:
+            table["max_latency"] = f"{self.max_latency_ms!r}ms"
         return table | {"weight_precision": self.weight_precision, "activation_precision": self.activation_precision}
+
+    def targeted(self, target: Target | None) -> Budget:
+        """This budget judged on `target` (None keeps the one it has)."""
+        return self if target is None else replace(self, target=target)
+
+    def check_target(self, key: str, file: str | None = None) -> Budget:
+        """This budget, after refusing a latency cap with no target to judge it on (`key` set the cap)."""
+        if self.max_latency_ms is not None and self.target is None:
+            raise SearcherError(f"`{key}` caps the time per inference, which needs a target: a [target] table "
+                                "(core = \"cortex-m4\", clock = \"80MHz\") or --target cortex-m4@80MHz",
+                                file=file, key=key)
+        return self
+
+    @property
+    def columns(self) -> tuple[str, ...]:
+        """The costs this budget judges: the four of every candidate, and the predicted latency with a target."""
+        return CAP_COLUMNS + ((LATENCY,) if self.target is not None else ())
 
     def caps(self) -> dict[str, int]:
         """Set caps by cost column: {"params": 20000, ...}."""
         return {column: getattr(self, name) for name, column in CAP_KEYS.values() if getattr(self, name) is not None}
 
-    def totals(self, cost: Cost) -> dict[str, int]:
-        """The cost numbers this budget judges, at its precisions."""
-        totals = cost.totals(self.weight_precision)
+    def totals(self, cost: Cost, arch: Arch | None = None) -> dict[str, float]:
+        """The cost numbers this budget judges, at its precisions; with a target and the architecture,
+        the predicted milliseconds per inference (``latency_ms``) too."""
+        totals: dict[str, float] = cost.totals(self.weight_precision)
         if cost.activation_precision != self.activation_precision:
             totals["peak_activation_bytes"] = cost.peak_activation_elements * PRECISION_BYTES[self.activation_precision]
+        if self.target is not None and arch is not None:
+            totals[LATENCY] = predict(arch, self.target).seconds * 1e3
         return totals
 
     def check(self, totals: dict[str, int]) -> list[Violation]:
@@ -105,9 +141,12 @@ class Budget:
     def describe(self) -> str:
         """One line for logs and reports: 'params ≤ 20k, macs ≤ 2M (weights int8, ...)'."""
         caps = ", ".join(f"{c} ≤ {show_cost(c, v)}" for c, v in self.caps().items()) or "no caps"
-        return f"{caps} (weights {self.weight_precision}, activations {self.activation_precision})"
+        target = f", on {self.target.text()}" if self.target is not None else ""
+        return f"{caps} (weights {self.weight_precision}, activations {self.activation_precision}{target})"
 
 
 def show_cost(column: str, value: float) -> str:
-    """A cost value in human units: bytes for *_bytes columns, a count otherwise."""
+    """A cost value in human units: bytes for *_bytes columns, a time for latency_ms, a count otherwise."""
+    if column == LATENCY:
+        return format_duration(value)
     return format_bytes(value) if column.endswith("bytes") else format_count(value)

@@ -16,38 +16,48 @@ from typing import Any
 
 import numpy as np
 
-from searcher.core.arch import Arch
-from searcher.core.budget import Budget
+from searcher.core import latency
+from searcher.core.arch import POOLS, TABLE_ACTIVATIONS, Arch
+from searcher.core.budget import LATENCY, Budget
 from searcher.core.cost import PRECISION_BYTES, conv_macs, conv_params, dense_params, weight_bytes
 from searcher.core.plan import padding_of, window_output
-from searcher.core.space import Space
+from searcher.core.space import Decision, Space
 
 Batch = dict[str, np.ndarray]
 
 # The cost-relevant decisions batch_costs reads, by name; one it does not know stops the census.
-_READ = re.compile(r"resolution|stages|first_width|batch_norm|features|hidden|(convs|kernel|pool)_\d+|hidden_width_\d+")
+_READ = re.compile(r"resolution|stages|first_width|activation|batch_norm|features|hidden|(convs|kernel|pool)_\d+|"
+                   r"hidden_width_\d+")
 
 
-def _dimensions(space: Space) -> dict[str, list]:
+def costing(space: Space, timed: bool = False) -> list[Decision]:
+    """The decisions that change a cost, which the census enumerates. With the latency counted (``timed``)
+    the activation is one of them where the space mixes activations done by table lookup with clamps."""
+    mixed = len({a in TABLE_ACTIVATIONS for a in space.activations}) > 1
+    return [d for d in space.decisions if d.costs or (timed and mixed and d.name == "activation")]
+
+
+def _dimensions(space: Space, timed: bool = False) -> dict[str, list]:
     """Every cost-relevant decision with its options (inactive ones included); input sizes by index."""
     dims = {d.name: list(range(len(d.options))) if d.name == "resolution" else list(d.options)
-            for d in space.decisions if d.costs}
+            for d in costing(space, timed)}
     unknown = [name for name in dims if not _READ.fullmatch(name)]
     if unknown:
         raise NotImplementedError(f"the census does not yet count the decisions {unknown}: teach batch_costs")
     return dims
 
 
-def multiplicity(space: Space) -> int:
+def multiplicity(space: Space, timed: bool = False) -> int:
     """How many configurations share each cost class: the options of the cost-free decisions."""
-    return math.prod(len(d.options) for d in space.decisions if not d.costs)
+    counted = {d.name for d in costing(space, timed)}
+    return math.prod(len(d.options) for d in space.decisions if d.name not in counted)
 
 
-def sample(space: Space, n: int, seed: int) -> Batch:
+def sample(space: Space, n: int, seed: int, timed: bool = False) -> Batch:
     """``n`` draws uniform over configurations (a gate's options weighted by what stands behind each)."""
     rng = np.random.default_rng(seed)
     batch: Batch = {}
-    for name, options in _dimensions(space).items():
+    for name, options in _dimensions(space, timed).items():
         values = np.asarray(options, dtype=object if isinstance(options[0], str) else None)
         weights = space.weights(space.decision(name))
         if weights is None:
@@ -58,15 +68,15 @@ def sample(space: Space, n: int, seed: int) -> Batch:
     return batch
 
 
-def enumerate_all(space: Space) -> Batch:
+def enumerate_all(space: Space, timed: bool = False) -> Batch:
     """Every cost class once: for each combination of the gates' options, the product of the active decisions."""
-    dims = _dimensions(space)
-    costing = [d for d in space.decisions if d.costs]
-    gates = [d for d in costing if space.weights(d) is not None]
+    dims = _dimensions(space, timed)
+    counted = costing(space, timed)
+    gates = [d for d in counted if space.weights(d) is not None]
     blocks: list[Batch] = []
     for values in itertools.product(*(d.options for d in gates)):
         chosen = {d.name: v for d, v in zip(gates, values)}
-        names = [d.name for d in costing if d.name not in chosen and space.active(d, chosen)]
+        names = [d.name for d in counted if d.name not in chosen and space.active(d, chosen)]
         grid = np.indices([len(dims[name]) for name in names]).reshape(len(names), -1)
         size = grid.shape[1]
         block = {name: np.asarray(dims[name], dtype=object)[grid[j]] for j, name in enumerate(names)}
@@ -78,11 +88,23 @@ def enumerate_all(space: Space) -> Batch:
 
 
 def batch_costs(space: Space, batch: Batch, budget: Budget, classes: int | None = None) -> dict[str, np.ndarray]:
-    """Cost totals for every candidate of a batch, as arrays keyed like ``Cost.totals``."""
+    """Cost totals for every candidate of a batch, as arrays keyed like ``Budget.totals`` (with the
+    budget's target, the predicted ``latency_ms`` from the formulas of :mod:`searcher.core.latency`)."""
     n = len(batch["stages"])
     res = np.asarray(space.resolutions)[batch["resolution"].astype(int)]
     h, w = res[:, 0].astype(np.int64), res[:, 1].astype(np.int64)
     c = np.full(n, space.channels, dtype=np.int64)
+    timed = budget.target is not None
+    table = np.isin(batch.get("activation", space.activations[0]), TABLE_ACTIVATIONS) * np.ones(n, np.int64)
+    count = np.zeros(n)  # predicted instructions of one inference on the target's core
+
+    def run(terms: dict, where) -> None:
+        """Add the instructions of a layer's `terms` where it exists."""
+        nonlocal count
+        if timed:
+            count = count + np.where(where, latency.instructions(budget.target.core, terms), 0.0)
+
+    run(latency.input_terms(c, h * w), True)
     depth = batch["stages"].astype(np.int64)
     first = batch["first_width"].astype(np.int64)
     bn = batch["batch_norm"].astype(bool)
@@ -110,15 +132,20 @@ def batch_costs(space: Space, batch: Batch, budget: Budget, classes: int | None 
             channels += np.where(on, width, 0)
             macs += np.where(on, conv_macs(c, width, kernel, h2, w2), 0)
             peak = np.maximum(peak, np.where(on, c * h * w + width * h2 * w2, 0))
+            run(latency.conv_terms(h, w, c, h2, w2, width, kernel, space.stride, pad, table), on)
             c, h, w = np.where(on, width, c), np.where(on, h2, h), np.where(on, w2, w)
         pooled = in_stage & (batch[f"pool_{i + 1}"] != "none")
         h2 = window_output(h, space.pool_window, space.pool_stride, 0)
         w2 = window_output(w, space.pool_window, space.pool_stride, 0)
         peak = np.maximum(peak, np.where(pooled, c * h * w + c * h2 * w2, 0))
+        for kind in POOLS:
+            run(latency.pool_terms(f"{kind}pool", c, h2, w2, space.pool_window, space.pool_stride),
+                in_stage & (batch[f"pool_{i + 1}"] == kind))
         h, w = np.where(pooled, h2, h), np.where(pooled, w2, w)
         last_width = np.where(in_stage, width, last_width)
     gap = batch["features"] == "gap"
     peak = np.maximum(peak, np.where(gap, c * h * w + c, 0))
+    run(latency.gap_terms(c, h * w), gap)
     features = np.where(gap, c, c * h * w)
     hidden = batch["hidden"].astype(np.int64)
     for k in range(space.hidden_count[1] + 1):
@@ -132,8 +159,11 @@ def batch_costs(space: Space, batch: Batch, budget: Budget, classes: int | None 
         channels += np.where(on, width, 0)
         macs += np.where(on, wt, 0)
         peak = np.maximum(peak, np.where(on, features + width, 0))
+        run(latency.dense_terms(features, width, table * (hidden > k)), on)
         features = np.where(on, width, features)
-    return {
+    run(latency.output_terms(np.full(n, classes or space.classes, np.int64)), True)
+    timing = {LATENCY: budget.target.seconds(count) * 1e3} if timed else {}
+    return timing | {
         "params": weights + biases,
         "macs": macs,
         "peak_activation_bytes": peak * PRECISION_BYTES[budget.activation_precision],

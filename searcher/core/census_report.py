@@ -10,7 +10,7 @@ import numpy as np
 import pandas as pd
 
 from searcher.core.arch import Arch
-from searcher.core.budget import CAP_COLUMNS, Budget, show_cost
+from searcher.core.budget import CAP_COLUMNS, LATENCY, Budget, show_cost
 from searcher.core.census import batch_costs, decode, enumerate_all, multiplicity, sample
 from searcher.core.space import Space
 from searcher.core.stats import wilson_interval
@@ -65,12 +65,13 @@ class Census:
     def spread(self) -> pd.DataFrame:
         """Quantiles of every cost over the fitting candidates."""
         rows = {}
-        for column in CAP_COLUMNS:
+        for column in self.budget.columns:
             values = self.costs[column][self.fits]
             if len(values):
                 q = np.quantile(values, [0, 0.1, 0.5, 0.9, 1.0])
-                rows[column] = dict(zip(["min", "p10", "median", "p90", "max"], q.round().astype(np.int64)))
-        return pd.DataFrame.from_dict(rows, orient="index")
+                q = q.round(3) if column == LATENCY else q.round().astype(np.int64)  # milliseconds keep 3 decimals
+                rows[column] = dict(zip(["min", "p10", "median", "p90", "max"], q))
+        return pd.DataFrame(rows, dtype=object).T  # counts stay whole, milliseconds keep their decimals
 
     def depth_width(self) -> pd.DataFrame:
         """Fitting candidates by depth (rows) and first-stage width (columns)."""
@@ -79,7 +80,7 @@ class Census:
                                               fill_value=0)
         full = frame.pivot_table(index="stages", columns="first_width", values="fits", aggfunc="size", fill_value=0)
         table = table.reindex(index=full.index, columns=full.columns, fill_value=0)
-        return table * (multiplicity(self.space) if self.exact else 1)
+        return table * (multiplicity(self.space, self.budget.target is not None) if self.exact else 1)
 
 
 def run_census(space: Space, budget: Budget | None = None, settings: CensusSettings = CensusSettings()) -> Census:
@@ -91,9 +92,9 @@ def run_census(space: Space, budget: Budget | None = None, settings: CensusSetti
     (True, 96)
     """
     budget = budget or space.budget
-    classes = settings.classes
-    exact = _work(space, space.size() // multiplicity(space)) <= _work(space, settings.exact_limit, convs=10)
-    batch = enumerate_all(space) if exact else sample(space, settings.samples, settings.seed)
+    classes, timed = settings.classes, budget.target is not None
+    exact = _work(space, space.size() // multiplicity(space, timed)) <= _work(space, settings.exact_limit, convs=10)
+    batch = enumerate_all(space, timed) if exact else sample(space, settings.samples, settings.seed, timed)
     costs = batch_costs(space, batch, budget, classes)
     fits = np.ones(len(batch["stages"]), dtype=bool)
     for column, limit in budget.caps().items():
@@ -103,7 +104,7 @@ def run_census(space: Space, budget: Budget | None = None, settings: CensusSetti
     if len(index):
         cheapest = decode(space, batch, int(index[np.argmin(costs["macs"][index])]), classes)
         largest = decode(space, batch, int(index[np.argmax(costs["params"][index])]), classes)
-    lowest = {column: int(costs[column].min()) for column in CAP_COLUMNS}
+    lowest = {column: costs[column].min().item() for column in budget.columns}
     return Census(space, budget, space.size(), exact, len(fits), fits, costs, cheapest, largest, lowest)
 
 
@@ -190,12 +191,15 @@ def census_html(census: Census) -> str:
     import plotly.graph_objects as go
     from plotly.subplots import make_subplots
 
+    columns = census.budget.columns  # the predicted latency, with a target, fills the cell beside the heat map
+    places = [(k // 2 + 1, k % 2 + 1) for k in range(len(CAP_COLUMNS))] + [(3, 2)]
     titles = [f"{c} (fitting)" for c in CAP_COLUMNS] + ["fitting by depth x first width"]
+    titles += [f"{LATENCY} on {census.budget.target.text()} (fitting)"] if LATENCY in columns else []
     fig = make_subplots(rows=3, cols=2, subplot_titles=titles, vertical_spacing=0.1)
-    for k, column in enumerate(CAP_COLUMNS):
+    for column, (row, col) in zip(columns, places):
         values = census.costs[column][census.fits]
-        fig.add_trace(go.Histogram(x=values[:200_000], name=column, showlegend=False), row=k // 2 + 1, col=k % 2 + 1)
-        fig.update_xaxes(title_text=column, row=k // 2 + 1, col=k % 2 + 1)
+        fig.add_trace(go.Histogram(x=values[:200_000], name=column, showlegend=False), row=row, col=col)
+        fig.update_xaxes(title_text=column, row=row, col=col)
     table = census.depth_width()
     fig.add_trace(go.Heatmap(z=table.values, x=[str(c) for c in table.columns], y=[str(r) for r in table.index],
                              colorscale="Blues", showscale=False, texttemplate="%{z}"), row=3, col=1)

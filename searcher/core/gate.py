@@ -48,7 +48,7 @@ class Verdict:
 def judge(arch: Arch, budget: Budget, batch_size: int, memory_cap: int) -> Verdict:
     """The gate's verdict on ``arch``: its costs, every broken cap, and Optuna's constraint value."""
     counted = cost(arch, budget.activation_precision)
-    totals = budget.totals(counted) | {TRAINING_BYTES: training_bytes(counted, batch_size)}
+    totals = budget.totals(counted, arch) | {TRAINING_BYTES: training_bytes(counted, batch_size)}
     caps = budget.caps() | {TRAINING_BYTES: memory_cap}
     violations = tuple(Violation(c, totals[c], limit) for c, limit in caps.items() if totals[c] > limit)
     return Verdict(totals, violations, constraint_value(violations, totals, caps))

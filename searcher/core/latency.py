@@ -42,6 +42,7 @@ import numpy as np
 from searcher.core.arch import TABLE_ACTIVATIONS, Arch
 from searcher.core.plan import lower
 from searcher.errors import SearcherError, one_of, shown
+from searcher.limits import CLOCK_HZ
 
 COEFFICIENTS = "latency_coefficients.json"  # in this package: the fitted coefficients per core
 _CONV = ("words", "tail_bytes", "rows", "edge_bytes", "edge_rows", "groups", "rest_bytes", "rest_channels",
@@ -214,28 +215,56 @@ class Target:
 
     def text(self) -> str:
         """The form parse_target reads: cortex-m4@80MHz."""
-        mhz = self.clock_hz / 1e6
-        return f"{self.core}@{mhz:g}MHz"
+        return f"{self.core}@{self.clock_hz / 1e6:g}MHz"
 
 
-_TARGET = re.compile(r"\s*([A-Za-z0-9-]+)\s*@\s*([0-9]+(?:\.[0-9]+)?)\s*(Hz|kHz|MHz|GHz)\s*", re.IGNORECASE)
+_CLOCK = re.compile(r"\s*([0-9]+(?:\.[0-9]+)?)\s*(Hz|kHz|MHz|GHz)\s*", re.IGNORECASE)
 _CLOCK_UNITS = {"hz": 1.0, "khz": 1e3, "mhz": 1e6, "ghz": 1e9}
 
 
-def parse_target(text: object, key: str = "target") -> Target:
+def _core(text: object, key: str, file: str | None) -> str:
+    if not isinstance(text, str) or text.strip().lower() not in cores():
+        shown_text = text.strip() if isinstance(text, str) else text
+        raise SearcherError(f"`{key}` names core {shown(shown_text)}; use "
+                            f"{one_of(str(shown_text).lower(), cores())}", file=file, key=key)
+    return text.strip().lower()
+
+
+def _clock(text: object, key: str, file: str | None) -> float:
+    match = _CLOCK.fullmatch(text) if isinstance(text, str) and len(text) <= 40 else None
+    if match is None:
+        raise SearcherError(f"`{key}` must be a clock such as '80MHz' (units: Hz, kHz, MHz, GHz), got {shown(text)}",
+                            file=file, key=key)
+    hz = float(match.group(1)) * _CLOCK_UNITS[match.group(2).lower()]
+    if not CLOCK_HZ[0] <= hz <= CLOCK_HZ[1]:
+        raise SearcherError(f"`{key}` clock must be from 1 kHz to 10 GHz, got {shown(text)}", file=file, key=key)
+    return hz
+
+
+def parse_target(text: object, key: str = "--target") -> Target:
     """``cortex-m4@80MHz`` as a Target; an error naming `key` otherwise.
 
     >>> parse_target("cortex-m4@80MHz")
     Target(core='cortex-m4', clock_hz=80000000.0)
     """
-    match = _TARGET.fullmatch(text) if isinstance(text, str) else None
-    if match is None:
-        raise SearcherError(f"`{key}` must be a core and a clock such as 'cortex-m4@80MHz', got {shown(text)}", key=key)
-    core, clock = match.group(1).lower(), float(match.group(2)) * _CLOCK_UNITS[match.group(3).lower()]
-    if core not in cores():
-        raise SearcherError(f"`{key}` names core {shown(match.group(1))}; use {one_of(core, cores())}", key=key)
-    if not 1e3 <= clock <= 1e10:
-        raise SearcherError(f"`{key}` clock must be between 1 kHz and 10 GHz, got {shown(text)}", key=key)
+    if not isinstance(text, str) or text.count("@") != 1:
+        raise SearcherError(f"`{key}` must be a core and a clock such as 'cortex-m4@80MHz' "
+                            f"(cores: {', '.join(cores())}), got {shown(text)}", key=key)
+    core, clock = text.split("@")
+    return Target(_core(core, key, None), _clock(clock, key, None))
+
+
+def target_from_table(table: object, file: str | None = None) -> Target:
+    """A space file's [target] table: ``core = "cortex-m4"`` and ``clock = "80MHz"``, both needed."""
+    if not isinstance(table, dict):
+        raise SearcherError(f"`target` must be a table [target] with a core and a clock, got {shown(table)}",
+                            file=file, key="target")
+    core = None if "core" not in table else _core(table["core"], "target.core", file)  # what is given is checked first
+    clock = None if "clock" not in table else _clock(table["clock"], "target.clock", file)
+    for name, value in (("core", core), ("clock", clock)):
+        if value is None:
+            raise SearcherError(f"`target.{name}` is missing: a [target] names a core (one of {', '.join(cores())}) "
+                                "and a clock such as '80MHz'", file=file, key=f"target.{name}")
     return Target(core, clock)
 
 

@@ -46,6 +46,7 @@ SECTIONS = {
     "pool": ("kind", "window", "stride"),
     "head": ("features", "hidden", "hidden_width", "dropout"),
     "budget": None,  # checked by Budget.from_table
+    "target": ("core", "clock"),  # the core and clock a latency budget is judged on (searcher.core.latency)
     "train": None,  # checked by TrainSettings.from_dict
 }
 POOL_CHOICES = (*POOLS, "none")

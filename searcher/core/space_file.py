@@ -10,6 +10,7 @@ from typing import Any, Callable
 
 from searcher.core.arch import ACTIVATIONS, FEATURES, PADDINGS
 from searcher.core.budget import Budget
+from searcher.core.latency import target_from_table
 from searcher.core.plan import padding_of, window_output
 from searcher.core.space import POOL_CHOICES, SECTIONS, Space
 from searcher.core.train_settings import TrainSettings
@@ -183,7 +184,7 @@ def read_space_text(text: str, file: str, default_name: str = "space") -> Space:
         hidden_count=hidden_count,
         hidden_widths=hidden_widths if hidden_count[1] else (32,),
         dropouts=tuple(dict.fromkeys(float(d) for d in dropouts)),
-        budget=Budget.from_table(r.get("budget", {}), file=file),
+        budget=_budget(r),
         train=dict(train),
         file=file,
     )
@@ -243,6 +244,14 @@ def _toml_problem(exc: tomllib.TOMLDecodeError, text: str) -> str:
 def _number_in(value: Any, low: float, high: float) -> bool:
     """A finite number in [low, high) (bools are not numbers here)."""
     return isinstance(value, (int, float)) and not isinstance(value, bool) and math.isfinite(value) and low <= value < high
+
+
+def _budget(r: _Reader) -> Budget:
+    """[budget], judged on the [target] when the file has one; a time cap needs it."""
+    budget = Budget.from_table(r.get("budget", {}), file=r.file)
+    if r.get("target") is not None:
+        budget = budget.targeted(target_from_table(r.get("target"), r.file))
+    return budget.check_target("budget.max_latency", r.file)
 
 
 def _channels(r: _Reader) -> int:

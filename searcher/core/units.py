@@ -10,7 +10,7 @@ import math
 import re
 
 from searcher.errors import SearcherError, shown
-from searcher.limits import MAX_CAP
+from searcher.limits import MAX_CAP, MAX_LATENCY_MS
 
 _COUNT = {"": 1, "k": 10**3, "K": 10**3, "M": 10**6, "G": 10**9}
 _BYTES = {
@@ -67,6 +67,38 @@ def parse_bytes(text: object, key: str | None = None) -> int:
     65536
     """
     return _parse(text, _BYTES, "a byte size", "64KiB or 1MB", key)
+
+
+_TIME_MS = {"us": 1e-3, "µs": 1e-3, "ms": 1.0, "s": 1e3}
+_TIME = re.compile(r"^\s*([0-9][0-9_]*(?:\.[0-9]+)?)\s*(us|µs|ms|s)\s*$")
+
+
+def parse_duration(text: object, key: str | None = None) -> float:
+    """A time per inference such as `20ms`, `0.5s` or `800us`, in milliseconds (above 0, at most a day).
+
+    >>> parse_duration("20ms"), parse_duration("0.5s"), parse_duration("800us")
+    (20.0, 500.0, 0.8)
+    """
+    name = f"`{key or 'a time'}`"
+    match = _TIME.match(text) if isinstance(text, str) and len(text) <= 40 else None
+    if match is None:
+        raise SearcherError(f"{name} must be a time such as 20ms or 0.5s (units: us, µs, ms, s), got {shown(text)}",
+                            key=key)
+    value = float(match.group(1).replace("_", "")) * _TIME_MS[match.group(2)]
+    if not 0 < value <= MAX_LATENCY_MS:
+        why = "is not above 0" if value <= 0 else "is longer than a day"
+        raise SearcherError(f"{name} {shown(text)} {why}; a cap on time per inference must be above 0 and at most "
+                            "a day (86400s)", key=key)
+    return value
+
+
+def format_duration(ms: float) -> str:
+    """Short human form of a time in milliseconds: 12.345 -> '12.3 ms', 0.85 -> '850 us'."""
+    if abs(ms) >= 1000:
+        return f"{_mantissa(ms / 1000)} s"
+    if abs(ms) >= 1 or ms == 0:
+        return f"{_mantissa(ms)} ms"
+    return f"{_mantissa(ms * 1000)} us"
 
 
 def _mantissa(v: float) -> str:

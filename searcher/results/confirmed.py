@@ -18,12 +18,13 @@ import pandas as pd
 from searcher.core.stats import accuracy_se, credibly_ahead, paired_bootstrap, spearman
 from searcher.errors import check_int, check_number
 from searcher.limits import MAX_CONFIRM_CANDIDATES, MAX_CONFIRM_SEEDS
-from searcher.results.pareto import COST_COLUMNS, feasible_mask
+from searcher.results.pareto import COSTS, feasible_mask
 from searcher.results.records import ACCURACY, METRICS, SCORED, TRAINED, Metric, distinct_rows
 
 RELIABLE_SPEARMAN = 0.6  # below this the proxy's ranking is called unreliable
 CONFIRMED_COLUMNS = ("trial", "arch", "seeds", *(c for m in METRICS.values() for c in (m.mean, m.sd, m.proxy)),
-                     "accuracy_int8_mean", "params", "macs", "peak_activation_bytes", "weight_bytes", "chosen_because")
+                     "accuracy_int8_mean", "params", "macs", "peak_activation_bytes", "weight_bytes", "latency_ms",
+                     "chosen_because")
 
 
 @dataclass(frozen=True)
@@ -56,7 +57,7 @@ def check_tolerance(value: object) -> float:
 def cost_columns(caps: dict[str, float], objective_cost: str | None) -> list[str]:
     """The costs a candidate is judged against: parameters, the objective's cost and every capped cost."""
     wanted = ["params", *([objective_cost] if objective_cost else []), *caps]
-    return [c for c in COST_COLUMNS if c in wanted]
+    return [c for c in COSTS if c in wanted]
 
 
 def select(frame: pd.DataFrame, caps: dict[str, float], columns: Sequence[str], val_images: int,
@@ -117,9 +118,10 @@ def confirmed_table(jobs: pd.DataFrame, frame: pd.DataFrame) -> pd.DataFrame:
     table["chosen_because"] = jobs.groupby("trial")["reason"].first().reindex(table.index)  # finished ones only
     trials = frame.set_index("trial")
     proxies = {m.column: m.proxy for m in METRICS.values()}
-    table = table.join(trials[["arch", *proxies, *COST_COLUMNS]].rename(columns=proxies))
+    table = table.join(trials[["arch", *proxies, *(c for c in COSTS if c in trials)]].rename(columns=proxies))
     table = table.reset_index().rename(columns={"index": "trial"})
-    return table[list(CONFIRMED_COLUMNS)].sort_values("params", kind="stable").reset_index(drop=True)
+    table = table.reindex(columns=list(CONFIRMED_COLUMNS))  # latency_ms empty where the run has no target
+    return table.sort_values("params", kind="stable").reset_index(drop=True)
 
 
 def proxy_spearman(table: pd.DataFrame, metric: Metric = ACCURACY) -> float:

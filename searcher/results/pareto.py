@@ -12,11 +12,20 @@ from collections.abc import Mapping, Sequence
 import numpy as np
 import pandas as pd
 
+from searcher.core.budget import LATENCY
 from searcher.errors import SearcherError, one_of
 from searcher.results.records import SCORED
 
-# The analytic cost columns of the trials table, in the order the report shows them.
+# The analytic cost columns of the trials table, in the order the report shows them; with a target, the
+# predicted latency (LATENCY) too.
 COST_COLUMNS: tuple[str, ...] = ("params", "macs", "peak_activation_bytes", "weight_bytes")
+COSTS = (*COST_COLUMNS, LATENCY)  # every cost a front or a cap may name
+
+
+def present_costs(trials: pd.DataFrame) -> tuple[str, ...]:
+    """The costs this table has: the four analytic ones, and the predicted latency when the run has a target."""
+    timed = LATENCY in trials and trials[LATENCY].notna().any()
+    return COST_COLUMNS + ((LATENCY,) if timed else ())
 
 
 def pareto_mask(accuracy: Sequence[float] | np.ndarray, cost: Sequence[float] | np.ndarray) -> np.ndarray:
@@ -75,8 +84,8 @@ def check_caps(caps: Mapping[str, float | None] | None) -> dict[str, float]:
     """The set caps as plain floats, after checking each names a cost and is positive."""
     checked: dict[str, float] = {}
     for key, limit in (caps or {}).items():
-        if key not in COST_COLUMNS:
-            raise SearcherError(f"cap {key!r} is not a cost; a cap must be {one_of(key, COST_COLUMNS)}", key=key)
+        if key not in COSTS:
+            raise SearcherError(f"cap {key!r} is not a cost; a cap must be {one_of(key, COSTS)}", key=key)
         if limit is None:
             continue
         if isinstance(limit, bool) or not isinstance(limit, (int, float, np.number)) or not limit > 0:
@@ -110,8 +119,8 @@ def front(
     if not columns:
         raise SearcherError("a front needs at least one cost column, got none")
     for column in columns:
-        if column not in COST_COLUMNS:
-            raise SearcherError(f"cost {column!r} is not a cost column; use {one_of(column, COST_COLUMNS)}")
+        if column not in COSTS:
+            raise SearcherError(f"cost {column!r} is not a cost column; use {one_of(column, COSTS)}")
     scored = trials["state"].isin(SCORED).to_numpy() & feasible_mask(trials, caps)
     pool = trials[scored]
     on_front = pareto_mask(pool[score].to_numpy(dtype=float), pool[columns].to_numpy(dtype=float))

@@ -28,7 +28,7 @@ HEARTBEAT = "heartbeat"
 COLUMNS = (
     "trial", "arch", "state", "reason", "rejected_by", "val_accuracy", "val_balanced_accuracy", "val_accuracy_int8",
     "val_recall", "train_seconds", "int8_seconds", "threads", "epochs",
-    "params", "macs", "peak_activation_bytes", "weight_bytes", "training_bytes",
+    "params", "macs", "peak_activation_bytes", "weight_bytes", "latency_ms", "training_bytes",
     "stages", "convs", "first_width", "last_width", "worker", "retry_of", "repeat_of",
 )
 # The trial states, one vocabulary for the loop, the tables, the report and status.

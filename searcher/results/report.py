@@ -25,7 +25,8 @@ from searcher.results.records import (
     counts as trial_counts, distinct_rows,
 )
 from searcher.results.confirmed import Confirmation
-from searcher.results.pareto import COST_COLUMNS, check_caps, feasible_mask, front, front_steps
+from searcher.core.budget import LATENCY
+from searcher.results.pareto import COSTS, check_caps, feasible_mask, front, front_steps, present_costs
 from searcher.results.report_parts import (
     COLOURS, CONFIG, COST_LABELS, SHOWN_WHEN_ANY, STATE_LABELS, TEMPLATE, cost_text, empty_note, log_axis, percent,
     table_html,
@@ -36,14 +37,15 @@ from searcher.runs import write_atomic
 log = logging.getLogger(__name__)
 
 _TEXT_COLUMNS = ("arch", "state", "reason", "rejected_by")
-_NUMBER_COLUMNS = ("trial", "val_accuracy", *COST_COLUMNS, "stages", "first_width")
+_NUMBER_COLUMNS = ("trial", "val_accuracy", *COSTS, "stages", "first_width")
 
 
 def prepare(trials: pd.DataFrame, metric: Metric = ACCURACY) -> pd.DataFrame:
     """A copy with every column the report reads, text blanks as '' and numbers as floats; ``score`` is
     the column of the run's metric (accuracy unless the search ranked by another)."""
     table = trials.copy()
-    missing = [c for c in (*_TEXT_COLUMNS, *_NUMBER_COLUMNS) if c not in table.columns]
+    missing = [c for c in (*_TEXT_COLUMNS, *_NUMBER_COLUMNS) if c not in table.columns and c != LATENCY]  # a run
+    # with no target, or from before targets, has no predicted latency
     if missing and len(table):
         raise SearcherError(f"trials table lacks the columns {', '.join(missing)}; a report needs all of them")
     for column in _TEXT_COLUMNS:
@@ -61,7 +63,7 @@ def _hover(rows: pd.DataFrame) -> list[str]:
     """Hover lines: the architecture verbatim, then accuracy and every cost."""
     lines = []
     for row in rows.itertuples(index=False):
-        costs = " · ".join(f"{COST_LABELS[c][0]} {cost_text(c, getattr(row, c))}" for c in COST_COLUMNS)
+        costs = " · ".join(f"{COST_LABELS[c][0]} {cost_text(c, getattr(row, c))}" for c in present_costs(rows))
         trial, state = "?" if math.isnan(row.trial) else int(row.trial), STATE_LABELS.get(row.state, row.state)
         lines.append(f"<b>{html.escape(row.arch, quote=False)}</b><br>trial {trial} · {state} · "
                      f"score {percent(row.score)}<br>{costs}")
@@ -142,8 +144,8 @@ def build_figures(trials: pd.DataFrame, caps: Mapping[str, float | None] | None 
                   confirmation: Confirmation | None = None, metric: Metric = ACCURACY) -> dict[str, go.Figure]:
     """Every chart of the report, keyed by the column it is about, in page order."""
     table, set_caps = prepare(trials, metric), check_caps(caps)
-    figures = {cost: _cost_figure(table, cost, set_caps, metric) for cost in COST_COLUMNS}
-    for cost in COST_COLUMNS:
+    figures = {cost: _cost_figure(table, cost, set_caps, metric) for cost in present_costs(table)}
+    for cost in present_costs(table):
         add_confirmed(figures[cost], confirmation, cost)
     figures["proxy"] = proxy_figure(confirmation)
     figures["stages"] = _group_figure(table, "stages", "depth (stages)", metric)
@@ -162,12 +164,12 @@ def front_table_html(trials: pd.DataFrame, cost: str, caps: Mapping[str, float |
     int8 = pd.to_numeric(best.get("val_accuracy_int8", pd.Series(dtype=float)), errors="coerce")
     shows_int8 = bool(int8.notna().any())  # measured when the budget's weights are int8
     heads = ["trial", "architecture", metric.label, *(["int8 accuracy"] if shows_int8 else []),
-             *(COST_LABELS[c][0] for c in COST_COLUMNS),
+             *(COST_LABELS[c][0] for c in present_costs(best)),
              "step from the row above", f"{metric.label} per 2× {COST_LABELS[cost][0]}"]
     rows = [
         [str(int(row.trial)), f"<code>{html.escape(row.arch)}</code>", percent(row.score),
          *([percent(float(q))] if shows_int8 else []),
-         *(cost_text(c, getattr(row, c)) for c in COST_COLUMNS),
+         *(cost_text(c, getattr(row, c)) for c in present_costs(best)),
          "—" if math.isnan(step) else f"{step * 100:+.1f} pts for ×{ratio:.2f} cost",
          ("—" if math.isnan(ratio) else "— (too small a step for a rate)") if math.isnan(gain)
          else f"{gain * 100:+.1f} pts"]
@@ -253,7 +255,7 @@ def render_html(trials: pd.DataFrame, *, caps: Mapping[str, float | None] | None
         f"<section>{div(c)}<h2>Pareto front by {html.escape(COST_LABELS[c][0])}</h2>"
         f"{confirmed_front_html(confirmation, c, set_caps)}<h3>Proxy front by {html.escape(COST_LABELS[c][0])}</h3>"
         f"{front_table_html(table, c, set_caps, metric)}</section>"
-        for c in COST_COLUMNS
+        for c in present_costs(table)
     ]
     sections.insert(0, f"<section>{div('proxy')}{recall_html(table, set_caps, metric, class_names)}</section>")
     sections.append(f"<section><h2>Shape</h2><div class='pair'>{div('stages')}{div('first_width')}</div></section>")

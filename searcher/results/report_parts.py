@@ -9,7 +9,7 @@ from collections.abc import Callable
 
 import plotly.graph_objects as go
 
-from searcher.core.units import format_bytes, format_count
+from searcher.core.units import format_bytes, format_count, format_duration
 from searcher.results.records import (
     DUPLICATE, FAILED, INTERRUPTED, NOT_STARTED, QUEUED, REJECTED, RUNNING, STOPPED, TRAINED,
 )
@@ -24,6 +24,7 @@ SHOWN_WHEN_ANY = (QUEUED, NOT_STARTED, DUPLICATE)  # header tiles only when some
 COST_LABELS: dict[str, tuple[str, Callable[[float], str]]] = {
     "params": ("parameters", format_count), "macs": ("MACs", format_count),
     "peak_activation_bytes": ("peak activation RAM", format_bytes), "weight_bytes": ("weight size", format_bytes),
+    "latency_ms": ("predicted latency", format_duration),
 }
 COLOURS = {TRAINED: "#3b6ea8", STOPPED: "#d08b2c", "front": "#222222", "cap": "#b03a3a", "bar": "#7a7f87"}
 CONFIG = {"displaylogo": False, "responsive": True}

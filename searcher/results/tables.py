@@ -108,7 +108,7 @@ def fitting_medians(config: RunConfig) -> dict[str, float]:
 def fronts(frame: pd.DataFrame, budget: Budget) -> pd.DataFrame:
     """The accuracy-vs-cost front for every cost, stacked, with a `cost` column naming it."""
     parts = []
-    for column in CAP_COLUMNS:
+    for column in budget.columns:
         part = front(distinct_rows(frame), column, caps=budget.caps())
         parts.append(part.assign(cost=column))
     return pd.concat(parts, ignore_index=True) if parts else pd.DataFrame()

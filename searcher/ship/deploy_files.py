@@ -27,6 +27,7 @@ import onnx
 
 from searcher.core.arch import Arch, parse_arch
 from searcher.core.cost import cost
+from searcher.core.latency import Target, predict
 from searcher.model.metrics import scores
 from searcher.int8 import reference as int8_reference
 from searcher.ship import arm_build, c_build, emulate, onnx_files
@@ -92,10 +93,12 @@ class DeployReport:
     def arm_metrics(self) -> dict[str, Any]:
         """Per emulated core, keys that carry its name: instructions_cortex_m4, text_bytes_cortex_m4, ..."""
         out: dict[str, Any] = {}
+        arch = parse_arch(self.net.arch)
         for run in self.arm:
             key = core_key(run.core.name)
-            out |= {f"instructions_{key}": run.instructions,
-                    f"instructions_per_mac_{key}": run.instructions / max(1, cost(parse_arch(self.net.arch)).macs),
+            predicted = predict(arch, Target(run.core.name, 1.0))
+            out |= {f"instructions_{key}": run.instructions, f"predicted_instructions_{key}": predicted.instructions,
+                    f"instructions_per_mac_{key}": run.instructions / max(1, cost(arch).macs),
                     f"text_bytes_{key}": run.footprint.code, f"rodata_bytes_{key}": run.footprint.constant_bytes,
                     f"bss_bytes_{key}": run.footprint.arena, f"stack_bytes_{key}": run.footprint.stack,
                     f"stack_bytes_seen_{key}": run.stack_used, f"instructions_per_layer_{key}": dict(run.layers),

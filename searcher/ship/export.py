@@ -30,6 +30,7 @@ import torch
 from searcher.core.arch import Arch, parse_arch
 from searcher.core.budget import Budget, show_cost
 from searcher.core.cost import cost, training_bytes
+from searcher.core.latency import parse_target
 from searcher.errors import SearcherError, check_int, shown
 from searcher.limits import MAX_EPOCHS, MAX_TRIAL
 from searcher.core.space_file import read_space_text
@@ -63,6 +64,7 @@ class ExportSettings:
     storage: str | None = None  # the run's storage, when it is not the run folder's SQLite
     tolerance: float | None = None  # accuracy the default pick may give up against the best confirmed one
     force: bool = False  # replace an existing export with a candidate that breaks a cap or failed
+    target: str | None = None  # core@clock for the predicted latency (cortex-m4@80MHz); default the run's target
     root: Path = RUNS
 
     def __post_init__(self) -> None:
@@ -81,6 +83,8 @@ class ExportSettings:
             storage_kind(self.storage)
         if self.tolerance is not None:
             check_tolerance(self.tolerance)
+        if self.target is not None:
+            parse_target(self.target, "--target")
 
 
 def given_arch(text: str) -> Arch:
@@ -185,12 +189,13 @@ def export(settings: ExportSettings) -> ExportOutcome:
     """Retrain on train+validation, test once on the held-out split, and write runs/<name>/export/."""
     folder, study, config = open_run(settings.name, settings.storage, settings.root)
     check_run_paths(folder, files=("split.npz", "decoded.npz", "run.json"), folders=("export",))
-    budget = Budget(**config.budget)
+    budget = Budget(**config.budget).targeted(None if settings.target is None else parse_target(settings.target))
     results = gather(settings.name, study, storage_url(settings.storage, folder), config, folder, settings.tolerance)
     choice = choose(results, settings)
     arch, how = choice.arch, choice.how
     log.info("export: %s", how)
-    _refuse_replacing(choice, not budget.check(budget.totals(cost(arch, budget.activation_precision))), folder, settings)
+    _refuse_replacing(choice, not budget.check(budget.totals(cost(arch, budget.activation_precision), arch)), folder,
+                      settings)
     if arch.head.classes != config.classes:
         raise SearcherError(f"architecture has {arch.head.classes} outputs but the run's data has {config.classes} classes")
     space_shape = read_space_text(config.space_text, f"<space of run {config.space_name}>").data_shape
@@ -228,7 +233,7 @@ def export(settings: ExportSettings) -> ExportOutcome:
     scores, predictions = evaluate_scores(model, data.test.images, data.test.labels, config.classes)
     confusion = _confusion(data.test.labels, predictions.numpy(), config.classes)
     per_class = {name: float(confusion[i, i] / max(1, confusion[i].sum())) for i, name in enumerate(config.class_names)}
-    totals = budget.totals(cost(arch, budget.activation_precision))
+    totals = budget.totals(cost(arch, budget.activation_precision), arch)
     fits = not budget.check(totals)
     outcome = ExportOutcome(folder / "export", arch, scores.accuracy, per_class, confusion.tolist(), totals, fits,
                             model, test_balanced_accuracy=scores.balanced_accuracy)

@@ -8,7 +8,8 @@ from typing import Any
 from torch import nn
 
 from searcher.core.arch import Arch
-from searcher.core.budget import CAP_COLUMNS, show_cost
+from searcher.core.budget import LATENCY, show_cost
+from searcher.core.latency import Target, predict
 from searcher.core.cost import cost
 from searcher.core.stats import wilson_interval
 from searcher.redact import redact
@@ -107,8 +108,9 @@ def model_card(outcome: Any, extra: dict) -> str:
     per_class = "\n".join(f"| {name:<{width}} | {acc:.4f} |" for name, acc in zip(names, outcome.per_class.values()))
     caps = budget.caps()
     cost_rows = "\n".join(
-        f"| {c} | {show_cost(c, outcome.costs[c])} ({outcome.costs[c]:,}) | "
-        f"{show_cost(c, caps[c]) if c in caps else 'no cap'} |" for c in CAP_COLUMNS)
+        f"| {c} | {show_cost(c, outcome.costs[c])} "
+        + (f"(predicted on {budget.target.text()}, int8 C file) | " if c == LATENCY else f"({outcome.costs[c]:,}) | ")
+        + f"{show_cost(c, caps[c]) if c in caps else 'no cap'} |" for c in budget.columns)
     sizes = extra["sizes"]
     low, high = wilson_interval(int(sum(row[i] for i, row in enumerate(outcome.confusion))),
                                 int(sum(map(sum, outcome.confusion))))
@@ -176,7 +178,7 @@ Weights in fp32 {show_cost('weight_bytes', result.weight_bytes('fp32'))}, fp16
 {result.buffers:,} batch-norm running statistics besides the {result.params:,} parameters. Activation memory is the
 peak at batch 1 at {budget.activation_precision}. {'It meets every cap.' if outcome.fits else '**It breaks at least one cap.**'}
 
-{int8_section(outcome.deploy, arch)}
+{int8_section(outcome.deploy, arch, budget.target)}
 ## Files
 - `model_state.pt`: weights, `torch.load(path, weights_only=True)`
 - `model.py`: the network in plain torch, with `load()`
@@ -189,7 +191,7 @@ peak at batch 1 at {budget.activation_precision}. {'It meets every cap.' if outc
 {CAUTIONS}"""
 
 
-def int8_section(report: Any, arch: Arch) -> str:
+def int8_section(report: Any, arch: Arch, target: Target | None = None) -> str:
     """The int8 build: how it was checked, its RAM and flash against the analytic figures, how to use it."""
     code, net, built = report.code, report.net, report.footprint
     tables = ", ".join(f"`{name}`" for name, _ in code.tables) or "none"
@@ -238,7 +240,7 @@ bias and an int32 multiplier; activation tables: {tables}) and one static arena 
 exactly the analytic int8 weight bytes plus the tables, and exactly the analytic peak activation bytes.
 {measured}
 
-{arm_section(report, arch)}
+{arm_section(report, arch, target)}
 
 Build it with any C99 compiler, with the rest of your firmware or alone:
 
@@ -259,35 +261,47 @@ int label = model_classify(frame, scores); /* 0..MODEL_CLASSES-1; scores may be 
 """
 
 
-def arm_section(report: Any, arch: Arch) -> str:
-    """The emulated Cortex-M runs: sizes of the ARM object and instructions per inference, in total and per layer."""
+def arm_section(report: Any, arch: Arch, target: Target | None = None) -> str:
+    """The emulated Cortex-M runs: sizes of the ARM object, and instructions per inference in total and per layer,
+    emulated beside predicted (searcher.core.latency); with a target, the time on it."""
     if not report.arm:
         return f"### On Cortex-M cores\n{report.arm_check}."
     macs = max(1, cost(arch).macs)
+    predicted = {r.core.name: predict(arch, Target(r.core.name, 1.0)) for r in report.arm}
     seen = ["n/a" if r.stack_used is None else f"{r.stack_used:,}" for r in report.arm]
     rows = "\n".join(
         f"| {r.core.name} ({r.core.board}) | {r.footprint.code:,} | {r.footprint.constant_bytes:,} | {r.footprint.arena:,} "
-        f"| {r.footprint.stack:,} ({used}) | {r.instructions:,} | {r.instructions / macs:.2f} |"
-        for r, used in zip(report.arm, seen))
+        f"| {r.footprint.stack:,} ({used}) | {r.instructions:,} | {predicted[r.core.name].instructions:,.0f} "
+        f"| {r.instructions / macs:.2f} |" for r, used in zip(report.arm, seen))
     calls = sorted({name for r in report.arm for name in r.footprint.library})
-    library = f", plus the frames of the C library's {', '.join(calls)}, which the compiler calls for a loop" if calls else ""
+    library = (f", plus the frames of the C library's {', '.join(calls)}, which the compiler calls for a loop"
+               if calls else "")
     names = [name for name, _ in report.arm[0].layers]
-    per_layer = "\n".join(f"| {name} | " + " | ".join(f"{dict(r.layers).get(name, 0):,}" for r in report.arm) + " |"
-                           for name in names)
+    cells = {r.core.name: (dict(r.layers), dict(predicted[r.core.name].rows)) for r in report.arm}
+    per_layer = "\n".join(f"| {name} | " + " | ".join(f"{ran.get(name, 0):,} / {model.get(name, 0):,.0f}"
+                                                      for ran, model in cells.values()) + " |" for name in names)
+    timed = ""
+    run = next((r for r in report.arm if target is not None and r.core.name == target.core), None)
+    if run is not None:
+        emulated, model = (show_cost(LATENCY, target.seconds(n) * 1e3)
+                           for n in (run.instructions, predicted[run.core.name].instructions))
+        timed = (f"\nOn the target, {target.text()}: {emulated} per inference from the emulated count, {model} "
+                 f"predicted, at {target.cycles_per_instruction:g} cycle per instruction (a lower bound: see below).\n")
     return f"""### On Cortex-M cores (emulated)
 {report.arm_check}. Per core, `arm-none-eabi-size -A` of `model_int8.o` (`-O2 -mthumb`, bytes) and the
-instructions of one inference (mean over the images; {macs:,} MACs):
+instructions of one inference, emulated (mean over the images) and predicted by searcher's latency model
+(`searcher.core.latency`, fitted on emulated counts, no emulator needed); {macs:,} MACs:
 
-| core (QEMU board) | code `.text` | constant data `.rodata` | arena `.bss` | stack at most (seen) | instructions | per MAC |
-|---|---|---|---|---|---|---|
+| core (QEMU board) | code `.text` | constant data `.rodata` | arena `.bss` | stack at most (seen) | instructions emulated | predicted | per MAC |
+|---|---|---|---|---|---|---|---|
 {rows}
-
+{timed}
 `.rodata` and `.bss` equal the analytic figures above. The stack bound is the deepest chain of frames in
 gcc's call graph{library}; "seen" is what the run overwrote. QEMU counts instructions (`-icount shift=0`, turned
 from SysTick ticks by a counted loop timed in the same run), not cycles: on silicon, flash wait states,
 the bus and caches add to them.
 
-Instructions per layer ("input" copies the image in, "output" picks the class):
+Instructions per layer, emulated / predicted ("input" copies the image in, "output" picks the class):
 
 | layer | {' | '.join(r.core.name for r in report.arm)} |
 |---|{'---|' * len(report.arm)}

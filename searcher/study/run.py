@@ -15,6 +15,7 @@ from pathlib import Path
 from searcher.core.budget import CAP_KEYS, Budget, show_cost
 from searcher.core.census_report import Census, CensusSettings, run_census
 from searcher.core.cost import cost
+from searcher.core.latency import parse_target
 from searcher.core.space import Space
 from searcher.core.space_file import load_space, read_space_text
 from searcher.core.train_settings import TrainSettings
@@ -54,6 +55,7 @@ class SearchSettings:
     skip_unreadable: bool = False  # skip (and count) images that cannot be decoded
     force: bool = False  # start afresh where the run's results exist but its study is gone (old files kept aside)
     confirm: ConfirmSettings = ConfirmSettings()  # retraining the front over several seeds once the proxy search ends
+    target: str | None = None  # core@clock the latency is predicted on (cortex-m4@80MHz); overrides the space's [target]
     root: Path = RUNS  # where run folders live
 
     def check(self) -> None:
@@ -78,6 +80,8 @@ class SearchSettings:
         if self.storage is not None:
             storage_kind(self.storage)
         self.confirm.check()
+        if self.target is not None:
+            parse_target(self.target, "--target")
         check_source(self.data)
         cores = os.cpu_count() or 1
         if self.workers > cores and multiprocessing.parent_process() is None:  # once, not again in each worker
@@ -127,6 +131,8 @@ def prepare(settings: SearchSettings, budget: dict | None = None, train: dict | 
     space = load_space(settings.space)
     budget_overrides = budget
     budget = space.budget.updated(budget or {}, prefix="--")
+    budget = budget.targeted(None if settings.target is None else parse_target(settings.target, "--target"))
+    budget.check_target("--max-latency")
     TrainSettings.from_dict(train or {}, prefix="--")  # an override's mistake is the option's, not the file's
     train_settings = TrainSettings.from_dict({**space.train, **(train or {})}, file=space.file)
     folder = run_folder(settings.name, settings.root)

@@ -141,6 +141,33 @@ def _amount(units: dict[str, int]) -> Callable[[Any], bool]:
 COUNT = Rule("count", _amount(_COUNT_UNITS))
 BYTES = Rule("bytes", _amount(_BYTE_UNITS))
 
+# README: a time per inference takes us/µs, ms or s, above 0 and at most a day; a target's clock Hz, kHz, MHz or
+# GHz from 1 kHz to 10 GHz; the cores QEMU emulates as whole boards
+_TIME_UNITS = {"us": 1e-3, "µs": 1e-3, "ms": 1.0, "s": 1e3}
+_CLOCK_UNITS = {"hz": 1.0, "khz": 1e3, "mhz": 1e6, "ghz": 1e9}
+CORES = ("cortex-m3", "cortex-m4", "cortex-m7", "cortex-m55")
+
+
+def _quantity(units: dict[str, float], low: float, high: float, low_open: bool, case: bool) -> Callable[[Any], bool]:
+    def ok(v: Any) -> bool:
+        found = re.fullmatch(r"\s*([0-9][0-9_]*(?:\.[0-9]+)?)\s*([A-Za-zµ]+)\s*", v) if isinstance(v, str) else None
+        unit = found and (found.group(2) if case else found.group(2).lower())
+        if not found or unit not in units or len(v) > 40:
+            return False
+        value = float(found.group(1).replace("_", "")) * units[unit]
+        return (low < value if low_open else low <= value) and value <= high
+
+    return ok
+
+
+TIME = Rule("time", _quantity(_TIME_UNITS, 0, 86_400_000, low_open=True, case=True))
+CLOCK = Rule("clock", _quantity(_CLOCK_UNITS, 1e3, 1e10, low_open=False, case=False))
+
+
+def _target(text: str) -> bool:
+    core, _, clock = text.partition("@")
+    return text.count("@") == 1 and core.strip().lower() in CORES and CLOCK.accepts(clock)
+
 ACTIVATIONS = ("relu", "relu6", "tanh", "sigmoid", "hardswish")
 PRECISIONS = ("fp32", "fp16", "int8")
 
@@ -176,6 +203,9 @@ SPACE_KEYS: dict[str, Rule] = {
     "budget.max_weight": BYTES,
     "budget.weight_precision": words_rule(PRECISIONS, many=False),
     "budget.activation_precision": words_rule(PRECISIONS, many=False),
+    "budget.max_latency": TIME,
+    "target.core": words_rule(CORES, many=False),
+    "target.clock": CLOCK,
     "train.epochs": int_rule(1, MAX_EPOCHS),
     "train.train_fraction": number_rule(lambda v: 0 < v <= 1),
     "train.batch_size": int_rule(2, MAX_BATCH),
@@ -319,6 +349,7 @@ BUDGET_FLAGS = [
     Flag("--max-activation", "bytes", BYTES.accepts), Flag("--max-weight", "bytes", BYTES.accepts),
     Flag("--weight-precision", "word", lambda t: t in PRECISIONS),
     Flag("--activation-precision", "word", lambda t: t in PRECISIONS),
+    Flag("--max-latency", "time", TIME.accepts), Flag("--target", "target", _target),
 ]
 
 COMMAND_FLAGS: dict[str, list[Flag]] = {
@@ -346,7 +377,7 @@ COMMAND_FLAGS: dict[str, list[Flag]] = {
     "export": [
         name_flag(), int_flag("--trial", 0, MAX_TRIAL_NUMBER), Flag("--arch", "arch"),
         int_flag("--epochs", 1, MAX_EPOCHS), Flag("--storage", "url"),
-        float_flag("--tolerance", lambda v: 0 <= v < 1), Flag("--force", "switch"),
+        float_flag("--tolerance", lambda v: 0 <= v < 1), Flag("--force", "switch"), Flag("--target", "target", _target),
     ],
 }
 
@@ -393,6 +424,12 @@ SPECIAL_VALUES: dict[str, list[tuple[str, str]]] = {
              ("wrong unit", "1x16pxx16_c4k3-m2_gap-o4_relu"), ("unicode", "1x16x16_c４k3-m2_gap-o4_relu")],
 }
 
+SPECIAL_VALUES["time"] = [("zero", "0ms"), ("negative", "-5ms"), ("absurdly large", "86401s"),
+                          ("wrong unit", "20 parsecs"), ("wrong unit", "20min")]
+SPECIAL_VALUES["target"] = [("wrong type", "cortex-m4"), ("wrong type", "cortex-m0@48MHz"), ("zero", "cortex-m4@0Hz"),
+                            ("wrong unit", "cortex-m4@80"), ("empty", "@80MHz"), ("absurdly large", "cortex-m4@20GHz"),
+                            ("wrong type", "cortex-m4@80MHz@1GHz")]
+
 # positional/JSON forms only the `cost` command reads
 COST_FILES = [("missing", "missing.json"), ("wrong type", "folder.json"), ("wrong type", "binary.json"),
               ("wrong type", "wrong_fields.json"), ("beyond 64 bits", "huge.json"), ("empty", "empty.json")]
@@ -407,7 +444,7 @@ def flag_cases() -> list[tuple[str, Flag, str, str]]:
                 cases.append((command, flag, "wrong type", "yes"))
                 continue
             values = list(SPECIAL_VALUES.get(flag.kind, []))
-            if flag.kind in ("int", "float", "count", "bytes", "word", "name"):
+            if flag.kind in ("int", "float", "count", "bytes", "word", "name", "time", "target"):
                 values += ARGV_VALUES
                 values += [("absurdly large", v) for v in _just_beyond_argv(flag)]
             else:
