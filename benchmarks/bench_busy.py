@@ -46,7 +46,7 @@ def one(policy: str, minutes: float, folder: Path, name: str) -> dict:
     """One search in this process; what it trained and how much of its box it used."""
     import pandas as pd
 
-    from searcher.results.confirmed import ConfirmSettings
+    from searcher.run.config import ConfirmSettings
     from searcher.study.launch import TorchTrainer
     from searcher.study.run import SearchSettings
     from searcher.study.search_run import search

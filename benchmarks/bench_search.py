@@ -33,10 +33,11 @@ ROOT = Path(__file__).resolve().parent.parent
 sys.path.insert(0, str(ROOT / "tests"))
 
 from searcher.core.budget import Budget  # noqa: E402
-from searcher.results.confirmed import ConfirmSettings  # noqa: E402
+from searcher.run.config import ConfirmSettings  # noqa: E402
 from searcher.study.run import SearchSettings, prepare  # noqa: E402
 from searcher.study.search_run import search  # noqa: E402
-from searcher.study.storage import open_study, storage_url  # noqa: E402
+from searcher.study.studies import open_study  # noqa: E402
+from searcher.study.stores import storage_url  # noqa: E402
 
 
 def overhead(folder: Path, store: str, epochs: int | None = None) -> None:
@@ -158,7 +159,7 @@ def halving(folder: Path, data: str, seed: int, trials: int, objective: str | No
 
     import searcher.study.worker as worker_module
     from searcher.core.census_report import CensusSettings, run_census
-    from searcher.results.pareto import hypervolume, reference_cost
+    from searcher.core.pareto import hypervolume, reference_cost
     from searcher.study.early_stop import CostAwareHalving
 
     if data == "lot-codes":
@@ -208,7 +209,7 @@ def halving(folder: Path, data: str, seed: int, trials: int, objective: str | No
 
 
 def feasible(frame: pd.DataFrame, caps: dict) -> pd.Series:
-    from searcher.results.pareto import feasible_mask
+    from searcher.core.pareto import feasible_mask
 
     return feasible_mask(frame, caps)
 

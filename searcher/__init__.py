@@ -30,7 +30,7 @@ _LATE = {
     "search": "searcher.study.search_run",
     "SearchSettings": "searcher.study.run",
     "SearchOutcome": "searcher.study.search_run",
-    "ConfirmSettings": "searcher.results.confirmed",
+    "ConfirmSettings": "searcher.run.confirmation",
     "status": "searcher.results.status",
     "report": "searcher.results.status",
     "export": "searcher.ship.export",

@@ -20,7 +20,7 @@ import torch
 import searcher
 from searchkit import recording_trainer
 from searcher.ship.export import ExportSettings, export
-from searcher.results.confirmed import ConfirmSettings
+from searcher.run.config import ConfirmSettings
 from searcher.study.run import SearchSettings
 from searcher.study.search_run import search
 

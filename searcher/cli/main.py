@@ -22,7 +22,7 @@ from searcher.errors import SearcherError, one_of, readable, shown
 from searcher.files import read_regular
 from searcher.limits import MAX_ARCH_FILE_BYTES
 from searcher.redact import redact
-from searcher.runs import plain_name, run_folder
+from searcher.run.folders import plain_name, run_folder
 
 log = logging.getLogger("searcher")
 

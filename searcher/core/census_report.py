@@ -16,7 +16,7 @@ from searcher.core.space import Space
 from searcher.core.stats import wilson_interval
 from searcher.errors import SearcherError, check_int, shown
 from searcher.limits import MAX_CLASSES, MAX_SAMPLES, MAX_SEED
-from searcher.runs import check_run_paths, why_unwritable, write_atomic
+from searcher.run.folders import check_run_paths, why_unwritable, write_atomic
 
 
 @dataclass(frozen=True)

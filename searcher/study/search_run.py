@@ -22,15 +22,15 @@ import optuna
 from searcher.data.load import save_decoded, save_split
 from searcher.errors import SearcherError
 from searcher.redact import redact
-from searcher.results.confirmed import Confirmation
-from searcher.results.records import ACCURACY, REJECTED, Metric, best_row, counts
+from searcher.run.confirmation import Confirmation
+from searcher.run.records import ACCURACY, REJECTED, Metric, best_row, counts
 from searcher.results.tables import gather, write_results
-from searcher.runs import write_atomic
+from searcher.run.folders import write_atomic
 from searcher.study.ending import Phases, StopReason
 from searcher.study.launch import TrainerFor, run_phases
 from searcher.study.processes import run_workers
 from searcher.study.run import PreparedRun, SearchSettings, prepare
-from searcher.study.storage import open_study, study_exists
+from searcher.study.studies import open_study, study_exists
 
 log = logging.getLogger(__name__)
 

@@ -85,7 +85,8 @@ def test_export_options_are_checked_before_the_run_is_opened(here, capsys):
 
 def _stored_run(folder: Path, name: str, channels: int) -> None:
     """A study with its configuration and no trials: enough for export to choose and check a candidate."""
-    from searcher.study.storage import RunConfig, open_study
+    from searcher.run.config import RunConfig
+    from searcher.study.studies import open_study
 
     text = space_text("input.channels", str(channels))
     config = RunConfig(space_name="tiny", space_text=text, budget=asdict(Budget()), train=asdict(TrainSettings()),
