@@ -49,7 +49,7 @@ def one(policy: str, minutes: float, folder: Path, name: str) -> dict:
     from searcher.run.config import ConfirmSettings
     from searcher.study.launch import TorchTrainer
     from searcher.study.run import SearchSettings
-    from searcher.study.search_run import search
+    from searcher.results.outcome import search
 
     def fixed(run, threads):  # the old policy: no look at the machine
         trainer = TorchTrainer.for_run(run, threads)

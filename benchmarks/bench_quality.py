@@ -60,7 +60,7 @@ from searcher.core.census_report import Census, CensusSettings, run_census  # no
 from searcher.core.space import Space  # noqa: E402
 from searcher.limits import MAX_TRIALS  # noqa: E402
 from searcher.core.pareto import feasible_mask, hypervolume, reference_cost  # noqa: E402
-from searcher.run.folders import write_atomic  # noqa: E402
+from searcher.files import write_atomic  # noqa: E402
 
 RUNS = ROOT / "runs" / "bench-quality"
 METHODS = ("default", "single", "random", "sweep")

@@ -150,7 +150,7 @@ def search_here(folder: Path, space: Path, name: str, train: dict | None = None,
     Confirmation is off unless ``confirm`` is given."""
     from searcher.run.config import ConfirmSettings
     from searcher.study.run import SearchSettings
-    from searcher.study.search_run import search
+    from searcher.results.outcome import search
 
     fields.setdefault("confirm", ConfirmSettings(seeds=0))
     settings = SearchSettings(name=name, space=str(space), root=folder / "runs", **fields)

@@ -30,7 +30,7 @@ from searcher.results.report_parts import (
     table_html,
 )
 from searcher.results.report_confirmed import add_confirmed, confirmation_html, confirmed_front_html, proxy_figure
-from searcher.run.folders import write_atomic
+from searcher.files import write_atomic
 
 log = logging.getLogger(__name__)
 

@@ -26,7 +26,7 @@ from searcher.run.confirmation import Confirmation, confirmation
 from searcher.results.fronts import front
 from searcher.run.records import METRICS, STOPPED, TRAINED, Metric, best_row, counts, distinct_rows, trials_frame
 from searcher.results.report import write_report
-from searcher.run.folders import write_atomic
+from searcher.files import write_atomic
 from searcher.run.config import full_schedule
 from searcher.study.confirm import read_jobs, read_labels
 from searcher.run.config import OBJECTIVES, RunConfig

@@ -1,6 +1,6 @@
 """A search run made ready: its settings, every input checked, the data loaded; nothing written yet.
 
-:func:`searcher.study.search_run.search` runs what :func:`prepare` returns; each worker process
+:func:`searcher.study.search_run.run_search` runs what :func:`prepare` returns; each worker process
 prepares the same way, so every worker checks and sees the same space, budget and data.
 """
 

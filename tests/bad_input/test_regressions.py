@@ -130,12 +130,12 @@ def test_census_into_a_read_only_runs_folder(here, capsys):
 
 def test_census_on_a_read_only_file_system(here, capsys, monkeypatch):
     """The write itself fails (EROFS, as on a read-only mount): one line, no traceback, nothing half-written."""
-    import searcher.core.census_report as census_report
+    import searcher.results.census_files as census_files
 
     def read_only(path, data):
         raise OSError(errno.EROFS, os.strerror(errno.EROFS), str(path))
 
-    monkeypatch.setattr(census_report, "write_atomic", read_only)
+    monkeypatch.setattr(census_files, "write_atomic", read_only)
     line = refused(["census", "--space", "space.toml"], capsys)
     assert "cannot write the census to 'runs/census-tiny': Read-only file system" in line
     assert written(here) == []
