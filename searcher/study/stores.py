@@ -164,11 +164,6 @@ def check_sqlite(path: Path) -> bool:
     """
     if not path.exists() or path.stat().st_size == 0:
         return False
-    with open(path, "rb") as handle:
-        head = handle.read(len(SQLITE_HEADER))
-    if head != SQLITE_HEADER:
-        raise SearcherError(f"the store {path} is not a SQLite database (it starts {shown(head)}); searcher changes "
-                            "nothing in it: give --storage a new file, or move this one away", key="--storage")
     read_only = not os.access(path.parent, os.W_OK | os.X_OK) or not os.access(path, os.W_OK)
     uri = f"file:{path}?mode=" + (_read_only_mode(path) if read_only else "ro")
 
@@ -183,6 +178,7 @@ def check_sqlite(path: Path) -> bool:
         if _CREATION_RACE.search(str(exc)):
             raise SearcherError(f"the store {path} stayed locked by another process: {exc}; try again when it is "
                                 "done", key="--storage") from None
+        _refuse_other_formats(path)
         raise _damaged(path, str(exc)) from None
     if verdict != ["ok"]:
         raise _damaged(path, "; ".join(verdict))
@@ -191,6 +187,21 @@ def check_sqlite(path: Path) -> bool:
                             f"{shown(sorted(tables))}); searcher changes nothing in it: give --storage a new file",
                             key="--storage")
     return read_only
+
+
+def _refuse_other_formats(path: Path) -> None:
+    """Refuse a file that is no SQLite database at all, showing how it starts.
+
+    Its first bytes are read only once SQLite has refused the file: this process may hold SQLite
+    connections to a store, and closing any other descriptor of the same file would drop their
+    locks (POSIX locks belong to the process, not the descriptor), letting another process take a
+    live store for an abandoned one: seen as a store that read "malformed" while a search wrote it.
+    """
+    with open(path, "rb") as handle:
+        head = handle.read(len(SQLITE_HEADER))
+    if head != SQLITE_HEADER:
+        raise SearcherError(f"the store {path} is not a SQLite database (it starts {shown(head)}); searcher changes "
+                            "nothing in it: give --storage a new file, or move this one away", key="--storage")
 
 
 def _read_only_mode(path: Path) -> str:
