@@ -46,10 +46,10 @@ def one(policy: str, minutes: float, folder: Path, name: str) -> dict:
     """One search in this process; what it trained and how much of its box it used."""
     import pandas as pd
 
-    from searcher.results.confirmed import ConfirmSettings
+    from searcher.run.config import ConfirmSettings
     from searcher.study.launch import TorchTrainer
     from searcher.study.run import SearchSettings
-    from searcher.study.search_run import search
+    from searcher.results.outcome import search
 
     def fixed(run, threads):  # the old policy: no look at the machine
         trainer = TorchTrainer.for_run(run, threads)

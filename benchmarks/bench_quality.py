@@ -9,7 +9,7 @@ For each data set, time box, seed and method, one whole search runs through the 
 row is measured:
 
 * ``hv`` — the hypervolume of the confirmed front, accuracy against parameters within the caps
-  (:func:`searcher.results.pareto.hypervolume`: the share of the square from (0 parameters, chance)
+  (:func:`searcher.core.pareto.hypervolume`: the share of the square from (0 parameters, chance)
   to (the parameter cap, accuracy 1) that the confirmed means dominate);
 * ``test`` — the default export's accuracy on the held-out test split, its ``params`` and ``macs``;
 * ``trained`` — full proxy trainings (not stopped early), ``below`` / ``above`` — how many of them cost
@@ -59,8 +59,8 @@ from searcher.core.census import enumerate_all, sample  # noqa: E402
 from searcher.core.census_report import Census, CensusSettings, run_census  # noqa: E402
 from searcher.core.space import Space  # noqa: E402
 from searcher.limits import MAX_TRIALS  # noqa: E402
-from searcher.results.pareto import feasible_mask, hypervolume, reference_cost  # noqa: E402
-from searcher.runs import write_atomic  # noqa: E402
+from searcher.core.pareto import feasible_mask, hypervolume, reference_cost  # noqa: E402
+from searcher.files import write_atomic  # noqa: E402
 
 RUNS = ROOT / "runs" / "bench-quality"
 METHODS = ("default", "single", "random", "sweep")
@@ -204,7 +204,7 @@ def run_one(job: Job, data: DataSet, root: Path, trials: int) -> dict | None:
     import searcher
     from searcher.study.ending import Ending
     from searcher.study.run import prepare
-    from searcher.study.storage import open_study
+    from searcher.study.studies import open_study
 
     torch.set_num_threads(1)
     logging.basicConfig(level=logging.WARNING, format=f"[{job.key}] %(message)s")

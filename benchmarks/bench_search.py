@@ -33,10 +33,11 @@ ROOT = Path(__file__).resolve().parent.parent
 sys.path.insert(0, str(ROOT / "tests"))
 
 from searcher.core.budget import Budget  # noqa: E402
-from searcher.results.confirmed import ConfirmSettings  # noqa: E402
+from searcher.run.config import ConfirmSettings  # noqa: E402
 from searcher.study.run import SearchSettings, prepare  # noqa: E402
-from searcher.study.search_run import search  # noqa: E402
-from searcher.study.storage import open_study, storage_url  # noqa: E402
+from searcher.results.outcome import search  # noqa: E402
+from searcher.study.studies import open_study  # noqa: E402
+from searcher.study.stores import storage_url  # noqa: E402
 
 
 def overhead(folder: Path, store: str, epochs: int | None = None) -> None:
@@ -45,6 +46,7 @@ def overhead(folder: Path, store: str, epochs: int | None = None) -> None:
     ``store``: "sqlite" (the default store) or "journal" (Optuna's journal file), the same search on each.
     ``epochs``: the proxy's length (default: the example's); shorter training makes the share larger.
     """
+    import searcher.results.outcome as writer
     import searcher.study.search_run as runner
 
     spent: dict[str, float] = {}
@@ -58,8 +60,8 @@ def overhead(folder: Path, store: str, epochs: int | None = None) -> None:
                 spent[name] = spent.get(name, 0.0) + time.perf_counter() - started
         return wrapper
 
-    real = runner.run_phases, runner.finish
-    runner.run_phases, runner.finish = timed("loop", runner.run_phases), timed("finish", runner.finish)
+    real = runner.run_phases, writer.finish
+    runner.run_phases, writer.finish = timed("loop", runner.run_phases), timed("finish", writer.finish)
     storage = str(folder / "overhead.journal") if store == "journal" else None
     settings = SearchSettings(name=f"overhead-{store}", space=str(ROOT / "examples" / "stamp_inspection.toml"),
                               data="demo", trials=20, root=folder, storage=storage,
@@ -68,7 +70,7 @@ def overhead(folder: Path, store: str, epochs: int | None = None) -> None:
     try:
         outcome = search(settings, train={"epochs": epochs} if epochs else None)  # the demo as README runs it
     finally:
-        runner.run_phases, runner.finish = real
+        runner.run_phases, writer.finish = real
     wall = time.perf_counter() - started
     trials = pd.read_csv(outcome.folder / "trials.csv")
     # the int8 check after training (budgets in int8 weights) is measurement, with a benchmark of its
@@ -158,7 +160,7 @@ def halving(folder: Path, data: str, seed: int, trials: int, objective: str | No
 
     import searcher.study.worker as worker_module
     from searcher.core.census_report import CensusSettings, run_census
-    from searcher.results.pareto import hypervolume, reference_cost
+    from searcher.core.pareto import hypervolume, reference_cost
     from searcher.study.early_stop import CostAwareHalving
 
     if data == "lot-codes":
@@ -208,7 +210,7 @@ def halving(folder: Path, data: str, seed: int, trials: int, objective: str | No
 
 
 def feasible(frame: pd.DataFrame, caps: dict) -> pd.Series:
-    from searcher.results.pareto import feasible_mask
+    from searcher.core.pareto import feasible_mask
 
     return feasible_mask(frame, caps)
 

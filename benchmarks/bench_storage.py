@@ -40,7 +40,9 @@ import optuna  # noqa: E402
 from searcher.core.budget import Budget  # noqa: E402
 from searcher.study.worker import Worker, WorkerPlan  # noqa: E402
 from searcher.core.space_file import load_space  # noqa: E402
-from searcher.study.storage import RunConfig, make_sampler, open_study  # noqa: E402
+from searcher.run.config import RunConfig  # noqa: E402
+from searcher.study.samplers import make_sampler  # noqa: E402
+from searcher.study.studies import open_study  # noqa: E402
 from searcher.model.train import TrainResult, TrainSettings  # noqa: E402
 
 SPACE = HERE.parent / "spaces" / "mcu.toml"

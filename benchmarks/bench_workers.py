@@ -28,9 +28,9 @@ from conftest import TINY_SPACE  # noqa: E402
 
 import optuna  # noqa: E402
 
-from searcher.results.records import SPENT, record_of  # noqa: E402
+from searcher.run.records import SPENT, record_of  # noqa: E402
 from searcher import ConfirmSettings, SearchSettings, search  # noqa: E402
-from searcher.study.storage import open_study  # noqa: E402
+from searcher.study.studies import open_study  # noqa: E402
 
 # The tests' tiny space made uniform: 30,720 candidates of two stages on 16x16 input, every one within
 # the budget and small (28k to 4.2M MACs; at this size per-batch overhead dominates their

@@ -18,7 +18,7 @@ from typing import Any
 
 from searcher.core.arch import Arch, Conv, Head, Pool, Stage, parse_arch
 from searcher.core.budget import Budget, Violation
-from searcher.core.census_report import Census, CensusSettings, run_census as census
+from searcher.core.census_report import Census, CensusSettings
 from searcher.core.cost import Cost, LayerCost, cost
 from searcher.core.space import Space
 from searcher.core.space_file import builtin_space, load_space
@@ -27,10 +27,11 @@ from searcher.errors import SearcherError
 # public name -> the module that defines it; loaded on first use because it loads torch
 _LATE = {
     "build": "searcher.model.build",
-    "search": "searcher.study.search_run",
+    "census": "searcher.results.census_files",
+    "search": "searcher.results.outcome",
     "SearchSettings": "searcher.study.run",
-    "SearchOutcome": "searcher.study.search_run",
-    "ConfirmSettings": "searcher.results.confirmed",
+    "SearchOutcome": "searcher.results.outcome",
+    "ConfirmSettings": "searcher.run.confirmation",
     "status": "searcher.results.status",
     "report": "searcher.results.status",
     "export": "searcher.ship.export",
@@ -49,5 +50,5 @@ def __getattr__(name: str) -> Any:
 
 __all__ = [
     "Arch", "Budget", "Census", "CensusSettings", "Conv", "Cost", "Head", "LayerCost", "Pool", "SearcherError",
-    "Space", "Stage", "Violation", "builtin_space", "census", "cost", "load_space", "parse_arch", *_LATE,
+    "Space", "Stage", "Violation", "builtin_space", "cost", "load_space", "parse_arch", *_LATE,
 ]

@@ -1,4 +1,5 @@
-"""Files the user names, read safely: regular files only, never past a size ceiling.
+"""Files: those the user names read safely (regular files only, never past a size ceiling), and those
+we write written whole or not at all (:func:`write_atomic`).
 
 A named pipe (FIFO) blocks whoever opens it until something writes to it, and a device such as
 ``/dev/zero`` or ``/dev/urandom`` never ends: reading either "as a file" hangs or exhausts memory.
@@ -11,7 +12,10 @@ from __future__ import annotations
 
 import os
 import stat
+import tempfile
+from collections.abc import Callable
 from pathlib import Path
+from typing import BinaryIO
 
 from searcher.errors import SearcherError, shown
 from searcher.core.units import format_bytes
@@ -59,3 +63,29 @@ def read_regular(path: str | Path, limit: int, what: str, key: str | None = None
         raise SearcherError(f"{what} {shown(str(path))} holds more than {format_bytes(limit)}, the most searcher "
                             f"reads of a {what}", key=key)
     return data
+
+
+def write_atomic(path: Path, data: str | bytes | Callable[[BinaryIO], object]) -> Path:
+    """Write a file whole or not at all: a temporary file in the same folder, then a rename.
+
+    `data` may be a function that writes to the open file, for contents too large to build in memory first.
+    """
+    path.parent.mkdir(parents=True, exist_ok=True)
+    if os.path.lexists(path) and not stat.S_ISREG(os.lstat(path).st_mode):  # checked up front too: check_run_paths
+        raise SearcherError(f"{path} is {kind_of(os.lstat(path).st_mode)}, not a file searcher wrote; it is left as "
+                            "it is: move it away")
+    fd, tmp = tempfile.mkstemp(dir=path.parent, prefix=f".{path.name}.", suffix=".tmp")
+    try:
+        with os.fdopen(fd, "wb") as handle:
+            if callable(data):
+                data(handle)
+            else:
+                handle.write(data.encode("utf-8") if isinstance(data, str) else data)
+            handle.flush()
+            os.fsync(handle.fileno())  # on disk before the rename, so a power cut leaves old or new
+        os.chmod(tmp, 0o644)  # mkstemp makes files private; results are for sharing
+        os.replace(tmp, path)
+    except BaseException:
+        Path(tmp).unlink(missing_ok=True)
+        raise
+    return path

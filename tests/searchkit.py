@@ -122,7 +122,7 @@ def load(cwd: Path, name: str) -> optuna.Study:
 
 def finished(study: optuna.Study) -> dict[int, tuple[str, Any, str]]:
     """Trial number -> (Optuna state, values, our state) of every finished trial."""
-    from searcher.results.records import record_of
+    from searcher.run.records import record_of
 
     return {t.number: (t.state.name, t.values, record_of(t).get("state"))
             for t in study.get_trials(deepcopy=False) if t.state.is_finished()}
@@ -148,9 +148,9 @@ def search_here(folder: Path, space: Path, name: str, train: dict | None = None,
                 budget: dict | None = None, **fields: Any):
     """searcher.search in this process on the demo data, runs under folder/runs; returns its outcome.
     Confirmation is off unless ``confirm`` is given."""
-    from searcher.results.confirmed import ConfirmSettings
+    from searcher.run.config import ConfirmSettings
     from searcher.study.run import SearchSettings
-    from searcher.study.search_run import search
+    from searcher.results.outcome import search
 
     fields.setdefault("confirm", ConfirmSettings(seeds=0))
     settings = SearchSettings(name=name, space=str(space), root=folder / "runs", **fields)
@@ -177,7 +177,7 @@ def recording_trainer(built: list[str]):
 
 class StandIn:
     """A Trainer that trains nothing: it notes the seed of each candidate it is handed (the trial number,
-    in a run seeded 0: searcher.study.storage.trial_seed) and reports ``accuracy`` after every epoch,
+    in a run seeded 0: searcher.study.stores.trial_seed) and reports ``accuracy`` after every epoch,
     through the loop's own early-stop callback. Having processed no images, it leaves the measured
     throughput alone."""
 

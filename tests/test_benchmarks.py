@@ -9,6 +9,7 @@ from pathlib import Path
 
 import pytest
 
+import searcher.results.outcome as outcome
 import searcher.study.search_run as search_run
 
 BENCHES = sorted((Path(__file__).resolve().parents[1] / "benchmarks").glob("bench_*.py"))
@@ -23,7 +24,8 @@ def test_bench_script_loads_and_explains_itself(script: Path) -> None:
 
 
 def test_the_search_benchmark_times_functions_that_exist() -> None:
-    """bench_search.py times the search by wrapping these two names of searcher.study.search_run."""
+    """bench_search.py times the search by wrapping run_phases (searcher.study.search_run) and finish
+    (searcher.results.outcome)."""
     text = (Path(__file__).resolve().parents[1] / "benchmarks" / "bench_search.py").read_text(encoding="utf-8")
-    for name in ("run_phases", "finish"):
-        assert f"runner.{name}" in text and callable(getattr(search_run, name))
+    for module, alias, name in ((search_run, "runner", "run_phases"), (outcome, "writer", "finish")):
+        assert f"{alias}.{name}" in text and callable(getattr(module, name))

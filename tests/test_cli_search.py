@@ -154,7 +154,7 @@ def test_a_run_whose_study_is_gone_is_not_overwritten_and_status_writes_nothing(
 def test_status_of_a_store_that_vanished_creates_nothing(tmp_path):
     """Between the look for the file and the open, the store can go: opening to read never creates it."""
     from searcher.errors import SearcherError
-    from searcher.study.storage import open_storage
+    from searcher.study.stores import open_storage
 
     for url in (f"sqlite:///{tmp_path / 'none.db'}", str(tmp_path / "none.journal")):
         with pytest.raises(SearcherError, match="does not exist"):

@@ -17,15 +17,14 @@ import pytest
 from conftest import TINY_SPACE
 from searchkit import search_here, write_space
 from searcher.core.space_file import read_space_text
-from searcher.results.records import RECORD, describe
+from searcher.run.records import RECORD, TRAINED, describe
 from searcher.core.budget import Budget
 from searcher.core.stats import accuracy_se
 from searcher.model.metrics import Scores
-from searcher.results.confirmed import (
-    ConfirmSettings, Evidence, Judge, confirmation, confirmed_table, contenders, default_pick, difference_noise,
-    proxy_spearman, seed_spread, select,
+from searcher.run.config import ConfirmSettings
+from searcher.run.confirmation import (
+    Evidence, Judge, confirmation, confirmed_table, contenders, default_pick, difference_noise, proxy_spearman, seed_spread, select,
 )
-from searcher.results.records import TRAINED
 from searcher.study.confirm import ConfirmPlan, Confirmer, jobs_frame, open_confirm_study, plan
 from searcher.study.timebox import Throughput
 
@@ -309,7 +308,7 @@ def test_confirmed_means_hold_up_when_retrained_with_other_seeds(tmp_path):
     from searcher.data.load import load_dataset, load_split
     from searcher.model.build import build
     from searcher.model.train import train_candidate
-    from searcher.study.confirm import full_schedule
+    from searcher.run.config import full_schedule
     from test_search import write_digits
 
     npz, space = write_digits(tmp_path)
@@ -335,7 +334,7 @@ def test_confirmed_means_hold_up_when_retrained_with_other_seeds(tmp_path):
 def test_the_report_shows_confirmed_numbers_in_the_runs_score():
     """Regression, seen on a run by balanced accuracy: the report's confirmed points and front showed
     plain accuracy beside proxy balanced accuracy."""
-    from searcher.results.records import METRICS
+    from searcher.run.records import METRICS
     from searcher.results.report_confirmed import confirmed_front_html, proxy_figure
 
     frame = _frame([(0, 0.70, 100), (1, 0.80, 200), (2, 0.90, 300)])

@@ -25,7 +25,7 @@ from searchkit import (
 import searcher.study.liveness
 import searcher.study.loop
 from searcher.core.budget import Budget
-from searcher.results.records import INTERRUPTED, REJECTED, SPENT, counts, distinct_rows, trials_frame
+from searcher.run.records import INTERRUPTED, REJECTED, SPENT, counts, distinct_rows, trials_frame
 from searcher.core.space_file import load_space
 
 
@@ -303,7 +303,7 @@ def _running_trial(study, worker: dict | None, **attrs):
 
 def test_recovery_fails_and_requeues_only_the_dead() -> None:
     from searcher.study.liveness import STALE_SECONDS, recover_stale
-    from searcher.results.records import record_of
+    from searcher.run.records import record_of
 
     optuna.logging.set_verbosity(optuna.logging.WARNING)
     study = optuna.create_study(sampler=optuna.samplers.RandomSampler(seed=1), direction="maximize")
@@ -339,7 +339,7 @@ def test_recovery_queues_a_retry_that_a_kill_kept_from_being_queued() -> None:
     """Killed after a trial was ended as interrupted (or put off for time) but before its copy was
     queued: the next look queues it, once, and never for a retry or a trial whose copy exists."""
     from searcher.study.liveness import recover_stale
-    from searcher.results.records import NOT_STARTED, RECORD
+    from searcher.run.records import NOT_STARTED, RECORD
 
     optuna.logging.set_verbosity(optuna.logging.WARNING)
     study = optuna.create_study(sampler=optuna.samplers.RandomSampler(seed=1), direction="maximize")
@@ -427,7 +427,7 @@ def test_sqlite_store_commits_without_waiting_and_flushes_after_each_spent_candi
     candidate that cost training time."""
     import dataclasses
 
-    from searcher.study.storage import disk_flush, open_storage
+    from searcher.study.stores import disk_flush, open_storage
 
     url = f"sqlite:///{tmp_path / 'study.db'}"
     storage = open_storage(url)
@@ -461,7 +461,7 @@ def test_journal_store_is_repaired_after_a_power_cut(tmp_path: Path, cut: float 
     with everything that was complete."""
     import shutil
 
-    from searcher.study.storage import open_storage
+    from searcher.study.stores import open_storage
 
     optuna.logging.set_verbosity(optuna.logging.WARNING)
     path = tmp_path / "study.journal"
@@ -537,7 +537,7 @@ def test_killed_confirmation_resumes_without_redoing_a_finished_seed(tmp_path: P
 def _open_at(url: str, barrier, answers) -> None:
     """A forked process: wait for the other, then open the store (what a starting search does first)."""
     from searcher.errors import SearcherError
-    from searcher.study.storage import open_storage
+    from searcher.study.stores import open_storage
 
     barrier.wait()
     try:

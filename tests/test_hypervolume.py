@@ -8,7 +8,7 @@ import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
-from searcher.results.pareto import hypervolume, reference_cost
+from searcher.core.pareto import hypervolume, reference_cost
 
 
 def optuna_share(accuracy: list[float], cost: list[float], chance: float, reference: float) -> float:

@@ -1,4 +1,5 @@
-"""The package's shape: imports at the top of modules, no import cycles, a torch-free core.
+"""The package's shape: imports at the top of modules, no import cycles, a torch-free core, and floors:
+no module imports from a floor above its own.
 
 Read from the source with Python's own parser (the standard library's ``ast``), so the rules hold
 for every module, including ones added later.
@@ -96,3 +97,50 @@ def test_the_core_never_imports_torch(module: str) -> None:
     for node in ast.walk(MODULES[module]):
         if isinstance(node, (ast.Import, ast.ImportFrom)):
             assert not any(n.split(".")[0] == "torch" for n in _imported(node, module)), module
+
+
+# The floors, lowest first: a module may import from its own floor and those below, never from above.
+# The folder listing follows the data flow: what a candidate is and costs, its int8 arithmetic, the
+# images, the torch model, what a run is and records, running it, what it produced, what ships.
+FLOORS = (
+    ("searcher.errors", "searcher.limits", "searcher.redact"),  # user mistakes, ceilings, secrets out of text
+    ("searcher.core", "searcher.files"),  # torch-free: space, plan, cost, gate, census; files read and written safely
+    ("searcher.int8",),  # integer-only arithmetic (numpy)
+    ("searcher.data",),  # images in
+    ("searcher.model",),  # torch: build, train
+    ("searcher.run",),  # a run: its configuration, its records, its confirmation rules, its folders
+    ("searcher.study",),  # running a run's studies: stores, samplers, loops, workers
+    ("searcher.results",),  # what a run produced: tables, report, status, the search's outcome; census files
+    ("searcher.ship",),  # export: retrain, test, the files that ship
+    ("searcher.cli", "searcher.__main__", "searcher"),  # the public API and the thin shell over it
+)
+
+
+def floor_of(module: str) -> int:
+    """Index of the floor a module belongs to (the longest package prefix that names one)."""
+    best, length = None, -1
+    for index, names in enumerate(FLOORS):
+        for name in names:
+            if (module == name or module.startswith(name + ".")) and len(name) > length:
+                if name == "searcher" and module != "searcher":
+                    continue
+                best, length = index, len(name)
+    assert best is not None, f"{module} is on no floor: add it to FLOORS"
+    return best
+
+
+@pytest.mark.parametrize("module", sorted(MODULES))
+def test_no_import_from_a_higher_floor(module: str) -> None:
+    own = floor_of(module)
+    above = []
+    for node in ast.walk(MODULES[module]):
+        if isinstance(node, ast.ImportFrom) and not node.level and (node.module or "").startswith("searcher."):
+            if floor_of(node.module) > own:
+                above.append(node.module)
+    assert not above, f"{module} (floor {own}: {FLOORS[own]}) imports from higher floors: {above}"
+
+
+def test_the_floors_fail_an_upward_import() -> None:
+    """The check itself: a core module importing the study floor is caught."""
+    assert floor_of("searcher.core.cost") < floor_of("searcher.study.worker") < floor_of("searcher.results.status")
+    assert floor_of("searcher.run.records") < floor_of("searcher.study.worker")

@@ -11,7 +11,7 @@ import pytest
 from searcher.study.optuna_private import (
     OptunaChanged, journal_lock, seed_draws, set_trial_attr, trial_id,
 )
-from searcher.study.storage import make_sampler
+from searcher.study.samplers import make_sampler
 
 optuna.logging.set_verbosity(optuna.logging.WARNING)
 

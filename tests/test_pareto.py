@@ -11,14 +11,8 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 
 from searcher.errors import SearcherError
-from searcher.results.pareto import (
-    accuracy_per_doubling,
-    check_caps,
-    feasible_mask,
-    front,
-    front_steps,
-    pareto_mask,
-)
+from searcher.core.pareto import accuracy_per_doubling, check_caps, feasible_mask, pareto_mask
+from searcher.results.fronts import front, front_steps
 
 
 def brute_force_mask(accuracy: list[float], costs: list[list[float]]) -> list[bool]:

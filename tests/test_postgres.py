@@ -19,7 +19,7 @@ from test_workers import check_study, finish, search_command, start, stored
 
 from searcher.redact import redact
 from searcher.core.space_file import load_space
-from searcher.results.confirmed import ConfirmSettings
+from searcher.run.config import ConfirmSettings
 from searcher.study.confirm import open_confirm_study, plan, read_jobs
 
 MACHINES = 3

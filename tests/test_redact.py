@@ -69,6 +69,6 @@ def test_text_without_a_password_is_left_alone(text: str) -> None:
 
 
 def test_storage_module_uses_the_same_redaction() -> None:
-    from searcher.study import storage
+    from searcher.study import stores as storage
 
     assert storage.redact is redact

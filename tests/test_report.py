@@ -18,7 +18,7 @@ import pytest
 from plotly.offline import get_plotlyjs
 
 from searcher.errors import SearcherError
-from searcher.results.pareto import COST_COLUMNS, feasible_mask, pareto_mask
+from searcher.core.pareto import COST_COLUMNS, feasible_mask, pareto_mask
 from searcher.results.report import broken_caps_label, build_figures, front_table_html, render_html, write_report
 
 CAPS = {"params": 20_000, "macs": 2_000_000, "peak_activation_bytes": 65_536}
@@ -265,7 +265,7 @@ def test_headless_render_is_not_blank(page: tuple[Path, str], tmp_path: Path) ->
 
 def test_a_candidate_confirmed_with_one_seed_shows_no_spread() -> None:
     """Regression (a new user's report): one seed was shown as "± 0.0%", a spread that was never measured."""
-    from searcher.results.confirmed import confirmation
+    from searcher.run.confirmation import confirmation
     from searcher.results.report_confirmed import confirmed_front_html, mean_sd
 
     frame = pd.DataFrame([{"trial": t, "arch": f"1x8x8_c{2 + t}k3_gap-o2_relu", "state": "trained", "val_accuracy": a,

@@ -20,9 +20,9 @@ import torch
 import searcher
 from searchkit import recording_trainer
 from searcher.ship.export import ExportSettings, export
-from searcher.results.confirmed import ConfirmSettings
+from searcher.run.config import ConfirmSettings
 from searcher.study.run import SearchSettings
-from searcher.study.search_run import search
+from searcher.results.outcome import search
 
 DIGITS_SPACE = (Path(__file__).parent.parent / "examples" / "digits.toml").read_text()
 

@@ -14,9 +14,9 @@ import pandas as pd
 from conftest import TINY_SPACE
 from searcher.core.cost import cost
 from searcher.core.space_file import read_space_text
-from searcher.results.records import STOPPED, TRAINED
+from searcher.run.records import STOPPED, TRAINED
 from searcher.results.tables import RunResults, fitting_medians
-from searcher.study.storage import RunConfig
+from searcher.run.config import RunConfig
 
 
 def _config(budget: dict) -> RunConfig:

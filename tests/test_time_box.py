@@ -13,7 +13,7 @@ import pytest
 from optuna.trial import TrialState
 
 from searchkit import load, memory_worker, run, search_args, search_here, write_space
-from searcher.results.records import FAILED, INTERRUPTED, NOT_STARTED, QUEUED, STOPPED, TRAINED, record_of
+from searcher.run.records import FAILED, INTERRUPTED, NOT_STARTED, QUEUED, STOPPED, TRAINED, record_of
 from searcher.core.space_file import load_space
 from searcher.core.train_settings import TrainSettings
 from searcher.study.launch import TorchTrainer

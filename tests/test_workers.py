@@ -16,11 +16,10 @@ import pandas as pd
 import pytest
 from optuna.trial import TrialState
 
-from searcher.results.records import (
-    DUPLICATE, FAILED, INTERRUPTED, NOT_STARTED, REJECTED, SPENT, STOPPED, TRAINED, counts, distinct_rows, record_of,
-    trials_frame,
+from searcher.run.records import (
+    DUPLICATE, FAILED, INTERRUPTED, NOT_STARTED, REJECTED, SPENT, STOPPED, TRAINED, counts, distinct_rows, record_of, trials_frame,
 )
-from searcher.study.storage import open_study
+from searcher.study.studies import open_study
 from searchkit import StandIn, memory_worker
 
 TRIALS = 3  # trained candidates asked for: small, yet enough that workers overlap

@@ -6,7 +6,6 @@ import argparse
 import functools
 import logging
 import sys
-from dataclasses import replace
 from pathlib import Path
 
 import pandas as pd
@@ -14,16 +13,16 @@ import pandas as pd
 from searcher.cli.run_commands import add_search_commands
 from searcher.core.arch import parse_arch
 from searcher.core.budget import BUDGET_KEYS, LATENCY, Budget, show_cost
-from searcher.core.census_report import CensusSettings, run_census, summary_lines, writable, write_census
+from searcher.core.census_report import CensusSettings, summary_lines
 from searcher.core.cost import cost
 from searcher.core.latency import Latency, cores, parse_target, predict
 from searcher.core.space_file import builtin_space, load_space, shipped_spaces
-from searcher.data.load import check_source, describe_few_examples, few_examples, load_dataset
 from searcher.errors import SearcherError, one_of, readable, shown
 from searcher.files import read_regular
 from searcher.limits import MAX_ARCH_FILE_BYTES
 from searcher.redact import redact
-from searcher.runs import plain_name, run_folder
+from searcher.results.census_files import census as take_census, writable, write_census
+from searcher.run.folders import plain_name, run_folder
 
 log = logging.getLogger("searcher")
 
@@ -141,16 +140,7 @@ def cmd_census(args: argparse.Namespace) -> int:
     budget = _with_target(space.budget.updated(_budget(args), prefix="--"), args)
     settings = CensusSettings(samples=args.samples, seed=args.seed, classes=args.classes)
     folder = writable(run_folder(args.name if args.name is not None else f"census-{plain_name(space.name)}"))
-    if args.data is not None:  # the data's classes size the output layer, and thin classes are named now
-        check_source(args.data)
-        try:
-            dataset = load_dataset(args.data, space.data_shape, seed=args.seed)
-        except SearcherError as exc:  # what the loader says of the data, named as the option it came from
-            raise SearcherError(f"`--data` {shown(args.data)}: {exc}", key="--data") from None
-        settings = replace(settings, classes=args.classes or dataset.num_classes)
-        if found := few_examples(dataset):
-            log.warning("%s", describe_few_examples(found))
-    census = run_census(space, budget, settings)
+    census = take_census(space, budget, settings, args.data)
     print("\n".join(summary_lines(census)))
     written = write_census(census, folder)
     print("wrote " + ", ".join(str(p) for p in written))

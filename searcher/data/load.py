@@ -30,7 +30,7 @@ from searcher.data.npz import read_member, read_npz
 from searcher.data.split import PARTS, check_split, load_split, save_split, split_indices  # noqa: F401  (re-exported)
 from searcher.errors import SearcherError, shown
 from searcher.files import not_regular
-from searcher.runs import write_atomic
+from searcher.files import write_atomic
 
 log = logging.getLogger(__name__)
 

@@ -11,7 +11,7 @@ import numpy as np
 from searcher.data.npz import read_member
 from searcher.errors import SearcherError
 from searcher.files import not_regular
-from searcher.runs import write_atomic
+from searcher.files import write_atomic
 
 PARTS = ("train", "val", "test")  # names of the three parts, in order
 

@@ -19,20 +19,19 @@ import plotly.io as pio
 from plotly.offline import get_plotlyjs
 
 from searcher.errors import SearcherError
-from searcher.results.records import ACCURACY, Metric
-from searcher.results.records import (
-    FAILED, INTERRUPTED, REJECTED, SCORED, TRAINED, best_row,
-    counts as trial_counts, distinct_rows,
+from searcher.run.records import (
+    ACCURACY, FAILED, INTERRUPTED, REJECTED, SCORED, TRAINED, Metric, best_row, counts as trial_counts, distinct_rows,
 )
-from searcher.results.confirmed import Confirmation
 from searcher.core.budget import LATENCY
-from searcher.results.pareto import COSTS, check_caps, feasible_mask, front, front_steps, present_costs
+from searcher.core.pareto import COSTS, check_caps, feasible_mask, present_costs
+from searcher.results.fronts import front, front_steps
+from searcher.run.confirmation import Confirmation
 from searcher.results.report_parts import (
     COLOURS, CONFIG, COST_LABELS, SHOWN_WHEN_ANY, STATE_LABELS, TEMPLATE, cost_text, empty_note, log_axis, percent,
     table_html,
 )
 from searcher.results.report_confirmed import add_confirmed, confirmation_html, confirmed_front_html, proxy_figure
-from searcher.runs import write_atomic
+from searcher.files import write_atomic
 
 log = logging.getLogger(__name__)
 

@@ -12,9 +12,9 @@ import pandas as pd
 import plotly.graph_objects as go
 
 from searcher.core.stats import accuracy_se
-from searcher.results.confirmed import Confirmation, Judge
-from searcher.results.pareto import feasible_mask, pareto_mask
-from searcher.results.records import ACCURACY
+from searcher.run.confirmation import Confirmation, Judge
+from searcher.core.pareto import feasible_mask, pareto_mask
+from searcher.run.records import ACCURACY
 from searcher.results.report_parts import COST_LABELS, TEMPLATE, cost_text, empty_note, percent, table_html
 
 CONFIRMED_COLOUR = "#2a9d5b"
@@ -78,7 +78,7 @@ def proxy_figure(confirmation: Confirmation | None) -> go.Figure:
 
 def confirmed_front_html(confirmation: Confirmation | None, cost: str, caps: dict[str, float]) -> str:
     """The front by one cost on confirmed means, each step from the row above marked where it is within
-    noise (neither credibly ahead of the other, by the run's rule: see searcher.results.confirmed.Judge)."""
+    noise (neither credibly ahead of the other, by the run's rule: see searcher.run.confirmation.Judge)."""
     rows = _confirmed(confirmation)
     rows = rows[feasible_mask(rows, caps)] if len(rows) else rows
     if rows.empty:

@@ -10,7 +10,7 @@ from collections.abc import Callable
 import plotly.graph_objects as go
 
 from searcher.core.units import format_bytes, format_count, format_duration
-from searcher.results.records import (
+from searcher.run.records import (
     DUPLICATE, FAILED, INTERRUPTED, NOT_STARTED, QUEUED, REJECTED, RUNNING, STOPPED, TRAINED,
 )
 

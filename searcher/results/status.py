@@ -16,11 +16,13 @@ from optuna.trial import TrialState
 
 from searcher.core.budget import Budget
 from searcher.redact import redact
-from searcher.results.records import HEARTBEAT, METRICS, best_row, counts, trials_frame
+from searcher.run.records import HEARTBEAT, METRICS, best_row, counts, trials_frame
 from searcher.results.tables import RESULT_FILES, gather, write_results
-from searcher.runs import RUNS, check_run_paths
+from searcher.run.folders import RUNS, check_run_paths
 from searcher.study.liveness import Registry, is_dead
-from searcher.study.storage import RunConfig, open_run, storage_url
+from searcher.run.config import RunConfig
+from searcher.study.studies import open_run
+from searcher.study.stores import storage_url
 
 
 @dataclass(frozen=True)

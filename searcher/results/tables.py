@@ -22,15 +22,14 @@ from searcher.core.space_file import read_space_text
 from searcher.core.stats import accuracy_se
 from searcher.core.train_settings import TrainSettings
 from searcher.data.load import load_split
-from searcher.results.confirmed import Confirmation, confirmation
-from searcher.results.pareto import front
-from searcher.results.records import (
-    METRICS, STOPPED, TRAINED, Metric, best_row, counts, distinct_rows, trials_frame,
-)
+from searcher.run.confirmation import Confirmation, confirmation
+from searcher.results.fronts import front
+from searcher.run.records import METRICS, STOPPED, TRAINED, Metric, best_row, counts, distinct_rows, trials_frame
 from searcher.results.report import write_report
-from searcher.runs import write_atomic
-from searcher.study.confirm import full_schedule, read_jobs, read_labels
-from searcher.study.storage import OBJECTIVES, RunConfig
+from searcher.files import write_atomic
+from searcher.run.config import full_schedule
+from searcher.study.confirm import read_jobs, read_labels
+from searcher.run.config import OBJECTIVES, RunConfig
 
 
 @dataclass(frozen=True)

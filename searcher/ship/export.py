@@ -41,16 +41,18 @@ from searcher.files import read_regular
 from searcher.redact import redact
 from searcher.model.build import build
 from searcher.model.train import Diverged, TrainSettings, evaluate_scores, train_candidate
-from searcher.study.confirm import full_schedule
-from searcher.results.confirmed import check_tolerance
-from searcher.results.records import FAILED, REJECTED, SCORED, TRAINED, best_row
+from searcher.run.config import full_schedule
+from searcher.run.config import check_tolerance
+from searcher.run.records import FAILED, REJECTED, SCORED, TRAINED, best_row
 from searcher.results.tables import RunResults, gather
 from searcher.ship.deploy_files import DeployReport, write_deploy_files
-from searcher.runs import RUNS, check_run_paths, folder_swap, run_folder
+from searcher.run.folders import RUNS, check_run_paths, folder_swap, run_folder
 from searcher.ship.model_card import model_card, standalone_source
 from searcher.int8.quantize import NotFinite
 from searcher.study.run import RunData, default_memory_cap
-from searcher.study.storage import RunConfig, open_run, storage_kind, storage_url
+from searcher.run.config import RunConfig
+from searcher.study.studies import open_run
+from searcher.study.stores import storage_kind, storage_url
 
 log = logging.getLogger(__name__)
 
@@ -139,7 +141,7 @@ class Choice:
 
 def choose(results: RunResults, settings: ExportSettings) -> Choice:
     """The candidate to export: one named by --arch or --trial, else the cheapest confirmed candidate within
-    noise of the best (see searcher.results.confirmed.default_pick), else the best by the proxy."""
+    noise of the best (see searcher.run.confirmation.default_pick), else the best by the proxy."""
     frame = results.frame
     if settings.arch:
         return Choice(given_arch(settings.arch), None, "given on the command line", "given")
@@ -292,7 +294,7 @@ def _confusion(truth: np.ndarray, predicted: np.ndarray, classes: int) -> np.nda
 
 def _write(outcome: ExportOutcome, model: Any, extra: dict, data: Any) -> None:
     """Write into a fresh folder beside export/, then swap it in, so export/ is never half-written
-    (see searcher.runs.folder_swap: what a kill leaves is cleaned up by the next export).
+    (see searcher.run.folders.folder_swap: what a kill leaves is cleaned up by the next export).
 
     The int8 model is calibrated on training images (the first of the training split) and measured
     on the held-out split, like the fp32 one.

@@ -14,7 +14,7 @@ from __future__ import annotations
 import logging
 import math
 import time
-from dataclasses import dataclass, replace
+from dataclasses import dataclass
 
 import numpy as np
 import optuna
@@ -26,17 +26,18 @@ from searcher.core.budget import Budget
 from searcher.core.cost import cost
 from searcher.core.train_settings import TrainSettings
 from searcher.model.train import TrainProgress
-from searcher.results.confirmed import ConfirmSettings, confirmation, cost_columns, select
-from searcher.results.records import ACCURACY, Metric
-from searcher.results.records import (
-    DUPLICATE, FAILED, INTERRUPTED, NOT_STARTED, RECORD, TRAINED, TRAINING, pack_classes, record_of, trials_frame,
-    unpack_classes,
+from searcher.run.config import ConfirmSettings
+from searcher.run.confirmation import confirmation, cost_columns, select
+from searcher.run.records import (
+    ACCURACY, DUPLICATE, FAILED, INTERRUPTED, NOT_STARTED, RECORD, TRAINED, TRAINING, Metric, pack_classes, record_of, trials_frame, unpack_classes,
 )
 from searcher.study.ending import Ending, StopReason
 from searcher.study.liveness import claim, queue_retry
 from searcher.study.loop import LoopPlan, TrialLoop
 from searcher.study.optuna_private import queued_params
-from searcher.study.storage import OBJECTIVES, open_storage, trial_seed
+from searcher.run.config import OBJECTIVES
+from searcher.study.stores import open_storage
+from searcher.study.samplers import trial_seed
 from searcher.study.timebox import Throughput
 from searcher.study.worker import Trainer, scores_of
 
@@ -49,11 +50,6 @@ VAL_LABELS = "val_labels"  # the confirmation study's attribute holding the vali
 
 def confirm_name(name: str) -> str:
     return f"{name}.confirm"
-
-
-def full_schedule(settings: TrainSettings) -> TrainSettings:
-    """The export's schedule: twice the proxy's epochs (at least 18) on the whole training split."""
-    return replace(settings, epochs=max(18, 2 * settings.epochs), train_fraction=1.0)
 
 
 def job_seed(run_seed: int, trial: int, seed_index: int) -> int:

@@ -22,16 +22,19 @@ from searcher.int8.check import int8_accuracy
 from searcher.limits import MAX_CONFIRM_SEEDS
 from searcher.model.build import build
 from searcher.model.train import TrainProgress, TrainResult, train_candidate
-from searcher.results.confirmed import ConfirmSettings, cost_columns, select
-from searcher.results.records import METRICS, REJECTED, SPENT, TRAINED
+from searcher.run.config import ConfirmSettings
+from searcher.run.confirmation import cost_columns, select
+from searcher.run.records import METRICS, REJECTED, SPENT, TRAINED
 from searcher.study.confirm import (
-    ConfirmPlan, Confirmer, ConfirmTally, full_schedule, keep_labels, open_confirm_study, plan, read_jobs,
+    ConfirmPlan, ConfirmTally, Confirmer, keep_labels, open_confirm_study, plan, read_jobs,
 )
+from searcher.run.config import full_schedule
 from searcher.study.cpu_share import CpuShare
 from searcher.study.ending import Ending, Phases, StopReason
 from searcher.study.ledger import Ledger
 from searcher.study.run import PreparedRun, RunData, default_memory_cap
-from searcher.study.storage import OBJECTIVES, disk_flush, storage_kind
+from searcher.run.config import OBJECTIVES
+from searcher.study.stores import disk_flush, storage_kind
 from searcher.study.timebox import Throughput
 from searcher.study.worker import Trainer, Worker, WorkerPlan, WorkerTally
 

@@ -17,7 +17,7 @@ from dataclasses import dataclass
 import optuna
 from optuna.trial import TrialState
 
-from searcher.results.records import SPENT, STOPPED, TRAINED, counts_of, finished_state, record_of
+from searcher.run.records import SPENT, STOPPED, TRAINED, counts_of, finished_state, record_of
 
 
 @dataclass(frozen=True)
@@ -80,5 +80,5 @@ class Ledger:
                 if len(r["history"]) >= rung and r["history"][rung - 1] is not None and r.get(column) is not None]
 
     def counts(self) -> dict[str, int]:
-        """As :func:`searcher.results.records.counts` gives for the finished trials."""
+        """As :func:`searcher.run.records.counts` gives for the finished trials."""
         return counts_of(self.by_state, self.repeats)

@@ -23,8 +23,8 @@ from types import TracebackType
 import optuna
 from optuna.trial import TrialState
 
-from searcher.results.records import HEARTBEAT, INTERRUPTED, RECORD, record_of, worker_id
-from searcher.runs import pid_alive
+from searcher.run.records import HEARTBEAT, INTERRUPTED, RECORD, record_of, worker_id
+from searcher.run.folders import pid_alive
 from searcher.study.optuna_private import set_trial_attr
 
 log = logging.getLogger(__name__)

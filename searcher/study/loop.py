@@ -27,7 +27,7 @@ import optuna
 from optuna.trial import TrialState
 
 from searcher.model.train import Diverged, OutOfTime, TrainProgress, TrainResult
-from searcher.results.records import FAILED, INTERRUPTED, RECORD, TRAINED
+from searcher.run.records import FAILED, INTERRUPTED, RECORD, TRAINED
 from searcher.study.ending import Ending, StopReason, StopRequested, StopSignals
 from searcher.study.liveness import Heartbeat, Registry, queue_retry, recover_stale
 

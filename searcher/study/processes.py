@@ -20,7 +20,7 @@ import torch
 from searcher.study.ending import Ending, Phases, StopReason, exit_at_once, first_of
 from searcher.study.launch import run_phases
 from searcher.study.run import PreparedRun, SearchSettings, prepare
-from searcher.study.storage import open_study
+from searcher.study.studies import open_study
 
 log = logging.getLogger(__name__)
 

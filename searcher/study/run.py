@@ -1,6 +1,6 @@
 """A search run made ready: its settings, every input checked, the data loaded; nothing written yet.
 
-:func:`searcher.study.search_run.search` runs what :func:`prepare` returns; each worker process
+:func:`searcher.study.search_run.run_search` runs what :func:`prepare` returns; each worker process
 prepares the same way, so every worker checks and sees the same space, budget and data.
 """
 
@@ -27,10 +27,13 @@ from searcher.errors import SearcherError, check_int, check_number, one_of, show
 from searcher.files import read_regular
 from searcher.limits import (MAX_CAP, MAX_MINUTES, MAX_SEED, MAX_SPACE_FILE_BYTES, MAX_TRIALS, MAX_WORKERS,
                              available_memory)
-from searcher.results.confirmed import ConfirmSettings
-from searcher.results.records import METRICS
-from searcher.runs import RUNS, check_run_paths, run_folder
-from searcher.study.storage import OBJECTIVES, SAMPLERS, RunConfig, storage_kind, storage_url, stored_config
+from searcher.run.config import ConfirmSettings
+from searcher.run.records import METRICS
+from searcher.run.folders import RUNS, check_run_paths, run_folder
+from searcher.run.config import OBJECTIVES, RunConfig
+from searcher.study.samplers import SAMPLERS
+from searcher.study.stores import storage_kind, storage_url
+from searcher.study.studies import stored_config
 
 log = logging.getLogger(__name__)
 

@@ -1,8 +1,7 @@
-"""``searcher search`` as a library call: prepare the run, run its workers, write the results.
+"""Running a search: prepare the run, open its study, run its workers through their phases.
 
->>> import searcher                                                            # doctest: +SKIP
->>> outcome = searcher.search(searcher.SearchSettings(name="demo", space="spaces/mcu.toml", trials=10))  # doctest: +SKIP
->>> outcome.exit_status, outcome.best["arch"]                                   # doctest: +SKIP
+What the search leaves (its result files, its summary) is :mod:`searcher.results.outcome`'s, one floor up;
+``searcher.search`` runs both.
 """
 
 from __future__ import annotations
@@ -13,58 +12,37 @@ import logging
 import shutil
 import sqlite3
 import time
-from dataclasses import asdict, dataclass, field
+from dataclasses import asdict, dataclass
 from pathlib import Path
-from typing import Any
 
 import optuna
 
 from searcher.data.load import save_decoded, save_split
 from searcher.errors import SearcherError
 from searcher.redact import redact
-from searcher.results.confirmed import Confirmation
-from searcher.results.records import ACCURACY, REJECTED, Metric, best_row, counts
-from searcher.results.tables import gather, write_results
-from searcher.runs import write_atomic
-from searcher.study.ending import Phases, StopReason
+from searcher.files import write_atomic
+from searcher.study.ending import Phases
 from searcher.study.launch import TrainerFor, run_phases
 from searcher.study.processes import run_workers
 from searcher.study.run import PreparedRun, SearchSettings, prepare
-from searcher.study.storage import open_study, study_exists
+from searcher.study.studies import open_study, study_exists
 
 log = logging.getLogger(__name__)
 
 
 @dataclass
-class SearchOutcome:
-    """What a search invocation did; ``exit_status`` is what the command returns."""
+class Searched:
+    """A search that has run: what the results are read from."""
 
-    folder: Path
-    counts: dict[str, int]
-    best: dict[str, Any] | None  # the best fully trained candidate by its proxy accuracy
-    stop: StopReason
-    rejected_share: list[float] = field(default_factory=list)  # share rejected per block of 50 proposals
-    rejected_by: dict[str, int] = field(default_factory=dict)  # rejections by the caps they broke
-    seconds: float = 0.0
-    proxy_seconds: float = 0.0  # wall time of the proxy search (the slowest worker's)
-    confirm_seconds: float = 0.0  # wall time of the confirmation that followed
-    confirmation: Confirmation | None = None  # what confirmation found (None when it is off or nothing ran)
-    metric: Metric = ACCURACY  # the score the search ranked by
-    spread: str = ""  # how the trained candidates spread over cost, in one line
-
-    @property
-    def exit_status(self) -> int:
-        return self.stop.exit_status
+    run: PreparedRun
+    study: optuna.Study
+    phases: Phases
+    seconds: float  # wall time of the phases
 
 
-def search(settings: SearchSettings, budget: dict | None = None, train: dict | None = None, *,
-           trainer_for: TrainerFor | None = None) -> SearchOutcome:
-    """Run (or continue) the search ``settings.name``, confirm its front, and write its results.
-
-    ``budget`` and ``train`` override keys of the space file's [budget] and [train] tables (as the
-    command line's options do). ``trainer_for(run, threads)`` makes the trainer of a single-worker
-    search in place of the torch one (see :func:`searcher.study.launch.run_worker`).
-    """
+def run_search(settings: SearchSettings, budget: dict | None = None, train: dict | None = None, *,
+               trainer_for: TrainerFor | None = None) -> Searched:
+    """Run (or continue) the search ``settings.name`` and its confirmation; see ``searcher.search``."""
     run = prepare(settings, budget, train)
     _keep_earlier_results(run)
     fresh = not run.folder.exists()
@@ -88,24 +66,7 @@ def search(settings: SearchSettings, budget: dict | None = None, train: dict | N
         phases = run_phases(run, study, deadline, trainer_for=trainer_for)
     else:
         phases = run_workers(run, deadline)
-    return finish(run, study, phases, time.time() - started)
-
-
-def finish(run: PreparedRun, study: optuna.Study, phases: Phases, seconds: float) -> SearchOutcome:
-    """Write the result files and sum the run up."""
-    results = gather(run.settings.name, study, run.url, run.config, run.folder, run.settings.confirm.tolerance)
-    times = {"seconds": round(seconds, 1), "proxy_seconds": round(phases.proxy_seconds, 1),
-             "confirm_seconds": round(phases.confirm_seconds, 1)}
-    write_results(run.folder, results, title=f"searcher run {run.settings.name}",
-                  notes=[f"space {run.space.name}; data {run.settings.data}; objective {run.settings.objective}",
-                         f"stopped: {phases.stop.text}"], extra={"time": times, "stopped": phases.stop.text})
-    frame, proposals = results.frame, phases.proposals
-    blocks = [proposals[i:i + 50] for i in range(0, len(proposals), 50)]
-    share = [sum(p == REJECTED for p in b) / len(b) for b in blocks if b]
-    rejected_by = frame.loc[frame["state"] == REJECTED, "rejected_by"].value_counts().to_dict()
-    return SearchOutcome(run.folder, counts(frame), best_row(frame, run.budget.caps(), results.metric), phases.stop, share,
-                         {str(k): int(v) for k, v in rejected_by.items()}, seconds, phases.proxy_seconds,
-                         phases.confirm_seconds, results.confirmation, results.metric, results.spread_words())
+    return Searched(run, study, phases, time.time() - started)
 
 
 RESULT_FILES = ("trials.csv", "front.csv", "confirmed.csv", "summary.json", "report.html", "run.json", "search.log",

@@ -39,16 +39,16 @@ from searcher.core.gate import judge
 from searcher.core.space import Space
 from searcher.core.train_settings import TrainSettings
 from searcher.model.train import OutOfTime, TrainProgress, TrainResult
-from searcher.results.records import ACCURACY, Metric
-from searcher.results.records import (
-    DUPLICATE, FAILED, INTERRUPTED, NOT_STARTED, RECORD, REJECTED, STOPPED, TRAINED, describe, record_of,
+from searcher.run.records import (
+    ACCURACY, DUPLICATE, FAILED, NOT_STARTED, RECORD, REJECTED, STOPPED, TRAINED, Metric, describe, record_of,
 )
 from searcher.study.early_stop import CostAwareHalving, EarlyStop
 from searcher.study.ending import Ending, StopReason
 from searcher.study.ledger import Ledger, Outcome
 from searcher.study.liveness import claim
 from searcher.study.loop import LoopPlan, TrialLoop
-from searcher.study.storage import OBJECTIVES, trial_seed
+from searcher.run.config import OBJECTIVES
+from searcher.study.samplers import trial_seed
 from searcher.study.timebox import Throughput
 
 log = logging.getLogger(__name__)

@@ -147,7 +147,7 @@ def test_a_journal_damaged_in_the_middle_is_named_and_not_cut(tmp_path):
     import optuna
 
     from searcher.errors import SearcherError
-    from searcher.study.storage import open_storage
+    from searcher.study.stores import open_storage
 
     path = tmp_path / "study.journal"
     study = optuna.create_study(storage=open_storage(str(path)), study_name="s")
@@ -210,7 +210,7 @@ def test_storage_urls_that_gave_a_python_error(here, capsys, url, says):
 
 
 def test_an_ipv6_host_in_brackets_is_a_host():
-    from searcher.study.storage import storage_kind
+    from searcher.study.stores import storage_kind
 
     assert storage_kind("postgresql://u:p%40ss@[::1]:5432/db") == "postgresql"  # RFC 3986: bracketed, '@' as %40
 
@@ -219,7 +219,7 @@ def test_an_ipv6_host_in_brackets_is_a_host():
 def test_export_after_a_search_with_skip_unreadable_reads_the_run_as_it_was_read(made, run_copy):
     """Export re-decoded the folder without skipping ("the decoded copy ... is out of date") and failed on
     the broken file; export has no such option. The run's configuration carries it."""
-    from searcher.study.storage import open_run
+    from searcher.study.studies import open_run
 
     assert open_run("done", root=run_copy / "runs")[2].skip_unreadable
     (run_copy / "runs" / "done" / "decoded.npz").unlink()  # so the folder itself must be decoded again, skipping
@@ -352,7 +352,7 @@ def test_status_counts_a_reused_outcome_once(run_copy, capsys):
     """"trained 269" for one real training: proposals that reused an outcome are said apart."""
     import optuna
 
-    from searcher.results.records import RECORD, record_of
+    from searcher.run.records import RECORD, record_of
 
     study = optuna.load_study(study_name="done", storage=f"sqlite:///{run_copy / 'runs/done/study.db'}")
     first = next(t for t in study.trials if record_of(t).get("state") == "trained")

@@ -70,7 +70,7 @@ def named_run(tmp_path_factory: pytest.TempPathFactory):
 
 
 def test_names_reach_the_run_as_given(named_run):
-    from searcher.study.storage import open_run
+    from searcher.study.studies import open_run
 
     assert open_run("named", root=named_run.parent)[2].class_names == HOSTILE
 
@@ -211,7 +211,7 @@ def test_a_store_with_2_kb_overwritten(run_here, capsys, command, where):
 def test_a_journal_store_with_2_kb_overwritten(tmp_path, monkeypatch, capsys, command):
     import optuna
 
-    from searcher.study.storage import open_storage
+    from searcher.study.stores import open_storage
 
     from searchkit import write_space
 
@@ -249,7 +249,7 @@ STAGES = {
     "after the first files": ("searcher.ship.export.standalone_source", "before"),
     "as the ONNX and C files are written": ("searcher.ship.export.write_deploy_files", "before"),
     "after the last file": ("searcher.ship.export.model_card", "after"),
-    "between the two renames of the swap": ("searcher.runs._foreign_entries", "after"),
+    "between the two renames of the swap": ("searcher.run.folders._foreign_entries", "after"),
 }
 OTHER = "1x16x16_c3k3-m2_gap-o3_relu"  # the second export's candidate, so old and new tell apart
 
@@ -294,7 +294,7 @@ def test_a_signal_during_export_leaves_the_old_export_or_the_new_whole(exported,
 
 KILL_SCRIPT = """
 import os, signal, sys
-import searcher.runs as runs
+import searcher.run.folders as runs
 import searcher.ship.export as export
 from searcher.cli.main import main
 stage = sys.argv[1]
@@ -328,7 +328,7 @@ def test_a_sigkill_during_export_is_cleaned_up_by_the_next(exported, stage):
     left = [p.name for p in run.iterdir() if p.name.startswith(".export")]
     assert left, "the kill left nothing to clean up: the stage was not reached"
     assert (stage == "writing") == exported.exists()  # between the renames, export/ is moved aside
-    from searcher.runs import clean_stale_swaps
+    from searcher.run.folders import clean_stale_swaps
 
     clean_stale_swaps(exported)  # what the next export does first
     assert [p.name for p in run.iterdir() if p.name.startswith(".export")] == []
@@ -339,7 +339,7 @@ def test_a_sigkill_during_export_is_cleaned_up_by_the_next(exported, stage):
 
 def test_two_exports_at_once_keep_each_others_folders(tmp_path):
     """A swap folder whose owner lives is left alone; one of a process that is gone is removed."""
-    from searcher.runs import clean_stale_swaps, plain_name
+    from searcher.run.folders import clean_stale_swaps, plain_name
 
     import socket
 
@@ -406,7 +406,7 @@ def test_divergence_in_the_proxy_search_fails_the_candidate(tmp_path, kind):
     import pandas as pd
     from searchkit import search_here, write_space
 
-    from searcher.results.records import FAILED
+    from searcher.run.records import FAILED
 
     outcome = search_here(tmp_path, write_space(tmp_path), "wild", train=DIVERGE[kind], trials=2)
     assert outcome.exit_status == 0
@@ -419,8 +419,8 @@ def test_divergence_in_the_confirmation_fails_that_job(tmp_path, monkeypatch, ki
     from searchkit import search_here, write_space
 
     import searcher.study.launch as launch
-    from searcher.results.confirmed import ConfirmSettings
-    from searcher.results.records import FAILED
+    from searcher.run.config import ConfirmSettings
+    from searcher.run.records import FAILED
     from searcher.study.confirm import read_jobs
 
     monkeypatch.setattr(launch, "full_schedule", diverging(launch.full_schedule, kind))  # the proxy trains well

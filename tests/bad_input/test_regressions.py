@@ -85,7 +85,8 @@ def test_export_options_are_checked_before_the_run_is_opened(here, capsys):
 
 def _stored_run(folder: Path, name: str, channels: int) -> None:
     """A study with its configuration and no trials: enough for export to choose and check a candidate."""
-    from searcher.study.storage import RunConfig, open_study
+    from searcher.run.config import RunConfig
+    from searcher.study.studies import open_study
 
     text = space_text("input.channels", str(channels))
     config = RunConfig(space_name="tiny", space_text=text, budget=asdict(Budget()), train=asdict(TrainSettings()),
@@ -129,12 +130,12 @@ def test_census_into_a_read_only_runs_folder(here, capsys):
 
 def test_census_on_a_read_only_file_system(here, capsys, monkeypatch):
     """The write itself fails (EROFS, as on a read-only mount): one line, no traceback, nothing half-written."""
-    import searcher.core.census_report as census_report
+    import searcher.results.census_files as census_files
 
     def read_only(path, data):
         raise OSError(errno.EROFS, os.strerror(errno.EROFS), str(path))
 
-    monkeypatch.setattr(census_report, "write_atomic", read_only)
+    monkeypatch.setattr(census_files, "write_atomic", read_only)
     line = refused(["census", "--space", "space.toml"], capsys)
     assert "cannot write the census to 'runs/census-tiny': Read-only file system" in line
     assert written(here) == []

@@ -11,12 +11,10 @@ import shutil
 import signal
 import socket
 import stat
-import tempfile
 import threading
 import time
-from collections.abc import Callable, Iterator
+from collections.abc import Iterator
 from pathlib import Path
-from typing import BinaryIO
 
 from searcher.errors import SearcherError, shown
 from searcher.files import kind_of
@@ -96,32 +94,6 @@ def plain_name(text: str, fallback: str = "space") -> str:
     """
     name = re.sub(r"[^A-Za-z0-9._-]+", "-", text).strip("-._")[:60].strip("-._")
     return name or fallback
-
-
-def write_atomic(path: Path, data: str | bytes | Callable[[BinaryIO], object]) -> Path:
-    """Write a file whole or not at all: a temporary file in the same folder, then a rename.
-
-    `data` may be a function that writes to the open file, for contents too large to build in memory first.
-    """
-    path.parent.mkdir(parents=True, exist_ok=True)
-    if os.path.lexists(path) and not stat.S_ISREG(os.lstat(path).st_mode):  # checked up front too: check_run_paths
-        raise SearcherError(f"{path} is {kind_of(os.lstat(path).st_mode)}, not a file searcher wrote; it is left as "
-                            "it is: move it away")
-    fd, tmp = tempfile.mkstemp(dir=path.parent, prefix=f".{path.name}.", suffix=".tmp")
-    try:
-        with os.fdopen(fd, "wb") as handle:
-            if callable(data):
-                data(handle)
-            else:
-                handle.write(data.encode("utf-8") if isinstance(data, str) else data)
-            handle.flush()
-            os.fsync(handle.fileno())  # on disk before the rename, so a power cut leaves old or new
-        os.chmod(tmp, 0o644)  # mkstemp makes files private; results are for sharing
-        os.replace(tmp, path)
-    except BaseException:
-        Path(tmp).unlink(missing_ok=True)
-        raise
-    return path
 
 
 LEFT_FOR = 6 * 3600  # seconds without change after which a swap folder of an older version (no owner) is stale

@@ -14,7 +14,6 @@ import pandas as pd
 
 from searcher.core.budget import LATENCY
 from searcher.errors import SearcherError, one_of
-from searcher.results.records import SCORED
 
 # The analytic cost columns of the trials table, in the order the report shows them; with a target, the
 # predicted latency (LATENCY) too.
@@ -102,32 +101,6 @@ def feasible_mask(trials: pd.DataFrame, caps: Mapping[str, float | None] | None)
     return ok
 
 
-def front(
-    trials: pd.DataFrame,
-    cost_column: str | Sequence[str],
-    *,
-    caps: Mapping[str, float | None] | None = None,
-    score: str = "val_accuracy",
-) -> pd.DataFrame:
-    """The scored, feasible rows on the score-vs-cost front, cheapest first (``score``: the column ranked).
-
-    Only trained and stopped-early rows count, and only those meeting every cap:
-    a candidate over budget is no answer however accurate. Several cost columns give
-    the front over all of them at once (sorted by the first).
-    """
-    columns = [cost_column] if isinstance(cost_column, str) else list(cost_column)
-    if not columns:
-        raise SearcherError("a front needs at least one cost column, got none")
-    for column in columns:
-        if column not in COSTS:
-            raise SearcherError(f"cost {column!r} is not a cost column; use {one_of(column, COSTS)}")
-    scored = trials["state"].isin(SCORED).to_numpy() & feasible_mask(trials, caps)
-    pool = trials[scored]
-    on_front = pareto_mask(pool[score].to_numpy(dtype=float), pool[columns].to_numpy(dtype=float))
-    chosen = pool[on_front]
-    return chosen.sort_values([columns[0], score], ascending=[True, False], kind="stable")
-
-
 MIN_RATE_RATIO = 1.25  # a step must raise the cost by a quarter (a third of a doubling) to give a rate per doubling
 
 
@@ -153,26 +126,6 @@ def accuracy_per_doubling(accuracy: Sequence[float] | np.ndarray, cost: Sequence
     usable = (costs[:-1] > 0) & (costs[1:] > 0) & (doublings >= np.log2(MIN_RATE_RATIO))
     gain[1:] = np.where(usable, steps, np.nan)
     return gain
-
-
-def front_steps(front_rows: pd.DataFrame, cost_column: str, score: str = "val_accuracy") -> pd.DataFrame:
-    """For each front row after the first: accuracy gained, cost multiplied, gain per doubling.
-
-    ``front_rows`` is a front sorted by ``cost_column`` (what :func:`front` returns); the
-    first row has NaN in every column, having no cheaper neighbour to compare with.
-    """
-    acc = front_rows[score].to_numpy(dtype=float)
-    costs = front_rows[cost_column].to_numpy(dtype=float)
-    with np.errstate(divide="ignore", invalid="ignore"):
-        ratio = costs / np.r_[np.nan, costs[:-1]]
-    return pd.DataFrame(
-        {
-            "accuracy_step": np.diff(acc, prepend=np.nan),
-            "cost_ratio": ratio,
-            "accuracy_per_doubling": accuracy_per_doubling(acc, costs),
-        },
-        index=front_rows.index,
-    )
 
 
 def hypervolume(accuracy: Sequence[float] | np.ndarray, cost: Sequence[float] | np.ndarray, *,

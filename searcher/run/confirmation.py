@@ -16,42 +16,14 @@ import numpy as np
 import pandas as pd
 
 from searcher.core.stats import accuracy_se, credibly_ahead, paired_bootstrap, spearman
-from searcher.errors import check_int, check_number
-from searcher.limits import MAX_CONFIRM_CANDIDATES, MAX_CONFIRM_SEEDS
-from searcher.results.pareto import COSTS, feasible_mask
-from searcher.results.records import ACCURACY, METRICS, SCORED, TRAINED, Metric, distinct_rows
+from searcher.core.pareto import COSTS, feasible_mask
+from searcher.run.config import ConfirmSettings
+from searcher.run.records import ACCURACY, METRICS, SCORED, TRAINED, Metric, distinct_rows
 
 RELIABLE_SPEARMAN = 0.6  # below this the proxy's ranking is called unreliable
 CONFIRMED_COLUMNS = ("trial", "arch", "seeds", *(c for m in METRICS.values() for c in (m.mean, m.sd, m.proxy)),
                      "accuracy_int8_mean", "params", "macs", "peak_activation_bytes", "weight_bytes", "latency_ms",
                      "chosen_because")
-
-
-@dataclass(frozen=True)
-class ConfirmSettings:
-    """How the front is confirmed after the proxy search; the search command's --confirm options."""
-
-    seeds: int = 3  # full-schedule trainings per confirmed candidate, each with its own seed; 0: no confirmation
-    most: int = 8  # at most this many candidates from on or near the fronts
-    extra: int = 2  # plus this many trained candidates from elsewhere, drawn at random (checks the ranking lower down)
-    tolerance: float | None = None  # accuracy the default pick may give up against the best; None: 2 standard errors
-
-    @property
-    def on(self) -> bool:
-        return self.seeds > 0
-
-    def check(self) -> None:
-        """Each option within its bounds, named as the command line spells it."""
-        check_int(self.seeds, "--confirm", 0, MAX_CONFIRM_SEEDS)
-        check_int(self.most, "--confirm-candidates", 1, MAX_CONFIRM_CANDIDATES)
-        check_int(self.extra, "--confirm-random", 0, MAX_CONFIRM_CANDIDATES)
-        if self.tolerance is not None:
-            check_tolerance(self.tolerance)
-
-
-def check_tolerance(value: object) -> float:
-    """An accuracy difference the default pick may give up: a number in [0, 1) (0.01 is one point)."""
-    return check_number(value, "--tolerance", 0, 1, high_open=True)
 
 
 def cost_columns(caps: dict[str, float], objective_cost: str | None) -> list[str]:

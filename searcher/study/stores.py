@@ -1,14 +1,11 @@
-"""The Optuna study behind a run: storage, sampler, and the run's fixed configuration.
-
-A run is one study. Its configuration (space, budget, data, objective) is stored in the study
-itself, so a resumed run or another machine on the same PostgreSQL study can check that it is
-searching the same thing.
-"""
+"""The stores a run keeps its studies in: SQLite (the default, in the run folder), a journal file, or
+PostgreSQL shared by several machines. Opened with their retries, recognised before they are
+opened (a file we did not write is never repaired or replaced), and flushed to disk after every
+outcome that cost training."""
 
 from __future__ import annotations
 
 import contextlib
-import hashlib
 import json
 import logging
 import os
@@ -16,26 +13,19 @@ import random
 import re
 import sqlite3
 import time
-import warnings
-from dataclasses import dataclass
 from pathlib import Path
 from typing import Any, Callable, TypeVar
 
 import optuna
 import sqlalchemy
 
-from searcher.errors import SearcherError, one_of, shown
+from searcher.errors import SearcherError, shown
 from searcher.files import not_regular
 from searcher.redact import password_pieces, redact
-from searcher.runs import RUNS, run_folder, why_unwritable
-from searcher.study.optuna_private import journal_lock, seed_draws
+from searcher.study.optuna_private import journal_lock
 
 log = logging.getLogger(__name__)
 T = TypeVar("T")
-
-# objective name -> cost column minimised beside accuracy (None: accuracy alone)
-OBJECTIVES = {"accuracy": None, "params": "params", "macs": "macs", "activation": "peak_activation_bytes"}
-SAMPLERS = ("tpe", "nsga2", "random")
 
 
 def storage_url(storage: str | None, folder: Path) -> str:
@@ -174,11 +164,6 @@ def check_sqlite(path: Path) -> bool:
     """
     if not path.exists() or path.stat().st_size == 0:
         return False
-    with open(path, "rb") as handle:
-        head = handle.read(len(SQLITE_HEADER))
-    if head != SQLITE_HEADER:
-        raise SearcherError(f"the store {path} is not a SQLite database (it starts {shown(head)}); searcher changes "
-                            "nothing in it: give --storage a new file, or move this one away", key="--storage")
     read_only = not os.access(path.parent, os.W_OK | os.X_OK) or not os.access(path, os.W_OK)
     uri = f"file:{path}?mode=" + (_read_only_mode(path) if read_only else "ro")
 
@@ -193,6 +178,7 @@ def check_sqlite(path: Path) -> bool:
         if _CREATION_RACE.search(str(exc)):
             raise SearcherError(f"the store {path} stayed locked by another process: {exc}; try again when it is "
                                 "done", key="--storage") from None
+        _refuse_other_formats(path)
         raise _damaged(path, str(exc)) from None
     if verdict != ["ok"]:
         raise _damaged(path, "; ".join(verdict))
@@ -201,6 +187,21 @@ def check_sqlite(path: Path) -> bool:
                             f"{shown(sorted(tables))}); searcher changes nothing in it: give --storage a new file",
                             key="--storage")
     return read_only
+
+
+def _refuse_other_formats(path: Path) -> None:
+    """Refuse a file that is no SQLite database at all, showing how it starts.
+
+    Its first bytes are read only once SQLite has refused the file: this process may hold SQLite
+    connections to a store, and closing any other descriptor of the same file would drop their
+    locks (POSIX locks belong to the process, not the descriptor), letting another process take a
+    live store for an abandoned one: seen as a store that read "malformed" while a search wrote it.
+    """
+    with open(path, "rb") as handle:
+        head = handle.read(len(SQLITE_HEADER))
+    if head != SQLITE_HEADER:
+        raise SearcherError(f"the store {path} is not a SQLite database (it starts {shown(head)}); searcher changes "
+                            "nothing in it: give --storage a new file, or move this one away", key="--storage")
 
 
 def _read_only_mode(path: Path) -> str:
@@ -384,178 +385,3 @@ def _first_line(exc: BaseException) -> str:
     return (str(exc).strip().splitlines() or [type(exc).__name__])[0]
 
 
-CARRIED = ("skip_unreadable",)  # settings a run keeps from its start: later commands take them, never compare them
-
-
-@dataclass(frozen=True)
-class RunConfig:
-    """What a run searches; fixed for the life of its study."""
-
-    space_name: str
-    space_text: str  # the space file's text, so every worker searches the same space
-    budget: dict[str, Any]  # Budget fields
-    train: dict[str, Any]  # TrainSettings fields
-    data: str  # "demo" or the path given
-    data_fingerprint: str
-    classes: int
-    class_names: tuple[str, ...]
-    objective: str  # a key of OBJECTIVES
-    seed: int
-    metric: str = "accuracy"  # the score ranked, pruned, fronted and exported by (runs before --metric: accuracy)
-    skip_unreadable: bool = False  # unreadable images were skipped: so are they in every later command on the run
-
-    def digest(self) -> str:
-        """What the run searches, in 12 hex digits; how its data was read (CARRIED) is left out."""
-        searched = {k: v for k, v in self.__dict__.items() if k not in CARRIED}
-        return hashlib.sha256(json.dumps(searched, sort_keys=True, default=list).encode()).hexdigest()[:12]
-
-    def to_dict(self) -> dict:
-        return {**self.__dict__, "class_names": list(self.class_names)}
-
-    @classmethod
-    def from_dict(cls, data: dict) -> RunConfig:
-        return cls(**{**data, "class_names": tuple(data["class_names"])})
-
-
-def trial_seed(seed: int, number: int) -> int:
-    """The seed of trial ``number`` in a run seeded ``seed``: its sampler draws and its training."""
-    return (seed * 1_000_003 + number) % 2**32
-
-
-class _SeededPerTrial:
-    """Mixin: a sampler whose random draws for trial n come from (seed, n).
-
-    With one seed per process, searches that share a study with the same ``--seed`` (separate
-    commands, other machines) drew the same candidates in lockstep: trials 0 and 1 alike, 2 and 3
-    alike, and so on. Seeding from the trial number keeps a lone search reproducible and makes
-    every trial's draw its own.
-    """
-
-    _trial_seed: int = 0
-
-    def before_trial(self, study: optuna.Study, trial: optuna.trial.FrozenTrial) -> None:
-        seed_draws(self, trial_seed(self._trial_seed, trial.number))
-        super().before_trial(study, trial)
-
-
-class _TPE(_SeededPerTrial, optuna.samplers.TPESampler):
-    pass
-
-
-class _NSGAII(_SeededPerTrial, optuna.samplers.NSGAIISampler):
-    pass
-
-
-class _Random(_SeededPerTrial, optuna.samplers.RandomSampler):
-    pass
-
-
-def make_sampler(kind: str, objective: str, seed: int) -> optuna.samplers.BaseSampler:
-    """TPE by default: it reads constraints, and constant_liar keeps workers apart."""
-    if kind == "tpe":
-        single = OBJECTIVES[objective] is None
-        with warnings.catch_warnings():  # `group` is marked experimental; it suits our conditional space
-            warnings.simplefilter("ignore", optuna.exceptions.ExperimentalWarning)
-            sampler = _TPE(seed=seed, multivariate=single, group=single, constant_liar=True)
-    elif kind == "nsga2":
-        sampler = _NSGAII(seed=seed)
-    elif kind == "random":
-        sampler = _Random(seed=seed)
-    else:
-        raise SearcherError(f"`--sampler` must be {one_of(kind, SAMPLERS)}, got {kind!r}", key="--sampler")
-    sampler._trial_seed = seed
-    return sampler
-
-
-def open_study(name: str, url: str, config: RunConfig | None, sampler: str = "tpe",
-               worker: int = 0) -> tuple[optuna.Study, RunConfig]:
-    """Create the run's study or load it; refuse to continue a study that searched something else.
-
-    ``config`` None means read-only use (report, status, export): the stored one is returned, and a
-    store that does not exist is refused rather than created.
-    """
-    optuna.logging.set_verbosity(optuna.logging.WARNING)
-    storage = open_storage(url, create=config is not None)
-    existing = {s.study_name: s for s in optuna.get_all_study_summaries(storage)}
-    # another worker may have created the study a moment ago and not yet stored its configuration
-    stored_config = existing[name].user_attrs.get("config") if name in existing else None
-    if config is None:
-        if stored_config is None and name in existing:
-            raise SearcherError(f"run {name!r} in {redact(url)} is just being created; try again in a moment",
-                                key="--name")
-        if name not in existing:
-            found = ", ".join(sorted(existing)) or "none"
-            raise SearcherError(f"no run {name!r} in {redact(url)} (runs there: {found})", key="--name")
-        stored = RunConfig.from_dict(stored_config)
-        study = optuna.load_study(study_name=name, storage=storage,
-                                  sampler=make_sampler(sampler, stored.objective, stored.seed + worker))
-        return study, stored
-    directions = ["maximize"] + (["minimize"] if OBJECTIVES[config.objective] else [])
-    if stored_config is not None:
-        stored = RunConfig.from_dict(stored_config)
-        if stored.digest() != config.digest():
-            changes = "; ".join(config_changes(stored, config))
-            raise SearcherError(
-                f"run {name!r} was started with other settings ({changes}); continue it with the same "
-                f"settings, or start a new run with another --name", key="--name")
-    study = optuna.create_study(study_name=name, storage=storage, directions=directions, load_if_exists=True,
-                                sampler=make_sampler(sampler, config.objective, config.seed + worker),
-                                pruner=optuna.pruners.NopPruner())  # searcher.study.early_stop decides
-    if stored_config is None:
-        study.set_user_attr("config", config.to_dict())
-    return study, config
-
-
-def config_changes(old: RunConfig, new: RunConfig) -> list[str]:
-    """What differs between a run's stored configuration and the one asked for, as 'key: old -> new'."""
-    changes = []
-    for key in old.__dict__:
-        before, after = getattr(old, key), getattr(new, key)
-        if before == after or key in CARRIED:
-            continue
-        if isinstance(before, dict):
-            keys = sorted(set(before) | set(after), key=str)
-            changes += [f"{key}.{k}: {before.get(k)!r} -> {after.get(k)!r}" for k in keys if before.get(k) != after.get(k)]
-        elif key == "space_text":
-            changes.append("the space file's text")
-        else:
-            changes.append(f"{key}: {shown(before)} -> {shown(after)}")
-    return changes
-
-
-def study_exists(name: str, url: str) -> bool:
-    """Is there a study ``name`` in the store at ``url``? Never creates the store."""
-    try:
-        storage = open_storage(url, create=False)
-    except NoStore:
-        return False
-    return name in {s.study_name for s in optuna.get_all_study_summaries(storage)}
-
-
-def stored_config(name: str, url: str) -> RunConfig | None:
-    """The configuration run ``name`` was started with, None before it exists; never creates the store.
-
-    What a run was started with (its data, ``--skip-unreadable``) is read from here by every later
-    command on it, so that a resumed search or an export reads the data as the search did.
-    """
-    try:
-        storage = open_storage(url, create=False)
-    except NoStore:
-        return None
-    found = {s.study_name: s for s in optuna.get_all_study_summaries(storage)}
-    stored = found[name].user_attrs.get("config") if name in found else None
-    return None if stored is None else RunConfig.from_dict(stored)
-
-
-def open_run(name: str, storage: str | None = None, root: Path | None = None) -> tuple[Path, optuna.Study, RunConfig]:
-    """A stored run for reading (report, status, export): its folder, study and configuration; writes nothing."""
-    folder = run_folder(name, root or RUNS)
-    if storage is not None:
-        storage_kind(storage)  # an empty or mistyped --storage is refused, not taken for the default
-    if storage is None and not os.path.lexists(folder / "study.db"):
-        why = why_unwritable(folder)
-        raise SearcherError(f"no run {name!r}: {folder / 'study.db'} does not exist"
-                            + (f" ({why})" if why and "read-only" not in why else "")
-                            + " (give --storage for a run kept elsewhere)", key="--name")
-    study, config = open_study(name, storage_url(storage, folder), None)
-    return folder, study, config
